@@ -1,0 +1,54 @@
+"""The one settings class: environment variables prefixed ``EXCERPTA_`` and matching CLI flags."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Literal
+
+from pydantic import Field, SecretStr
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    model_config = SettingsConfigDict(env_prefix="EXCERPTA_", extra="ignore")
+
+    data_dir: Path = Path("./data")
+    database_url: str | None = None
+    host: str = "127.0.0.1"
+    port: int = 8000
+    embedder: Literal["minilm"] = "minilm"
+    auth: Literal["required", "disabled"] = "required"
+
+    index_poll_ms: int = Field(500, ge=0)
+    compact_after_deleted_rows: int = Field(1024, ge=1)
+
+    max_body_bytes: int = 10 * 1024 * 1024
+    max_batch_documents: int = 1000
+    max_document_text_bytes: int = 2 * 1024 * 1024
+    max_query_chars: int = 2000
+    max_top_k: int = 1000
+    max_depth: int = 1000
+    max_token_budget: int = 32_768
+
+    rate_limit_per_second: float = Field(0.0, ge=0.0, description="0 turns the limit off")
+    rate_limit_burst: int = Field(20, ge=1)
+
+    trace_retention_days: int = Field(14, ge=1)
+    trace_retention_count: int = Field(100_000, ge=1)
+
+    cors_origins: list[str] = []
+    docs_enabled: bool = False
+
+    generator: Literal["extractive", "chat-http"] = "extractive"
+    extractive_max_sentences: int = Field(4, ge=1, le=20)
+    chat_url: str | None = None
+    chat_model: str = ""
+    chat_api_key: SecretStr | None = None
+    chat_token_margin: float = Field(1.25, ge=1.0, le=4.0)
+    chat_timeout_seconds: float = Field(30.0, gt=0)
+    chat_max_retries: int = Field(2, ge=0, le=10)
+
+    def resolved_database_url(self) -> str:
+        if self.database_url:
+            return self.database_url
+        return f"sqlite:///{(self.data_dir / 'excerpta.db').as_posix()}"

@@ -1,0 +1,149 @@
+"""Errors a caller can cause, one class per contract error code.
+
+Every layer raises these; only the HTTP layer (``service.api.errors``) turns them into status
+codes, and the CLI turns them into an exit status. Anything else that escapes is a bug and stays
+a 500.
+
+    ServiceError
+    ├── MalformedJson                 body is not JSON
+    ├── InvalidRequest                a field missing, of the wrong type or value (``field``)
+    ├── InvalidFilter                 a filter the caller wrote is unusable
+    │   ├── FilterSyntaxError         ``position`` and a caret excerpt
+    │   ├── FilterUnknownAttribute    names the known attributes
+    │   ├── FilterTypeError           operator, function or literal does not fit the type
+    │   └── FilterTooLarge            text, nesting or IN-list size past the limits
+    ├── Unauthenticated               no, unknown or revoked key
+    ├── Forbidden                     the key's role does not allow the route
+    ├── NotFound                      missing, or hidden from the caller
+    │   ├── CollectionNotFound
+    │   ├── DocumentNotFound
+    │   └── TraceNotFound
+    ├── Conflict                      an attribute's type changed, a name taken
+    ├── PayloadTooLarge               the body exceeds the size limit
+    ├── InvalidDocuments              a batch with invalid documents (``documents``)
+    ├── LimitExceeded                 a configured limit (``limit``)
+    ├── RateLimited                   the key's rate limit (``retry_after`` seconds)
+    └── GeneratorUnavailable          the generator failed (``context`` attached)
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+class ServiceError(Exception):
+    """Base of every error a caller can cause; ``code`` is the contract's snake_case code."""
+
+    code = "service_error"
+
+    def __init__(self, message: str, **extra: Any) -> None:
+        super().__init__(message)
+        self.message = message
+        self.extra = extra
+
+    def body(self) -> dict[str, Any]:
+        return {"error": {"code": self.code, "message": self.message, **self.extra}}
+
+
+class MalformedJson(ServiceError):
+    code = "malformed_json"
+
+
+class InvalidRequest(ServiceError):
+    """Raised with ``field`` naming the offending field (dotted path)."""
+
+    code = "invalid_request"
+
+    def __init__(self, message: str, *, field: str, **extra: Any) -> None:
+        super().__init__(message, field=field, **extra)
+
+
+class InvalidFilter(ServiceError):
+    code = "filter_invalid"
+
+
+class FilterSyntaxError(InvalidFilter):
+    """``position`` is the 0-based character offset in the filter text."""
+
+    code = "filter_syntax"
+
+    def __init__(self, message: str, *, position: int, excerpt: str = "", **extra: Any) -> None:
+        super().__init__(message, position=position, excerpt=excerpt, **extra)
+
+
+class FilterUnknownAttribute(InvalidFilter):
+    code = "filter_unknown_attribute"
+
+    def __init__(self, message: str, *, known: list[str], **extra: Any) -> None:
+        super().__init__(message, known=known, **extra)
+
+
+class FilterTypeError(InvalidFilter):
+    code = "filter_type"
+
+
+class FilterTooLarge(InvalidFilter):
+    code = "filter_too_large"
+
+
+class Unauthenticated(ServiceError):
+    code = "unauthenticated"
+
+
+class Forbidden(ServiceError):
+    code = "forbidden"
+
+
+class NotFound(ServiceError):
+    code = "not_found"
+
+
+class CollectionNotFound(NotFound):
+    code = "collection_not_found"
+
+
+class DocumentNotFound(NotFound):
+    code = "document_not_found"
+
+
+class TraceNotFound(NotFound):
+    code = "trace_not_found"
+
+
+class Conflict(ServiceError):
+    code = "conflict"
+
+
+class PayloadTooLarge(ServiceError):
+    code = "payload_too_large"
+
+
+class InvalidDocuments(ServiceError):
+    """``documents`` lists ``{"id", "index", "reason"}`` for every rejected document."""
+
+    code = "invalid_documents"
+
+    def __init__(self, message: str, *, documents: list[dict[str, Any]]) -> None:
+        super().__init__(message, documents=documents)
+
+
+class LimitExceeded(ServiceError):
+    code = "limit_exceeded"
+
+    def __init__(self, message: str, *, limit: str, **extra: Any) -> None:
+        super().__init__(message, limit=limit, **extra)
+
+
+class RateLimited(ServiceError):
+    code = "rate_limited"
+
+    def __init__(self, message: str, *, retry_after: int) -> None:
+        super().__init__(message)
+        self.retry_after = retry_after
+
+
+class GeneratorUnavailable(ServiceError):
+    code = "generator_unavailable"
+
+    def __init__(self, message: str, *, context: dict[str, Any] | None = None) -> None:
+        super().__init__(message, context=context)

@@ -1,0 +1,36 @@
+"""Dependencies the routes receive by injection, so tests can swap them."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import Depends, Request
+
+from service.errors import Unauthenticated
+from service.usecases.callers import LOCAL_ADMIN, Caller
+from service.usecases.keys import authenticate
+from service.usecases.runtime import Runtime
+
+
+def get_runtime(request: Request) -> Runtime:
+    runtime: Runtime = request.app.state.runtime
+    return runtime
+
+
+RuntimeDep = Annotated[Runtime, Depends(get_runtime)]
+
+
+def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
+    if runtime.settings.auth == "disabled":
+        return LOCAL_ADMIN
+    header = request.headers.get("authorization", "")
+    scheme, _, presented = header.partition(" ")
+    if scheme.lower() != "bearer":
+        raise Unauthenticated("A valid API key is required in the Authorization header.")
+    with runtime.transaction() as session:
+        caller = authenticate(session, presented.strip())
+    request.app.state.rate_limiter.check(caller)
+    return caller
+
+
+CallerDep = Annotated[Caller, Depends(get_caller)]

@@ -1,0 +1,57 @@
+"""Search, context and answer: parse the body, call one use case, return its result."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter
+
+from service.api.deps import CallerDep, RuntimeDep
+from service.api.errors import ERROR_RESPONSES
+from service.api.schemas import AnswerIn, AnswerOut, ContextIn, ContextOut, ErrorOut
+from service.api.schemas import SearchIn, SearchOut
+from service.usecases import answering
+from service.usecases.search import SearchOptions, TimeWindow
+
+router = APIRouter(
+    prefix="/v1/collections/{name}", tags=["retrieval"], responses=ERROR_RESPONSES
+)
+
+
+def _options(body: SearchIn) -> SearchOptions:
+    window = body.time_window
+    return SearchOptions(
+        query=body.query,
+        filter=body.filter,
+        time_window=(
+            None
+            if window is None
+            else TimeWindow(attribute=window.attribute, last=window.last, now=window.now)
+        ),
+        top_k=body.top_k,
+        mode=body.mode,
+        rrf_k=body.rrf_k,
+        depth=body.depth,
+        query_vector=body.query_vector,
+    )
+
+
+@router.post("/search", response_model=SearchOut)
+def search(name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep) -> dict[str, object]:
+    return answering.search(runtime, caller, name, _options(body))
+
+
+@router.post("/context", response_model=ContextOut)
+def context(
+    name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep
+) -> dict[str, object]:
+    return answering.build_context(runtime, caller, name, _options(body), body.token_budget)
+
+
+@router.post(
+    "/answer",
+    response_model=AnswerOut,
+    responses={502: {"model": ErrorOut, "description": "The generator failed"}},
+)
+def answer(name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep) -> dict[str, object]:
+    return answering.answer(
+        runtime, caller, name, _options(body), body.token_budget, body.generator
+    )

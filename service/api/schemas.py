@@ -1,0 +1,240 @@
+"""Request and response schemas of the HTTP API (kept apart from tables and in-memory types)."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+
+class Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class ErrorBody(BaseModel):
+    model_config = ConfigDict(extra="allow")
+    code: str
+    message: str
+
+
+class ErrorOut(BaseModel):
+    error: ErrorBody
+
+
+class AttributeSpec(Strict):
+    type: str
+
+
+class ChunkingIn(Strict):
+    max_tokens: int = 200
+    overlap_tokens: int = 40
+
+
+class RetrievalSettingsIn(Strict):
+    bm25: Literal["smoothed", "okapi"] | None = None
+    k1: float | None = None
+    b: float | None = None
+    metric: Literal["cosine", "dot", "euclidean"] | None = None
+    stemming: bool | None = None
+    stopwords: bool | None = None
+
+
+class CollectionIn(Strict):
+    description: str | None = Field(None, max_length=10_000)
+    attributes: dict[str, AttributeSpec] | None = None
+    chunking: ChunkingIn | None = None
+    cite_attributes: list[str] | None = None
+    answer_caution: str | None = Field(None, max_length=10_000)
+    retrieval: RetrievalSettingsIn | None = None
+
+
+class RebuildOut(BaseModel):
+    done: int
+    total: int
+
+
+class CollectionOut(BaseModel):
+    name: str
+    description: str
+    attributes: dict[str, AttributeSpec]
+    chunking: ChunkingIn
+    cite_attributes: list[str]
+    answer_caution: str | None
+    retrieval: dict[str, Any]
+    tokenizer: str
+    embedder: str
+    documents: int
+    chunks: int
+    revision: int
+    created_at: dt.datetime
+    updated_at: dt.datetime
+    rebuild: RebuildOut | None = None
+
+
+class CollectionListOut(BaseModel):
+    collections: list[CollectionOut]
+
+
+class DocumentBatchIn(Strict):
+    documents: list[Any] = Field(
+        description=(
+            "Documents: {id, title?, text, media_type?, source_url?, attributes?, access?}. "
+            "Each is validated by the service so every invalid one is reported with its reason."
+        )
+    )
+
+
+class DocumentResult(BaseModel):
+    id: str
+    status: Literal["created", "updated", "unchanged"]
+    chunks: int
+
+
+class DocumentBatchOut(BaseModel):
+    results: list[DocumentResult]
+
+
+class ChunkOut(BaseModel):
+    chunk_id: str
+    ordinal: int
+    text: str
+    char_start: int
+    char_end: int
+    tokens: int
+    section: str
+
+
+class DocumentOut(BaseModel):
+    id: str
+    title: str
+    media_type: str
+    source_url: str | None
+    content_hash: str
+    attributes: dict[str, Any]
+    access: list[str]
+    created_at: dt.datetime
+    updated_at: dt.datetime
+    text: str
+    chunks: list[ChunkOut]
+
+
+class DocumentSummary(BaseModel):
+    id: str
+    title: str
+    media_type: str
+    source_url: str | None
+    attributes: dict[str, Any]
+    access: list[str]
+    updated_at: dt.datetime
+
+
+class DocumentListOut(BaseModel):
+    documents: list[DocumentSummary]
+    total: int
+    next_after: str | None
+
+
+class DeletedOut(BaseModel):
+    deleted: int
+
+
+class TimeWindowIn(Strict):
+    attribute: str
+    last: str
+    now: str | None = None
+
+
+class SearchIn(Strict):
+    query: str = Field(min_length=1)
+    filter: str | dict[str, Any] | None = None
+    time_window: TimeWindowIn | None = None
+    top_k: int = Field(10, ge=1)
+    mode: Literal["hybrid", "lexical", "semantic"] = "hybrid"
+    rrf_k: int = Field(60, ge=1, le=10_000)
+    depth: int = Field(100, ge=1)
+    query_vector: list[float] | None = None
+
+
+class ContextIn(SearchIn):
+    token_budget: int = Field(1000, ge=1)
+
+
+class AnswerIn(ContextIn):
+    generator: str | None = None
+
+
+class Ranks(BaseModel):
+    lexical: int | None = None
+    semantic: int | None = None
+
+
+class HitOut(BaseModel):
+    chunk_id: str
+    document_id: str
+    title: str
+    section: str
+    text: str
+    score: float
+    ranks: Ranks
+    attributes: dict[str, Any]
+
+
+class SearchOut(BaseModel):
+    hits: list[HitOut]
+    candidates: int
+    trace_id: str
+
+
+class PassageOut(BaseModel):
+    marker: int
+    document_id: str
+    title: str
+    section: str
+    chunk_ids: list[str]
+    text: str
+    tokens: int
+    char_start: int
+    char_end: int
+
+
+class ContextOut(BaseModel):
+    context: str
+    passages: list[PassageOut]
+    tokens_used: int
+    token_budget: int
+    trace_id: str
+
+
+class CitationOut(BaseModel):
+    marker: int
+    document_id: str
+    title: str
+    section: str
+    chunk_ids: list[str]
+    source_url: str | None
+    attributes: dict[str, Any]
+
+
+class AnswerOut(BaseModel):
+    answer: str | None
+    reason: Literal["no_candidates", "insufficient_evidence"] | None = None
+    citations: list[CitationOut]
+    passages: list[PassageOut]
+    generator: str
+    caution: str | None = None
+    trace_id: str
+
+
+class TraceOut(BaseModel):
+    model_config = ConfigDict(extra="allow")
+    trace_id: str
+    route: str
+    collection: str
+    created_at: dt.datetime
+    request: dict[str, Any]
+    stages: list[dict[str, Any]]
+
+
+class HealthOut(BaseModel):
+    status: str

@@ -1,0 +1,456 @@
+"""The ``excerpta`` command: serve, migrate, ingest, keys, search, ask, eval, bench, demo.
+
+Commands that need no running server work on the store directly, through the same use cases
+the HTTP API calls; a running server picks up their writes from the store's change log.
+Exit status: 0 success, 1 a failure the command explains, 2 bad usage.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from service.config import Settings
+from service.errors import InvalidDocuments, ServiceError
+
+DEMO_COLLECTION = "bikes"
+
+
+def _settings(args: argparse.Namespace) -> Settings:
+    overrides: dict[str, Any] = {}
+    for name in ("data_dir", "database_url", "host", "port"):
+        value = getattr(args, name, None)
+        if value is not None:
+            overrides[name] = value
+    return Settings(**overrides)
+
+
+def _runtime(args: argparse.Namespace) -> Any:
+    from service.usecases.runtime import Runtime, load_embedder
+
+    settings = _settings(args)
+    settings.data_dir.mkdir(parents=True, exist_ok=True)
+    return Runtime(settings, load_embedder(settings))
+
+
+def _print_json(value: Any) -> None:
+    print(json.dumps(value, indent=2, ensure_ascii=False, default=str))
+
+
+# serve / migrate ---------------------------------------------------------------------------------
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from service.api.app import create_app
+    from service.logging_setup import configure_logging
+
+    configure_logging()
+    runtime = _runtime(args)
+    app = create_app(runtime)
+    settings = runtime.settings
+    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=True)
+    return 0
+
+
+def cmd_migrate(args: argparse.Namespace) -> int:
+    from service.store.db import make_engine, migrate
+
+    settings = _settings(args)
+    settings.data_dir.mkdir(parents=True, exist_ok=True)
+    engine = make_engine(settings.resolved_database_url())
+    migrate(engine)
+    engine.dispose()
+    print("migrated to the newest schema")
+    return 0
+
+
+# ingest ------------------------------------------------------------------------------------------
+
+
+def ingest_path(
+    runtime: Any,
+    collection: str,
+    path: Path,
+    *,
+    schema_file: Path | None,
+    batch_size: int,
+    progress: bool = True,
+    report: Callable[[str], None] = print,
+) -> tuple[int, int]:
+    """Ingest a folder or a .jsonl file; returns (documents written, files that failed)."""
+    from tqdm import tqdm
+
+    from service.ingest.source_files import read_source
+    from service.usecases import collections as collections_usecase
+    from service.usecases import documents as documents_usecase
+    from service.usecases.callers import LOCAL_ADMIN
+
+    if schema_file is not None:
+        raw = json.loads(schema_file.read_text(encoding="utf-8"))
+        spec = collections_usecase.CollectionSpec(
+            description=raw.get("description"),
+            attributes=raw.get("attributes"),
+            chunking=raw.get("chunking"),
+            cite_attributes=raw.get("cite_attributes"),
+            answer_caution=raw.get("answer_caution"),
+            retrieval=raw.get("retrieval"),
+        )
+        collections_usecase.put_collection(runtime, LOCAL_ADMIN, collection, spec)
+
+    failures = 0
+    written = 0
+    chunks = 0
+    started = time.perf_counter()
+    items = list(read_source(path))
+    bar = tqdm(total=len(items), unit="doc", disable=not progress, file=sys.stderr)
+    batch: list[tuple[str, dict[str, Any]]] = []
+
+    def flush() -> None:
+        nonlocal failures, written, chunks
+        pending = list(batch)
+        batch.clear()
+        while pending:
+            try:
+                results = documents_usecase.upsert_documents(
+                    runtime, LOCAL_ADMIN, collection, [doc for _, doc in pending]
+                )
+            except InvalidDocuments as exc:
+                bad = {problem["index"] for problem in exc.extra["documents"]}
+                for problem in exc.extra["documents"]:
+                    origin = pending[problem["index"]][0]
+                    report(f"{origin}: {problem['message']}")
+                failures += len(bad)
+                bar.update(len(bad))
+                pending = [item for i, item in enumerate(pending) if i not in bad]
+                continue
+            written += sum(1 for r in results if r["status"] != "unchanged")
+            chunks += sum(r["chunks"] for r in results)
+            bar.update(len(pending))
+            elapsed = max(time.perf_counter() - started, 1e-9)
+            bar.set_postfix(chunks=chunks, chunks_per_s=f"{chunks / elapsed:.1f}")
+            pending = []
+
+    for item in items:
+        if item.error is not None or item.document is None:
+            report(f"{item.origin}: {item.error}")
+            failures += 1
+            bar.update(1)
+            continue
+        batch.append((item.origin, item.document))
+        if len(batch) >= batch_size:
+            flush()
+    flush()
+    bar.close()
+    return written, failures
+
+
+def cmd_ingest(args: argparse.Namespace) -> int:
+    runtime = _runtime(args)
+    try:
+        written, failures = ingest_path(
+            runtime,
+            args.collection,
+            Path(args.path),
+            schema_file=Path(args.schema) if args.schema else None,
+            batch_size=args.batch_size,
+            report=lambda line: print(line, file=sys.stderr),
+        )
+    finally:
+        runtime.close()
+    print(f"{written} documents written, {failures} failed")
+    return 1 if failures else 0
+
+
+# keys --------------------------------------------------------------------------------------------
+
+
+def _split(value: str | None) -> list[str] | None:
+    if value is None:
+        return None
+    return [part.strip() for part in value.split(",") if part.strip()]
+
+
+def _key_session(args: argparse.Namespace) -> Any:
+    from service.store.db import make_engine, migrate, session_factory
+
+    settings = _settings(args)
+    settings.data_dir.mkdir(parents=True, exist_ok=True)
+    engine = make_engine(settings.resolved_database_url())
+    migrate(engine)
+    return engine, session_factory(engine)
+
+
+def cmd_keys(args: argparse.Namespace) -> int:
+    from service.store.db import unit_of_work
+    from service.usecases import keys
+
+    engine, factory = _key_session(args)
+    try:
+        with unit_of_work(factory) as session:
+            if args.keys_command == "create":
+                secret, info = keys.create_key(
+                    session,
+                    role=args.role,
+                    groups=_split(args.groups) or [],
+                    collections=_split(args.collections),
+                    name=args.name,
+                )
+                print(secret)
+                print(f"created key {info.name!r} ({info.role}); it is shown only once", file=sys.stderr)
+            elif args.keys_command == "revoke":
+                keys.revoke_key(session, args.name)
+                print(f"revoked key {args.name!r}")
+            else:
+                rows = keys.list_keys(session)
+                if args.json:
+                    _print_json([vars(r) for r in rows])
+                else:
+                    print(f"{'name':<24} {'role':<7} {'groups':<20} {'collections':<20} "
+                          f"{'created':<20} {'last used':<20} state")
+                    for r in rows:
+                        print(
+                            f"{r.name:<24} {r.role:<7} {','.join(r.groups) or '-':<20} "
+                            f"{','.join(r.collections) if r.collections is not None else 'all':<20} "
+                            f"{r.created_at:%Y-%m-%d %H:%M:%S}  "
+                            f"{r.last_used_at.strftime('%Y-%m-%d %H:%M:%S') if r.last_used_at else '-':<20} "
+                            f"{'revoked' if r.revoked else 'active'}"
+                        )
+    finally:
+        engine.dispose()
+    return 0
+
+
+# search / ask ------------------------------------------------------------------------------------
+
+
+def _filter_arg(value: str | None) -> str | dict[str, Any] | None:
+    if value is None:
+        return None
+    if value.strip().startswith("{"):
+        parsed = json.loads(value)
+        if isinstance(parsed, dict):
+            return parsed
+    return value
+
+
+def cmd_search(args: argparse.Namespace) -> int:
+    from service.usecases import answering
+    from service.usecases.callers import LOCAL_ADMIN
+    from service.usecases.search import SearchOptions
+
+    runtime = _runtime(args)
+    try:
+        options = SearchOptions(
+            query=args.query, filter=_filter_arg(args.filter), top_k=args.top_k, mode=args.mode
+        )
+        result = answering.search(runtime, LOCAL_ADMIN, args.collection, options)
+    finally:
+        runtime.close()
+    if args.json:
+        _print_json(result)
+        return 0
+    print(f"{result['candidates']} candidates; trace {result['trace_id']}")
+    print(f"{'rank':>4} {'score':>9} {'lex':>4} {'sem':>4}  {'document':<28} {'section':<24} text")
+    for rank, hit in enumerate(result["hits"], start=1):
+        ranks = hit["ranks"]
+        words = " ".join(hit["text"].split()[:10])
+        print(
+            f"{rank:>4} {hit['score']:>9.4f} {ranks.get('lexical') or '-':>4} "
+            f"{ranks.get('semantic') or '-':>4}  {hit['document_id'][:28]:<28} "
+            f"{hit['section'][:24]:<24} {words}"
+        )
+    return 0
+
+
+def cmd_ask(args: argparse.Namespace) -> int:
+    from service.usecases import answering
+    from service.usecases.callers import LOCAL_ADMIN
+    from service.usecases.search import SearchOptions
+
+    runtime = _runtime(args)
+    try:
+        options = SearchOptions(query=args.question, filter=_filter_arg(args.filter), top_k=10)
+        result = answering.answer(
+            runtime, LOCAL_ADMIN, args.collection, options, args.budget, args.generator
+        )
+    finally:
+        runtime.close()
+    if args.json:
+        _print_json(result)
+        return 0
+    if result["answer"] is None:
+        print(f"No answer ({result['reason']}).")
+    else:
+        print(result["answer"])
+    print()
+    for citation in result["citations"]:
+        section = f" — {citation['section']}" if citation["section"] else ""
+        print(f"[{citation['marker']}] {citation['title']}{section} ({citation['document_id']})")
+    if result.get("caution"):
+        print(f"\nCaution: {result['caution']}")
+    return 0
+
+
+# demo --------------------------------------------------------------------------------------------
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    """Make the demo collection and key once; later runs re-use the store as it is."""
+    from service.store.db import unit_of_work
+    from service.store.repository import collection_by_name
+    from service.usecases import keys
+
+    runtime = _runtime(args)
+    corpus = Path(args.corpus)
+    try:
+        with runtime.transaction() as session:
+            exists = collection_by_name(session, DEMO_COLLECTION) is not None
+        if exists:
+            print(f"demo collection {DEMO_COLLECTION!r} already in the store; not re-ingesting")
+        else:
+            written, failures = ingest_path(
+                runtime,
+                DEMO_COLLECTION,
+                corpus,
+                schema_file=corpus / "schema.json",
+                batch_size=64,
+                report=lambda line: print(line, file=sys.stderr),
+            )
+            print(f"ingested {written} demo documents ({failures} failed)")
+        key_file = runtime.settings.data_dir / "demo-key"
+        if not key_file.exists():
+            with unit_of_work(runtime.sessions) as session:
+                secret, _ = keys.create_key(
+                    session, role="admin", groups=[], collections=None, name=f"demo-{os.getpid()}"
+                )
+            key_file.write_text(secret + "\n", encoding="utf-8")
+            key_file.chmod(0o600)
+            print(f"demo admin key written to {key_file}: {secret}")
+        else:
+            print(f"demo admin key in {key_file}")
+    finally:
+        runtime.close()
+    return 0
+
+
+# eval / bench ------------------------------------------------------------------------------------
+
+
+def cmd_eval(args: argparse.Namespace) -> int:
+    from service.usecases.evaluate import run_eval_command
+
+    return run_eval_command(args, _runtime)
+
+
+def cmd_bench(args: argparse.Namespace) -> int:
+    from service.bench.command import run_bench_command
+
+    return run_bench_command(args)
+
+
+# parser ------------------------------------------------------------------------------------------
+
+
+def _common(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--data-dir", type=Path, help="data directory (EXCERPTA_DATA_DIR)")
+    parser.add_argument("--database-url", help="database URL (EXCERPTA_DATABASE_URL)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="excerpta", description=__doc__.splitlines()[0])
+    commands = parser.add_subparsers(dest="command", required=True)
+
+    serve = commands.add_parser("serve", help="run the HTTP API")
+    _common(serve)
+    serve.add_argument("--host")
+    serve.add_argument("--port", type=int)
+    serve.set_defaults(handler=cmd_serve)
+
+    migrate = commands.add_parser("migrate", help="bring the store's schema up to date")
+    _common(migrate)
+    migrate.set_defaults(handler=cmd_migrate)
+
+    ingest = commands.add_parser("ingest", help="ingest a folder or a .jsonl file")
+    _common(ingest)
+    ingest.add_argument("collection")
+    ingest.add_argument("path")
+    ingest.add_argument("--schema", help="collection schema (JSON) to create or update first")
+    ingest.add_argument("--batch-size", type=int, default=64)
+    ingest.set_defaults(handler=cmd_ingest)
+
+    keys = commands.add_parser("keys", help="create, revoke and list API keys")
+    keys_commands = keys.add_subparsers(dest="keys_command", required=True)
+    create = keys_commands.add_parser("create")
+    _common(create)
+    create.add_argument("--role", required=True, choices=["reader", "writer", "admin"])
+    create.add_argument("--groups")
+    create.add_argument("--collections")
+    create.add_argument("--name")
+    revoke = keys_commands.add_parser("revoke")
+    _common(revoke)
+    revoke.add_argument("name")
+    listing = keys_commands.add_parser("list")
+    _common(listing)
+    listing.add_argument("--json", action="store_true")
+    keys.set_defaults(handler=cmd_keys)
+
+    search = commands.add_parser("search", help="search a collection")
+    _common(search)
+    search.add_argument("collection")
+    search.add_argument("query")
+    search.add_argument("--filter")
+    search.add_argument("--mode", default="hybrid", choices=["hybrid", "lexical", "semantic"])
+    search.add_argument("--top-k", type=int, default=10)
+    search.add_argument("--json", action="store_true")
+    search.set_defaults(handler=cmd_search)
+
+    ask = commands.add_parser("ask", help="answer a question with citations")
+    _common(ask)
+    ask.add_argument("collection")
+    ask.add_argument("question")
+    ask.add_argument("--filter")
+    ask.add_argument("--budget", type=int, default=1000)
+    ask.add_argument("--generator")
+    ask.add_argument("--json", action="store_true")
+    ask.set_defaults(handler=cmd_ask)
+
+    demo = commands.add_parser("demo", help="create the demo collection and key if missing")
+    _common(demo)
+    demo.add_argument("--corpus", default="corpus_example")
+    demo.set_defaults(handler=cmd_demo)
+
+    from service.usecases.evaluate import add_eval_arguments
+
+    evaluate = commands.add_parser("eval", help="measure retrieval quality on labeled queries")
+    _common(evaluate)
+    add_eval_arguments(evaluate)
+    evaluate.set_defaults(handler=cmd_eval)
+
+    from service.bench.command import add_bench_arguments
+
+    bench = commands.add_parser("bench", help="benchmark the index against references")
+    add_bench_arguments(bench)
+    bench.set_defaults(handler=cmd_bench)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        code: int = args.handler(args)
+    except ServiceError as exc:
+        print(f"error: {exc.message}", file=sys.stderr)
+        return 1
+    return code
+
+
+if __name__ == "__main__":
+    sys.exit(main())

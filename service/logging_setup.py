@@ -1,0 +1,55 @@
+"""Logging that never writes a key or secret: a filter scrubs every record on every handler."""
+
+from __future__ import annotations
+
+import logging
+import re
+
+_SECRETS = (
+    re.compile(r"xk_[0-9a-f]{16}_[A-Za-z0-9_-]{43}"),
+    re.compile(r"(?i)(authorization['\"]?\s*[:=]\s*['\"]?)(bearer\s+)?[^\s'\",]+"),
+    re.compile(r"(?i)(bearer\s+)[^\s'\",]+"),
+)
+_extra_secrets: set[str] = set()
+
+
+def register_secret(value: str) -> None:
+    """Scrub this exact value too (a generator's key from settings)."""
+    if value:
+        _extra_secrets.add(value)
+
+
+def redact(text: str) -> str:
+    for secret in _extra_secrets:
+        text = text.replace(secret, "[redacted]")
+    text = _SECRETS[0].sub("[redacted]", text)
+    text = _SECRETS[1].sub(lambda m: f"{m.group(1)}[redacted]", text)
+    return _SECRETS[2].sub(lambda m: f"{m.group(1)}[redacted]", text)
+
+
+class RedactingFilter(logging.Filter):
+    def filter(self, record: logging.LogRecord) -> bool:
+        message = record.getMessage()
+        cleaned = redact(message)
+        if cleaned != message:
+            record.msg = cleaned
+            record.args = None
+        return True
+
+
+def install_redaction() -> None:
+    """Attach the filter to the root handlers and the loggers that see requests."""
+    redacting = RedactingFilter()
+    root = logging.getLogger()
+    for handler in root.handlers:
+        handler.addFilter(redacting)
+    for name in ("uvicorn", "uvicorn.access", "uvicorn.error", "httpx", "httpcore", "excerpta"):
+        logger = logging.getLogger(name)
+        if not any(isinstance(f, RedactingFilter) for f in logger.filters):
+            logger.addFilter(redacting)
+
+
+def configure_logging(level: int = logging.INFO) -> None:
+    logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    logging.getLogger("httpx").setLevel(logging.WARNING)
+    install_redaction()

@@ -1,0 +1,329 @@
+"""Queries and writes over the tables, so use cases never build SQL themselves."""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import numpy as np
+from sqlalchemy import ColumnElement, delete, exists, func, or_, select, update
+from sqlalchemy.orm import Session
+
+from service.store.tables import (
+    ApiKeyRow,
+    AttributeValueRow,
+    ChangeRow,
+    ChunkRow,
+    CollectionRow,
+    DocumentGroupRow,
+    DocumentRow,
+    EmbeddingRow,
+    TraceRow,
+)
+
+
+def utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.UTC)
+
+
+# Collections ------------------------------------------------------------------------------------
+
+
+def collection_by_name(session: Session, name: str) -> CollectionRow | None:
+    return session.scalars(select(CollectionRow).where(CollectionRow.name == name)).first()
+
+
+def all_collections(session: Session) -> list[CollectionRow]:
+    return list(session.scalars(select(CollectionRow).order_by(CollectionRow.name)))
+
+
+def bump_revision(
+    session: Session, collection: CollectionRow, operations: Iterable[tuple[str | None, str]]
+) -> int:
+    """Advance the collection's revision once and log each (document id, operation) under it.
+
+    The UPDATE takes the row lock first, so concurrent writers (threads, the CLI, replicas)
+    serialise on it and every revision number is used exactly once.
+    """
+    session.execute(
+        update(CollectionRow)
+        .where(CollectionRow.id == collection.id)
+        .values(revision=CollectionRow.revision + 1, updated_at=utcnow())
+    )
+    revision = session.scalar(
+        select(CollectionRow.revision).where(CollectionRow.id == collection.id)
+    )
+    assert revision is not None
+    collection.revision = revision
+    now = utcnow()
+    session.add_all(
+        ChangeRow(
+            collection_id=collection.id,
+            revision=revision,
+            document_id=document_id,
+            operation=operation,
+            created_at=now,
+        )
+        for document_id, operation in operations
+    )
+    return revision
+
+
+def current_revision(session: Session, collection_id: int) -> int | None:
+    return session.scalar(select(CollectionRow.revision).where(CollectionRow.id == collection_id))
+
+
+def changes_since(session: Session, collection_id: int, revision: int) -> list[ChangeRow]:
+    return list(
+        session.scalars(
+            select(ChangeRow)
+            .where(ChangeRow.collection_id == collection_id, ChangeRow.revision > revision)
+            .order_by(ChangeRow.revision, ChangeRow.id)
+        )
+    )
+
+
+# Documents --------------------------------------------------------------------------------------
+
+
+def documents_by_external_id(
+    session: Session, collection_id: int, external_ids: Sequence[str]
+) -> dict[str, DocumentRow]:
+    found: dict[str, DocumentRow] = {}
+    for start in range(0, len(external_ids), 500):
+        part = external_ids[start : start + 500]
+        rows = session.scalars(
+            select(DocumentRow).where(
+                DocumentRow.collection_id == collection_id, DocumentRow.external_id.in_(part)
+            )
+        )
+        found.update((row.external_id, row) for row in rows)
+    return found
+
+
+def visible_condition(groups: frozenset[str] | None) -> ColumnElement[bool] | None:
+    """SQL for "the caller may see this document"; None means everything (an admin)."""
+    if groups is None:
+        return None
+    has_groups = exists().where(DocumentGroupRow.document_id == DocumentRow.id)
+    if not groups:
+        return ~has_groups
+    shares_group = exists().where(
+        DocumentGroupRow.document_id == DocumentRow.id,
+        DocumentGroupRow.group_name.in_(sorted(groups)),
+    )
+    return or_(~has_groups, shares_group)
+
+
+def count_documents(
+    session: Session, collection_id: int, groups: frozenset[str] | None
+) -> tuple[int, int]:
+    """Documents and live chunks of the current generation the caller can see."""
+    conditions: list[ColumnElement[bool]] = [DocumentRow.collection_id == collection_id]
+    visible = visible_condition(groups)
+    if visible is not None:
+        conditions.append(visible)
+    documents = session.scalar(select(func.count(DocumentRow.id)).where(*conditions)) or 0
+    generation = select(CollectionRow.chunk_generation).where(CollectionRow.id == collection_id)
+    chunks = (
+        session.scalar(
+            select(func.count(ChunkRow.id))
+            .join(DocumentRow, ChunkRow.document_id == DocumentRow.id)
+            .where(*conditions, ChunkRow.generation == generation.scalar_subquery())
+        )
+        or 0
+    )
+    return documents, chunks
+
+
+def list_documents(
+    session: Session,
+    collection_id: int,
+    *,
+    groups: frozenset[str] | None,
+    condition: ColumnElement[bool] | None,
+    after: str | None,
+    limit: int,
+) -> list[DocumentRow]:
+    conditions: list[ColumnElement[bool]] = [DocumentRow.collection_id == collection_id]
+    visible = visible_condition(groups)
+    if visible is not None:
+        conditions.append(visible)
+    if condition is not None:
+        conditions.append(condition)
+    if after is not None:
+        conditions.append(DocumentRow.external_id > after)
+    query = select(DocumentRow).where(*conditions).order_by(DocumentRow.external_id).limit(limit)
+    return list(session.scalars(query))
+
+
+def matching_document_ids(
+    session: Session,
+    collection_id: int,
+    *,
+    groups: frozenset[str] | None,
+    condition: ColumnElement[bool] | None,
+) -> list[tuple[int, str]]:
+    conditions: list[ColumnElement[bool]] = [DocumentRow.collection_id == collection_id]
+    visible = visible_condition(groups)
+    if visible is not None:
+        conditions.append(visible)
+    if condition is not None:
+        conditions.append(condition)
+    rows = session.execute(select(DocumentRow.id, DocumentRow.external_id).where(*conditions))
+    return [(row[0], row[1]) for row in rows]
+
+
+def delete_documents(session: Session, document_pks: Sequence[int]) -> None:
+    for start in range(0, len(document_pks), 500):
+        part = list(document_pks[start : start + 500])
+        # Children first: SQLite's foreign-key cascade is on, but explicit deletes keep the
+        # behaviour identical on every backend and connection.
+        session.execute(delete(ChunkRow).where(ChunkRow.document_id.in_(part)))
+        session.execute(delete(AttributeValueRow).where(AttributeValueRow.document_id.in_(part)))
+        session.execute(delete(DocumentGroupRow).where(DocumentGroupRow.document_id.in_(part)))
+        session.execute(delete(DocumentRow).where(DocumentRow.id.in_(part)))
+
+
+def replace_document_children(
+    session: Session,
+    document: DocumentRow,
+    *,
+    attribute_rows: Sequence[dict[str, Any]],
+    groups: Sequence[str],
+) -> None:
+    session.execute(delete(AttributeValueRow).where(AttributeValueRow.document_id == document.id))
+    session.execute(delete(DocumentGroupRow).where(DocumentGroupRow.document_id == document.id))
+    session.add_all(AttributeValueRow(document_id=document.id, **row) for row in attribute_rows)
+    session.add_all(DocumentGroupRow(document_id=document.id, group_name=g) for g in groups)
+
+
+def replace_chunks(
+    session: Session, document_pk: int, generation: int, chunks: Sequence[dict[str, Any]]
+) -> None:
+    session.execute(
+        delete(ChunkRow).where(ChunkRow.document_id == document_pk, ChunkRow.generation == generation)
+    )
+    session.add_all(ChunkRow(document_id=document_pk, generation=generation, **c) for c in chunks)
+
+
+def chunks_of(session: Session, document_pk: int, generation: int) -> list[ChunkRow]:
+    return list(
+        session.scalars(
+            select(ChunkRow)
+            .where(ChunkRow.document_id == document_pk, ChunkRow.generation == generation)
+            .order_by(ChunkRow.ordinal)
+        )
+    )
+
+
+def documents_without_generation(
+    session: Session, collection_id: int, generation: int, limit: int
+) -> list[DocumentRow]:
+    has_chunks = exists().where(
+        ChunkRow.document_id == DocumentRow.id, ChunkRow.generation == generation
+    )
+    return list(
+        session.scalars(
+            select(DocumentRow)
+            .where(DocumentRow.collection_id == collection_id, ~has_chunks)
+            .order_by(DocumentRow.id)
+            .limit(limit)
+        )
+    )
+
+
+def drop_generations_except(session: Session, collection_id: int, generation: int) -> None:
+    document_ids = select(DocumentRow.id).where(DocumentRow.collection_id == collection_id)
+    session.execute(
+        delete(ChunkRow).where(
+            ChunkRow.document_id.in_(document_ids), ChunkRow.generation != generation
+        )
+    )
+
+
+def index_rows(
+    session: Session, collection_id: int, generation: int, document_pks: Sequence[int] | None
+) -> list[tuple[DocumentRow, ChunkRow, bytes]]:
+    """Every chunk of the generation with its document and vector, for building an index."""
+    query = (
+        select(DocumentRow, ChunkRow, EmbeddingRow.vector)
+        .join(ChunkRow, ChunkRow.document_id == DocumentRow.id)
+        .join(
+            EmbeddingRow,
+            (EmbeddingRow.text_hash == ChunkRow.embedded_text_hash)
+            & (EmbeddingRow.embedder == CollectionRow.embedder),
+        )
+        .join(CollectionRow, CollectionRow.id == DocumentRow.collection_id)
+        .where(DocumentRow.collection_id == collection_id, ChunkRow.generation == generation)
+        .order_by(DocumentRow.id, ChunkRow.ordinal)
+    )
+    if document_pks is not None:
+        query = query.where(DocumentRow.id.in_(list(document_pks)))
+    return [(row[0], row[1], row[2]) for row in session.execute(query)]
+
+
+# Embeddings -------------------------------------------------------------------------------------
+
+
+def cached_embeddings(
+    session: Session, embedder: str, hashes: Sequence[str]
+) -> dict[str, np.ndarray]:
+    found: dict[str, np.ndarray] = {}
+    unique = sorted(set(hashes))
+    for start in range(0, len(unique), 500):
+        part = unique[start : start + 500]
+        rows = session.execute(
+            select(EmbeddingRow.text_hash, EmbeddingRow.vector).where(
+                EmbeddingRow.embedder == embedder, EmbeddingRow.text_hash.in_(part)
+            )
+        )
+        for text_hash, blob in rows:
+            found[text_hash] = np.frombuffer(blob, dtype=np.float32)
+    return found
+
+
+def store_embeddings(session: Session, embedder: str, vectors: dict[str, np.ndarray]) -> None:
+    """Insert embeddings not yet stored; another writer may have stored the same text meanwhile."""
+    if not vectors:
+        return
+    present = cached_embeddings(session, embedder, list(vectors))
+    session.add_all(
+        EmbeddingRow(
+            embedder=embedder,
+            text_hash=text_hash,
+            dimensions=int(vector.shape[0]),
+            vector=np.asarray(vector, dtype=np.float32).tobytes(),
+        )
+        for text_hash, vector in vectors.items()
+        if text_hash not in present
+    )
+
+
+# Keys and traces --------------------------------------------------------------------------------
+
+
+def key_by_lookup(session: Session, lookup: str) -> ApiKeyRow | None:
+    return session.scalars(select(ApiKeyRow).where(ApiKeyRow.lookup == lookup)).first()
+
+
+def key_by_name(session: Session, name: str) -> ApiKeyRow | None:
+    return session.scalars(select(ApiKeyRow).where(ApiKeyRow.name == name)).first()
+
+
+def all_keys(session: Session) -> list[ApiKeyRow]:
+    return list(session.scalars(select(ApiKeyRow).order_by(ApiKeyRow.created_at, ApiKeyRow.id)))
+
+
+def trace_by_id(session: Session, trace_id: str) -> TraceRow | None:
+    return session.get(TraceRow, trace_id)
+
+
+def prune_traces(session: Session, *, older_than: dt.datetime, keep: int) -> None:
+    session.execute(delete(TraceRow).where(TraceRow.created_at < older_than))
+    cutoff = session.scalar(
+        select(TraceRow.created_at).order_by(TraceRow.created_at.desc()).offset(keep).limit(1)
+    )
+    if cutoff is not None:
+        session.execute(delete(TraceRow).where(TraceRow.created_at <= cutoff))

@@ -1,0 +1,260 @@
+"""Creating, updating, showing and removing collections."""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from typing import Any
+
+from sqlalchemy.orm import Session
+
+from service.attributes import AttributeType, AttributeValueError, parse_schema
+from service.errors import CollectionNotFound, Conflict, InvalidRequest
+from service.store import repository
+from service.store.tables import CollectionRow
+from service.usecases.callers import Caller, Role
+from service.usecases.runtime import Runtime
+
+COLLECTION_NAME = re.compile(r"[a-z][a-z0-9_-]{0,62}")
+SPECIAL_TOKEN_ALLOWANCE = 32
+DEFAULT_CHUNKING = {"max_tokens": 200, "overlap_tokens": 40}
+DEFAULT_RETRIEVAL: dict[str, Any] = {
+    "bm25": "smoothed",
+    "k1": 1.2,
+    "b": 0.75,
+    "metric": "cosine",
+    "stemming": True,
+    "stopwords": True,
+}
+
+
+@dataclass(frozen=True)
+class CollectionSpec:
+    """What a PUT may say; fields left None keep the collection's current value."""
+
+    description: str | None = None
+    attributes: dict[str, Any] | None = None
+    chunking: dict[str, Any] | None = None
+    cite_attributes: list[str] | None = None
+    answer_caution: str | None = None
+    retrieval: dict[str, Any] | None = None
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+def check_collection_name(name: str) -> None:
+    if not COLLECTION_NAME.fullmatch(name):
+        raise InvalidRequest(
+            "Collection names must match [a-z][a-z0-9_-]{0,62}.", field="collection"
+        )
+
+
+def load_collection(session: Session, caller: Caller, name: str) -> CollectionRow:
+    """The named collection, or the same 404 whether it is missing or outside the key's list."""
+    caller.require_collection(name)
+    row = repository.collection_by_name(session, name)
+    if row is None:
+        raise CollectionNotFound(f"Collection {name!r} does not exist.")
+    return row
+
+
+def _checked_chunking(raw: dict[str, Any], window: int) -> dict[str, int]:
+    limit = window - SPECIAL_TOKEN_ALLOWANCE
+    max_tokens = raw.get("max_tokens", DEFAULT_CHUNKING["max_tokens"])
+    overlap = raw.get("overlap_tokens", DEFAULT_CHUNKING["overlap_tokens"])
+    unknown = set(raw) - {"max_tokens", "overlap_tokens"}
+    if unknown:
+        name = sorted(unknown)[0]
+        raise InvalidRequest(f"chunking has no setting {name!r}.", field=f"chunking.{name}")
+    if isinstance(max_tokens, bool) or not isinstance(max_tokens, int) or max_tokens < 16:
+        raise InvalidRequest(
+            "chunking.max_tokens must be an integer of at least 16.", field="chunking.max_tokens"
+        )
+    if max_tokens > limit:
+        raise InvalidRequest(
+            f"chunking.max_tokens must be at most {limit} for this embedder.",
+            field="chunking.max_tokens",
+        )
+    if isinstance(overlap, bool) or not isinstance(overlap, int) or not 0 <= overlap < max_tokens:
+        raise InvalidRequest(
+            "chunking.overlap_tokens must be an integer from 0 to below max_tokens.",
+            field="chunking.overlap_tokens",
+        )
+    return {"max_tokens": max_tokens, "overlap_tokens": overlap}
+
+
+def _checked_retrieval(raw: dict[str, Any], current: dict[str, Any]) -> dict[str, Any]:
+    merged = {**DEFAULT_RETRIEVAL, **current, **raw}
+    unknown = set(raw) - set(DEFAULT_RETRIEVAL)
+    if unknown:
+        name = sorted(unknown)[0]
+        raise InvalidRequest(f"retrieval has no setting {name!r}.", field=f"retrieval.{name}")
+    if merged["bm25"] not in ("smoothed", "okapi"):
+        raise InvalidRequest("retrieval.bm25 must be smoothed or okapi.", field="retrieval.bm25")
+    if merged["metric"] not in ("cosine", "dot", "euclidean"):
+        raise InvalidRequest(
+            "retrieval.metric must be cosine, dot or euclidean.", field="retrieval.metric"
+        )
+    for name, low, high in (("k1", 0.0, 10.0), ("b", 0.0, 1.0)):
+        value = merged[name]
+        if isinstance(value, bool) or not isinstance(value, int | float) or not low <= value <= high:
+            raise InvalidRequest(
+                f"retrieval.{name} must be a number from {low} to {high}.",
+                field=f"retrieval.{name}",
+            )
+        merged[name] = float(value)
+    for name in ("stemming", "stopwords"):
+        if not isinstance(merged[name], bool):
+            raise InvalidRequest(f"retrieval.{name} must be true or false.", field=f"retrieval.{name}")
+    return merged
+
+
+def put_collection(
+    runtime: Runtime, caller: Caller, name: str, spec: CollectionSpec
+) -> tuple[bool, dict[str, Any]]:
+    """Create or update a collection; returns (created, view)."""
+    caller.require(Role.ADMIN)
+    check_collection_name(name)
+    caller.require_collection(name)
+    if spec.extra:
+        unknown = sorted(spec.extra)[0]
+        raise InvalidRequest(f"Collections have no field {unknown!r}.", field=unknown)
+    try:
+        new_schema = parse_schema(spec.attributes or {})
+    except AttributeValueError as exc:
+        raise InvalidRequest(f"{exc}.", field="attributes") from None
+    window = runtime.embedder.window
+    with runtime.transaction() as session:
+        row = repository.collection_by_name(session, name)
+        created = row is None
+        old_schema = {} if row is None else parse_schema(row.attributes)
+        for attr, type_ in new_schema.items():
+            if attr in old_schema and old_schema[attr] is not type_:
+                raise Conflict(
+                    f"Attribute {attr!r} is {old_schema[attr].value}; its type cannot change."
+                )
+        schema = {**old_schema, **new_schema}
+        chunking = _checked_chunking(
+            spec.chunking if spec.chunking is not None else (row.chunking if row else {}), window
+        )
+        current_settings = dict(row.settings) if row else {}
+        retrieval = _checked_retrieval(spec.retrieval or {}, current_settings.get("retrieval", {}))
+        cite = spec.cite_attributes if spec.cite_attributes is not None else (
+            row.cite_attributes if row else []
+        )
+        for attr in cite:
+            if attr not in schema:
+                raise InvalidRequest(
+                    f"cite_attributes names {attr!r}, which is not an attribute.",
+                    field="cite_attributes",
+                )
+        now = repository.utcnow()
+        schema_json = {attr: {"type": type_.value} for attr, type_ in sorted(schema.items())}
+        if row is None:
+            row = CollectionRow(
+                name=name,
+                description=spec.description or "",
+                attributes=schema_json,
+                chunking=chunking,
+                cite_attributes=list(cite),
+                answer_caution=spec.answer_caution,
+                settings={"retrieval": retrieval},
+                embedder=runtime.embedder.name,
+                chunk_generation=0,
+                revision=0,
+                created_at=now,
+                updated_at=now,
+            )
+            session.add(row)
+            session.flush()
+            repository.bump_revision(session, row, [(None, "reset")])
+            rebuild_needed = False
+        else:
+            retrieval_changed = current_settings.get("retrieval") != retrieval
+            active_or_pending = current_settings.get("pending_chunking") or row.chunking
+            rebuild_needed = chunking != active_or_pending
+            if spec.description is not None:
+                row.description = spec.description
+            if spec.answer_caution is not None:
+                row.answer_caution = spec.answer_caution or None
+            row.attributes = schema_json
+            row.cite_attributes = list(cite)
+            settings = {**current_settings, "retrieval": retrieval}
+            if rebuild_needed:
+                if chunking == row.chunking:
+                    settings.pop("pending_chunking", None)
+                    row.rebuild_done = None
+                    row.rebuild_total = None
+                    rebuild_needed = False
+                else:
+                    settings["pending_chunking"] = chunking
+                    repository.drop_generations_except(session, row.id, row.chunk_generation)
+                    row.rebuild_done = 0
+                    row.rebuild_total = repository.count_documents(session, row.id, None)[0]
+            row.settings = settings
+            row.updated_at = now
+            if retrieval_changed or set(new_schema) - set(old_schema):
+                repository.bump_revision(session, row, [(None, "reset")])
+        view = collection_view(session, row, caller)
+    if rebuild_needed:
+        runtime.rebuilds.start(name)
+    return created, view
+
+
+def collection_view(session: Session, row: CollectionRow, caller: Caller) -> dict[str, Any]:
+    documents, chunks = repository.count_documents(session, row.id, caller.visible_groups)
+    pending = row.settings.get("pending_chunking")
+    view: dict[str, Any] = {
+        "name": row.name,
+        "description": row.description,
+        "attributes": row.attributes,
+        "chunking": pending or row.chunking,
+        "cite_attributes": row.cite_attributes,
+        "answer_caution": row.answer_caution,
+        "retrieval": row.settings.get("retrieval", DEFAULT_RETRIEVAL),
+        "tokenizer": _tokenizer_name(row),
+        "embedder": row.embedder,
+        "documents": documents,
+        "chunks": chunks,
+        "revision": row.revision,
+        "created_at": row.created_at,
+        "updated_at": row.updated_at,
+    }
+    if pending is not None:
+        view["rebuild"] = {"done": row.rebuild_done or 0, "total": row.rebuild_total or 0}
+    return view
+
+
+def _tokenizer_name(row: CollectionRow) -> str:
+    return "all-MiniLM-L6-v2 wordpiece" if row.embedder == "minilm" else row.embedder
+
+
+def get_collection(runtime: Runtime, caller: Caller, name: str) -> dict[str, Any]:
+    caller.require(Role.READER)
+    with runtime.transaction() as session:
+        return collection_view(session, load_collection(session, caller, name), caller)
+
+
+def list_collections(runtime: Runtime, caller: Caller) -> list[dict[str, Any]]:
+    caller.require(Role.READER)
+    with runtime.transaction() as session:
+        return [
+            collection_view(session, row, caller)
+            for row in repository.all_collections(session)
+            if caller.collections is None or row.name in caller.collections
+        ]
+
+
+def delete_collection(runtime: Runtime, caller: Caller, name: str) -> None:
+    caller.require(Role.ADMIN)
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, name)
+        document_pks = [pk for pk, _ in repository.matching_document_ids(
+            session, row.id, groups=None, condition=None
+        )]
+        repository.delete_documents(session, document_pks)
+        session.delete(row)
+    runtime.indexes.forget(name)
+
+
+def attribute_schema(row: CollectionRow) -> dict[str, AttributeType]:
+    return parse_schema(row.attributes)

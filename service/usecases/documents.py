@@ -1,0 +1,570 @@
+"""Ingesting, reading, listing and deleting documents.
+
+A batch is validated whole before anything is written; parsing, chunking and embedding happen
+before the write transaction opens, and the transaction replaces each document's rows at once,
+so a reader sees the old version or the new one and a rejected batch leaves the store as it was.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from sqlalchemy.orm import Session
+
+from service.attributes import (
+    AttributeValue,
+    AttributeValueError,
+    Schema,
+    normalize_value,
+    to_json_value,
+)
+from service.embedding.base import text_hash
+from service.errors import DocumentNotFound, InvalidDocuments, InvalidRequest, LimitExceeded
+from service.filters.check import check_filter
+from service.filters.parse import parse_filter
+from service.ingest.chunking import chunk_document
+from service.ingest.embedding_text import embedding_input
+from service.ingest.parsing import parse_document
+from service.store import repository
+from service.store.attribute_rows import attribute_value_rows
+from service.store.filter_sql import compile_filter
+from service.store.tables import CollectionRow, DocumentRow
+from service.usecases.callers import Caller, Role
+from service.usecases.collections import attribute_schema, load_collection
+from service.usecases.runtime import Runtime
+
+DOCUMENT_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+MEDIA_TYPES = ("text/plain", "text/markdown", "text/html")
+DOCUMENT_FIELDS = {"id", "title", "text", "media_type", "source_url", "attributes", "access"}
+_WORD = re.compile(r"\w", re.UNICODE)
+_GROUP = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+
+
+class DocumentProblem(ValueError):
+    def __init__(self, reason: str, message: str) -> None:
+        super().__init__(message)
+        self.reason = reason
+        self.message = message
+
+
+@dataclass(frozen=True)
+class PreparedDocument:
+    """A validated document: normalised values plus the hash that makes re-sends no-ops."""
+
+    index: int
+    external_id: str
+    title: str
+    media_type: str
+    source_url: str | None
+    source_text: str
+    attributes: dict[str, AttributeValue]
+    attributes_json: dict[str, Any]
+    access: tuple[str, ...]
+    content_hash: str
+
+
+@dataclass(frozen=True)
+class ChunkDraft:
+    ordinal: int
+    text: str
+    char_start: int
+    char_end: int
+    tokens: int
+    section: str
+    embedded_text: str
+    embedded_text_hash: str
+
+
+@dataclass(frozen=True)
+class MaterialisedDocument:
+    prepared: PreparedDocument
+    text: str
+    sections: list[list[Any]]
+    chunks: tuple[ChunkDraft, ...]
+
+
+def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
+    if not isinstance(raw, dict):
+        raise DocumentProblem("invalid_document", "Each document must be a JSON object.")
+    unknown = sorted(set(raw) - DOCUMENT_FIELDS)
+    if unknown:
+        raise DocumentProblem("unknown_field", f"Documents have no field {unknown[0]!r}.")
+    external_id = raw.get("id")
+    if not isinstance(external_id, str) or not DOCUMENT_ID.fullmatch(external_id):
+        raise DocumentProblem("invalid_id", "The id must match [A-Za-z0-9._:-]{1,128}.")
+    text = raw.get("text")
+    if not isinstance(text, str) or not _WORD.search(text):
+        raise DocumentProblem("missing_text", "The text must hold at least one word.")
+    _check_text(text, "text")
+    title = raw.get("title", external_id)
+    if title is None:
+        title = external_id
+    if not isinstance(title, str) or len(title) > 1000:
+        raise DocumentProblem("invalid_title", "The title must be a string of at most 1000 characters.")
+    _check_text(title, "title")
+    title = " ".join(title.split()) or external_id
+    media_type = raw.get("media_type", "text/plain")
+    if media_type not in MEDIA_TYPES:
+        raise DocumentProblem(
+            "invalid_media_type", "The media_type must be text/plain, text/markdown or text/html."
+        )
+    source_url = raw.get("source_url")
+    if source_url is not None and (not isinstance(source_url, str) or len(source_url) > 2000):
+        raise DocumentProblem("invalid_source_url", "The source_url must be a string of at most 2000 characters.")
+    if isinstance(source_url, str):
+        _check_text(source_url, "source_url")
+    attributes_raw = raw.get("attributes") or {}
+    if not isinstance(attributes_raw, dict):
+        raise DocumentProblem("invalid_attributes", "The attributes must be a JSON object.")
+    attributes: dict[str, AttributeValue] = {}
+    for name, value in attributes_raw.items():
+        if name not in schema:
+            known = ", ".join(sorted(schema)) or "none"
+            raise DocumentProblem(
+                "unknown_attribute",
+                f"Attribute {name!r} is not in the collection's schema (known: {known}).",
+            )
+        if value is None:
+            continue
+        try:
+            attributes[name] = normalize_value(name, schema[name], value)
+        except AttributeValueError as exc:
+            raise DocumentProblem("invalid_attribute", f"{str(exc)[0].upper()}{str(exc)[1:]}.") from None
+    access_raw = raw.get("access") or []
+    if not isinstance(access_raw, list) or not all(
+        isinstance(g, str) and _GROUP.fullmatch(g) for g in access_raw
+    ):
+        raise DocumentProblem(
+            "invalid_access", "The access list must hold group names matching [A-Za-z0-9._:-]{1,128}."
+        )
+    access = tuple(sorted(set(access_raw)))
+    attributes_json = {name: to_json_value(attributes[name]) for name in sorted(attributes)}
+    canonical = json.dumps(
+        [title, text, media_type, source_url, attributes_json, access],
+        ensure_ascii=False,
+        sort_keys=True,
+    )
+    return PreparedDocument(
+        index=index,
+        external_id=external_id,
+        title=title,
+        media_type=media_type,
+        source_url=source_url,
+        source_text=text,
+        attributes=attributes,
+        attributes_json=attributes_json,
+        access=access,
+        content_hash=hashlib.sha256(canonical.encode("utf-8")).hexdigest(),
+    )
+
+
+def _check_text(value: str, field: str) -> None:
+    if "\x00" in value:
+        raise DocumentProblem("invalid_text", f"The {field} must not contain NUL characters.")
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError:
+        raise DocumentProblem("invalid_text", f"The {field} is not valid Unicode text.") from None
+
+
+def materialise(
+    runtime: Runtime, prepared: PreparedDocument, chunking: Mapping[str, int]
+) -> MaterialisedDocument:
+    """Parse and chunk a document and compute the text each chunk is embedded as."""
+    parsed = parse_document(prepared.source_text, prepared.media_type)
+    counter = runtime.embedder.tokens
+    spans = chunk_document(
+        parsed,
+        counter,
+        max_tokens=chunking["max_tokens"],
+        overlap_tokens=chunking["overlap_tokens"],
+    )
+    drafts = []
+    for span in spans:
+        embedded = embedding_input(
+            prepared.title, span.section, span.text, counter, runtime.embedder.window
+        )
+        drafts.append(
+            ChunkDraft(
+                ordinal=span.ordinal,
+                text=span.text,
+                char_start=span.char_start,
+                char_end=span.char_end,
+                tokens=span.tokens,
+                section=span.section,
+                embedded_text=embedded,
+                embedded_text_hash=text_hash(embedded),
+            )
+        )
+    sections = [[s.start, s.end, list(s.path)] for s in parsed.sections]
+    return MaterialisedDocument(prepared, parsed.text, sections, tuple(drafts))
+
+
+def embed_drafts(
+    runtime: Runtime, session: Session, drafts: Sequence[ChunkDraft]
+) -> dict[str, np.ndarray]:
+    """Vectors for every draft: from the cache where the text was seen, else from the model."""
+    name = runtime.embedder.name
+    hashes = [d.embedded_text_hash for d in drafts]
+    vectors = repository.cached_embeddings(session, name, hashes)
+    missing: dict[str, str] = {}
+    for draft in drafts:
+        if draft.embedded_text_hash not in vectors:
+            missing.setdefault(draft.embedded_text_hash, draft.embedded_text)
+    if missing:
+        fresh = runtime.embedder.embed_documents(list(missing.values()))
+        new_vectors = dict(zip(missing, fresh, strict=True))
+        repository.store_embeddings(session, name, new_vectors)
+        vectors.update(new_vectors)
+    return vectors
+
+
+def _check_limits(runtime: Runtime, documents: Sequence[Any]) -> None:
+    settings = runtime.settings
+    if len(documents) > settings.max_batch_documents:
+        raise LimitExceeded(
+            f"A batch may hold at most {settings.max_batch_documents} documents.",
+            limit="batch_documents",
+        )
+    for raw in documents:
+        text = raw.get("text") if isinstance(raw, dict) else None
+        if isinstance(text, str) and len(text.encode("utf-8", "surrogatepass")) > (
+            settings.max_document_text_bytes
+        ):
+            raise LimitExceeded(
+                f"A document's text may hold at most {settings.max_document_text_bytes} bytes.",
+                limit="document_text_bytes",
+            )
+
+
+def upsert_documents(
+    runtime: Runtime, caller: Caller, collection: str, documents: Sequence[Any]
+) -> list[dict[str, Any]]:
+    """Validate the whole batch, then write every changed document in one transaction."""
+    caller.require(Role.WRITER)
+    _check_limits(runtime, documents)
+    if not documents:
+        raise InvalidRequest("The batch must hold at least one document.", field="documents")
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, collection)
+        schema = attribute_schema(row)
+        chunking = dict(row.chunking)
+        pending = row.settings.get("pending_chunking")
+        collection_id = row.id
+
+    problems: list[dict[str, Any]] = []
+    prepared: list[PreparedDocument] = []
+    seen: dict[str, int] = {}
+    for index, raw in enumerate(documents):
+        raw_id = raw.get("id") if isinstance(raw, dict) else None
+        try:
+            doc = prepare_document(raw, index, schema)
+        except DocumentProblem as problem:
+            problems.append(_problem(raw_id, index, problem.reason, problem.message))
+            continue
+        if doc.external_id in seen:
+            problems.append(
+                _problem(doc.external_id, index, "duplicate_id", "The id appears twice in the batch.")
+            )
+            continue
+        seen[doc.external_id] = index
+        prepared.append(doc)
+
+    with runtime.transaction() as session:
+        existing = repository.documents_by_external_id(
+            session, collection_id, [d.external_id for d in prepared]
+        )
+    for doc in prepared:
+        old = existing.get(doc.external_id)
+        if old is not None and not caller.may_see(old.access):
+            problems.append(
+                _problem(
+                    doc.external_id,
+                    doc.index,
+                    "not_writable",
+                    "The document exists and this key may not change it.",
+                )
+            )
+    if problems:
+        problems.sort(key=lambda p: p["index"])
+        raise InvalidDocuments(
+            f"{len(problems)} of {len(documents)} documents are invalid; nothing was written.",
+            documents=problems,
+        )
+
+    changed = [
+        d for d in prepared
+        if existing.get(d.external_id) is None
+        or existing[d.external_id].content_hash != d.content_hash
+    ]
+    built = {d.external_id: materialise(runtime, d, chunking) for d in changed}
+    rebuilt = (
+        {d.external_id: materialise(runtime, d, pending) for d in changed} if pending else {}
+    )
+    results: list[dict[str, Any]] = []
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, collection)
+        all_drafts = [c for m in (*built.values(), *rebuilt.values()) for c in m.chunks]
+        vectors = embed_drafts(runtime, session, all_drafts)
+        current = repository.documents_by_external_id(
+            session, row.id, [d.external_id for d in changed]
+        )
+        now = repository.utcnow()
+        for doc in prepared:
+            if doc.external_id not in built:
+                results.append(
+                    {
+                        "id": doc.external_id,
+                        "status": "unchanged",
+                        "chunks": _chunk_count(session, existing[doc.external_id], row),
+                    }
+                )
+                continue
+            material = built[doc.external_id]
+            document_row = current.get(doc.external_id)
+            status = "updated" if document_row is not None else "created"
+            if document_row is None:
+                document_row = DocumentRow(
+                    collection_id=row.id, external_id=doc.external_id, created_at=now
+                )
+                session.add(document_row)
+            _fill_document(document_row, material, now)
+            session.flush()
+            repository.replace_document_children(
+                session,
+                document_row,
+                attribute_rows=attribute_value_rows(schema, doc.attributes),
+                groups=doc.access,
+            )
+            repository.replace_chunks(
+                session, document_row.id, row.chunk_generation, chunk_rows(material)
+            )
+            if doc.external_id in rebuilt:
+                repository.replace_chunks(
+                    session,
+                    document_row.id,
+                    row.chunk_generation + 1,
+                    chunk_rows(rebuilt[doc.external_id]),
+                )
+            results.append({"id": doc.external_id, "status": status, "chunks": len(material.chunks)})
+        if built:
+            revision = repository.bump_revision(
+                session, row, [(external_id, "upsert") for external_id in built]
+            )
+    if built:
+        runtime.indexes.after_write(
+            collection,
+            revision,
+            {
+                external_id: runtime.indexes.records_for(
+                    material, vectors, schema_attributes=material.prepared.attributes
+                )
+                for external_id, material in built.items()
+            },
+        )
+    return results
+
+
+def prepared_from_row(row: DocumentRow) -> PreparedDocument:
+    """The stored form of a document, for re-chunking without the caller."""
+    return PreparedDocument(
+        index=0,
+        external_id=row.external_id,
+        title=row.title,
+        media_type=row.media_type,
+        source_url=row.source_url,
+        source_text=row.source_text,
+        attributes={},
+        attributes_json=dict(row.attributes),
+        access=tuple(row.access),
+        content_hash=row.content_hash,
+    )
+
+
+def _problem(raw_id: Any, index: int, reason: str, message: str) -> dict[str, Any]:
+    return {
+        "id": raw_id if isinstance(raw_id, str) else None,
+        "index": index,
+        "reason": reason,
+        "message": message,
+    }
+
+
+def _chunk_count(session: Session, document: DocumentRow, collection: CollectionRow) -> int:
+    return len(repository.chunks_of(session, document.id, collection.chunk_generation))
+
+
+def _fill_document(row: DocumentRow, material: MaterialisedDocument, now: Any) -> None:
+    doc = material.prepared
+    row.title = doc.title
+    row.media_type = doc.media_type
+    row.source_url = doc.source_url
+    row.content_hash = doc.content_hash
+    row.source_text = doc.source_text
+    row.text = material.text
+    row.sections = material.sections
+    row.attributes = doc.attributes_json
+    row.access = list(doc.access)
+    row.updated_at = now
+
+
+def chunk_rows(material: MaterialisedDocument) -> list[dict[str, Any]]:
+    return [
+        {
+            "ordinal": c.ordinal,
+            "text": c.text,
+            "char_start": c.char_start,
+            "char_end": c.char_end,
+            "tokens": c.tokens,
+            "section": c.section,
+            "embedded_text_hash": c.embedded_text_hash,
+        }
+        for c in material.chunks
+    ]
+
+
+def chunk_id(document_id: str, ordinal: int) -> str:
+    return f"{document_id}#{ordinal:04d}"
+
+
+def document_view(session: Session, row: DocumentRow, collection: CollectionRow) -> dict[str, Any]:
+    chunks = repository.chunks_of(session, row.id, collection.chunk_generation)
+    return {
+        "id": row.external_id,
+        "title": row.title,
+        "media_type": row.media_type,
+        "source_url": row.source_url,
+        "content_hash": row.content_hash,
+        "attributes": row.attributes,
+        "access": row.access,
+        "created_at": row.created_at,
+        "updated_at": row.updated_at,
+        "text": row.text,
+        "chunks": [
+            {
+                "chunk_id": chunk_id(row.external_id, c.ordinal),
+                "ordinal": c.ordinal,
+                "text": c.text,
+                "char_start": c.char_start,
+                "char_end": c.char_end,
+                "tokens": c.tokens,
+                "section": c.section,
+            }
+            for c in chunks
+        ],
+    }
+
+
+def _visible_document(
+    session: Session, caller: Caller, collection: CollectionRow, document_id: str
+) -> DocumentRow:
+    found = repository.documents_by_external_id(session, collection.id, [document_id]).get(
+        document_id
+    )
+    if found is None or not caller.may_see(found.access):
+        raise DocumentNotFound(f"Document {document_id!r} does not exist.")
+    return found
+
+
+def get_document(
+    runtime: Runtime, caller: Caller, collection: str, document_id: str
+) -> dict[str, Any]:
+    caller.require(Role.READER)
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, collection)
+        return document_view(session, _visible_document(session, caller, row, document_id), row)
+
+
+def delete_document(runtime: Runtime, caller: Caller, collection: str, document_id: str) -> None:
+    caller.require(Role.WRITER)
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, collection)
+        document = _visible_document(session, caller, row, document_id)
+        repository.delete_documents(session, [document.id])
+        revision = repository.bump_revision(session, row, [(document_id, "delete")])
+    runtime.indexes.after_write(collection, revision, {document_id: []})
+
+
+def _filter_condition(row: CollectionRow, filter_value: str | dict[str, Any] | None) -> Any:
+    if filter_value is None or filter_value == "":
+        return None
+    schema = attribute_schema(row)
+    return compile_filter(check_filter(parse_filter(filter_value), schema), schema)
+
+
+def list_documents(
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    *,
+    filter_value: str | dict[str, Any] | None,
+    after: str | None,
+    limit: int,
+) -> dict[str, Any]:
+    """A page of document summaries in id order; ``next_after`` continues the listing."""
+    caller.require(Role.READER)
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, collection)
+        condition = _filter_condition(row, filter_value)
+        rows = repository.list_documents(
+            session,
+            row.id,
+            groups=caller.visible_groups,
+            condition=condition,
+            after=after,
+            limit=limit + 1,
+        )
+        total = len(
+            repository.matching_document_ids(
+                session, row.id, groups=caller.visible_groups, condition=condition
+            )
+        )
+    page = rows[:limit]
+    return {
+        "documents": [
+            {
+                "id": d.external_id,
+                "title": d.title,
+                "media_type": d.media_type,
+                "source_url": d.source_url,
+                "attributes": d.attributes,
+                "access": d.access,
+                "updated_at": d.updated_at,
+            }
+            for d in page
+        ],
+        "total": total,
+        "next_after": page[-1].external_id if len(rows) > limit else None,
+    }
+
+
+def delete_by_filter(
+    runtime: Runtime, caller: Caller, collection: str, filter_value: str | dict[str, Any] | None
+) -> int:
+    """Remove every visible document the filter matches; an empty filter is refused."""
+    caller.require(Role.WRITER)
+    if filter_value is None or (isinstance(filter_value, str) and not filter_value.strip()):
+        raise InvalidRequest(
+            "Deleting by filter needs a non-empty filter; delete the collection to remove all.",
+            field="filter",
+        )
+    with runtime.transaction() as session:
+        row = load_collection(session, caller, collection)
+        matches = repository.matching_document_ids(
+            session,
+            row.id,
+            groups=caller.visible_groups,
+            condition=_filter_condition(row, filter_value),
+        )
+        if not matches:
+            return 0
+        repository.delete_documents(session, [pk for pk, _ in matches])
+        revision = repository.bump_revision(session, row, [(ext, "delete") for _, ext in matches])
+    runtime.indexes.after_write(collection, revision, {ext: [] for _, ext in matches})
+    return len(matches)

@@ -1,0 +1,132 @@
+"""API keys: made and revoked by the CLI, stored as salted hashes, checked in constant time."""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import hmac
+import re
+import secrets
+from dataclasses import dataclass
+
+from sqlalchemy.orm import Session
+
+from service.errors import Conflict, InvalidRequest, NotFound, Unauthenticated
+from service.store import repository
+from service.store.tables import ApiKeyRow
+from service.usecases.callers import Caller, Role
+
+KEY_PREFIX = "xk"
+_KEY_SHAPE = re.compile(r"xk_([0-9a-f]{16})_([A-Za-z0-9_-]{43})")
+_NAME = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+_GROUP = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+LAST_USED_RESOLUTION = dt.timedelta(seconds=60)
+
+
+def _digest(salt: bytes, secret: str) -> bytes:
+    # Keys are 256-bit random secrets, not passwords, so one keyed hash suffices; the salt keeps
+    # equal secrets (there are none in practice) from sharing a stored value.
+    return hmac.new(salt, secret.encode("ascii"), hashlib.sha256).digest()
+
+
+@dataclass(frozen=True)
+class KeyInfo:
+    name: str
+    role: str
+    groups: list[str]
+    collections: list[str] | None
+    created_at: dt.datetime
+    last_used_at: dt.datetime | None
+    revoked: bool
+
+
+def _info(row: ApiKeyRow) -> KeyInfo:
+    return KeyInfo(
+        name=row.name,
+        role=row.role,
+        groups=list(row.groups),
+        collections=None if row.collections is None else list(row.collections),
+        created_at=row.created_at,
+        last_used_at=row.last_used_at,
+        revoked=row.revoked_at is not None,
+    )
+
+
+def _names(values: list[str], what: str) -> list[str]:
+    for value in values:
+        if not _GROUP.fullmatch(value):
+            raise InvalidRequest(f"{what} name {value!r} is not valid.", field=what)
+    return sorted(set(values))
+
+
+def create_key(
+    session: Session,
+    *,
+    role: str,
+    groups: list[str],
+    collections: list[str] | None,
+    name: str | None,
+) -> tuple[str, KeyInfo]:
+    """Store a new key and return it in clear text: the only time it is ever shown."""
+    try:
+        parsed_role = Role.parse(role)
+    except KeyError:
+        raise InvalidRequest("role must be reader, writer or admin.", field="role") from None
+    lookup = secrets.token_hex(8)
+    secret = secrets.token_urlsafe(32)
+    key_name = name or f"key-{lookup[:8]}"
+    if not _NAME.fullmatch(key_name):
+        raise InvalidRequest(f"key name {key_name!r} is not valid.", field="name")
+    if repository.key_by_name(session, key_name) is not None:
+        raise Conflict(f"A key named {key_name!r} already exists.")
+    salt = secrets.token_bytes(16)
+    row = ApiKeyRow(
+        name=key_name,
+        lookup=lookup,
+        salt=salt,
+        secret_hash=_digest(salt, secret),
+        role=parsed_role.name.lower(),
+        groups=_names(groups, "group"),
+        collections=None if collections is None else _names(collections, "collection"),
+        created_at=repository.utcnow(),
+    )
+    session.add(row)
+    session.flush()
+    return f"{KEY_PREFIX}_{lookup}_{secret}", _info(row)
+
+
+def revoke_key(session: Session, name: str) -> None:
+    row = repository.key_by_name(session, name)
+    if row is None:
+        raise NotFound(f"No key is named {name!r}.")
+    if row.revoked_at is None:
+        row.revoked_at = repository.utcnow()
+
+
+def list_keys(session: Session) -> list[KeyInfo]:
+    return [_info(row) for row in repository.all_keys(session)]
+
+
+def authenticate(session: Session, presented: str | None) -> Caller:
+    """The caller behind a bearer key; every failure looks the same to the client."""
+    failure = Unauthenticated("A valid API key is required in the Authorization header.")
+    if not presented:
+        raise failure
+    match = _KEY_SHAPE.fullmatch(presented)
+    if match is None:
+        raise failure
+    row = repository.key_by_lookup(session, match.group(1))
+    if row is None or row.revoked_at is not None:
+        raise failure
+    if not hmac.compare_digest(_digest(row.salt, match.group(2)), row.secret_hash):
+        raise failure
+    now = repository.utcnow()
+    if row.last_used_at is None or now - row.last_used_at > LAST_USED_RESOLUTION:
+        row.last_used_at = now
+    return Caller(
+        key_id=row.id,
+        name=row.name,
+        role=Role.parse(row.role),
+        groups=frozenset(row.groups),
+        collections=None if row.collections is None else frozenset(row.collections),
+    )

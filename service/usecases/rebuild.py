@@ -1,0 +1,120 @@
+"""Re-chunking a collection in the background after its ``chunking`` changed.
+
+New chunks are written as the next generation while queries keep reading the current one;
+when every document has them, one transaction switches the generation and drops the old
+chunks, and the change log tells every index to reload.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+from typing import TYPE_CHECKING
+
+from service.store import repository
+from service.store.tables import DocumentRow
+
+if TYPE_CHECKING:
+    from service.usecases.runtime import Runtime
+
+log = logging.getLogger("excerpta.rebuild")
+BATCH = 16
+
+
+class RebuildWorker:
+    def __init__(self, runtime: Runtime) -> None:
+        self._runtime = runtime
+        self._wanted: set[str] = set()
+        self._lock = threading.Lock()
+        self._wake = threading.Event()
+        self._stopping = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def start(self, collection: str) -> None:
+        with self._lock:
+            self._wanted.add(collection)
+            if self._thread is None or not self._thread.is_alive():
+                self._thread = threading.Thread(
+                    target=self._run, name="excerpta-rebuild", daemon=True
+                )
+                self._thread.start()
+        self._wake.set()
+
+    def resume(self) -> None:
+        """Pick up rebuilds a previous process left unfinished."""
+        with self._runtime.transaction() as session:
+            names = [
+                row.name
+                for row in repository.all_collections(session)
+                if row.settings.get("pending_chunking")
+            ]
+        for name in names:
+            self.start(name)
+
+    def wait(self, timeout: float | None = None) -> bool:
+        thread = self._thread
+        if thread is not None:
+            thread.join(timeout)
+            return not thread.is_alive()
+        return True
+
+    def stop(self) -> None:
+        self._stopping.set()
+        self._wake.set()
+        if self._thread is not None:
+            self._thread.join(timeout=10)
+
+    def _run(self) -> None:
+        while not self._stopping.is_set():
+            with self._lock:
+                if not self._wanted:
+                    self._thread = None
+                    return
+                name = sorted(self._wanted)[0]
+            try:
+                finished = self.step(name)
+            except Exception:
+                log.exception("rebuild of collection %r failed; it will be retried", name)
+                finished = False
+                self._stopping.wait(1.0)
+            if finished:
+                with self._lock:
+                    self._wanted.discard(name)
+
+    def step(self, name: str) -> bool:
+        """Re-chunk one batch of documents; True when the collection has switched over."""
+        from service.usecases.documents import (
+            chunk_rows,
+            embed_drafts,
+            materialise,
+            prepared_from_row,
+        )
+
+        runtime = self._runtime
+        with runtime.transaction() as session:
+            row = repository.collection_by_name(session, name)
+            if row is None or not row.settings.get("pending_chunking"):
+                return True
+            pending = dict(row.settings["pending_chunking"])
+            target = row.chunk_generation + 1
+            documents: list[DocumentRow] = repository.documents_without_generation(
+                session, row.id, target, BATCH
+            )
+            if not documents:
+                settings = dict(row.settings)
+                settings.pop("pending_chunking", None)
+                row.settings = settings
+                row.chunking = pending
+                row.chunk_generation = target
+                row.rebuild_done = None
+                row.rebuild_total = None
+                repository.drop_generations_except(session, row.id, target)
+                repository.bump_revision(session, row, [(None, "reset")])
+                return True
+            materials = [materialise(runtime, prepared_from_row(d), pending) for d in documents]
+            embed_drafts(runtime, session, [c for m in materials for c in m.chunks])
+            for document, material in zip(documents, materials, strict=True):
+                repository.replace_chunks(session, document.id, target, chunk_rows(material))
+            row.rebuild_done = (row.rebuild_done or 0) + len(documents)
+            row.rebuild_total = max(row.rebuild_total or 0, row.rebuild_done)
+        return False

@@ -1,0 +1,63 @@
+"""The long-lived pieces one process shares: settings, store, embedder, indexes, workers.
+
+The API and the CLI each build one ``Runtime`` and hand it to every use case, so tests can build
+one with a scratch store and a test embedder.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import TYPE_CHECKING
+
+from sqlalchemy import Engine
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.config import Settings
+from service.embedding.base import Embedder
+from service.store.db import make_engine, migrate, session_factory, unit_of_work
+
+if TYPE_CHECKING:
+    from service.usecases.indexes import IndexRegistry
+    from service.usecases.rebuild import RebuildWorker
+
+
+class Runtime:
+    def __init__(
+        self,
+        settings: Settings,
+        embedder: Embedder,
+        *,
+        engine: Engine | None = None,
+        run_migrations: bool = True,
+    ) -> None:
+        from service.usecases.indexes import IndexRegistry
+        from service.usecases.rebuild import RebuildWorker
+
+        self.settings = settings
+        self.embedder = embedder
+        self.engine = engine or make_engine(settings.resolved_database_url())
+        if run_migrations:
+            migrate(self.engine)
+        self.sessions: sessionmaker[Session] = session_factory(self.engine)
+        self.indexes: IndexRegistry = IndexRegistry(self)
+        self.rebuilds: RebuildWorker = RebuildWorker(self)
+
+    @contextmanager
+    def transaction(self) -> Iterator[Session]:
+        with unit_of_work(self.sessions) as session:
+            yield session
+
+    def close(self) -> None:
+        self.rebuilds.stop()
+        self.indexes.stop()
+        self.engine.dispose()
+
+
+def load_embedder(settings: Settings) -> Embedder:
+    """The embedder the settings name; only real models are reachable from here."""
+    if settings.embedder == "minilm":
+        from service.embedding.minilm import MiniLmEmbedder
+
+        return MiniLmEmbedder()
+    raise ValueError(f"unknown embedder {settings.embedder!r}")

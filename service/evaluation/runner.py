@@ -1,0 +1,317 @@
+"""Running labeled queries through one or more systems and aggregating the measures.
+
+The search is behind ``EvaluationBackend`` so the store-direct and HTTP paths share everything
+that decides the numbers: which queries count, which judgments survive a filter, the measures,
+the intervals and the comparisons.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import sys
+from collections.abc import Collection, Mapping, Sequence
+from dataclasses import dataclass
+from typing import NamedTuple, Protocol
+
+from tqdm import tqdm
+
+from service.evaluation.inputs import FilterSpec, LabeledQuery
+from service.evaluation.measures import measure_names, query_measures, relevant_count
+from service.evaluation.significance import bootstrap_interval, paired_randomization_test
+
+MODES = ("lexical", "semantic", "hybrid")
+
+SETTING_MODES: Mapping[str, tuple[str, ...]] = {
+    "k1": ("lexical", "hybrid"),
+    "b": ("lexical", "hybrid"),
+    "rrf_k": ("hybrid",),
+}
+"""Per-query settings that ``--set`` may vary, and the modes whose ranking they change."""
+
+
+class EvaluationBackend(Protocol):
+    """The search a collection offers, seen by document."""
+
+    def rank_documents(
+        self,
+        text: str,
+        *,
+        mode: str,
+        filter: FilterSpec,
+        depth: int,
+        settings: Mapping[str, object],
+    ) -> list[tuple[str, float]]:
+        """Distinct document ids with the score of their best chunk, best first, at most depth."""
+        ...
+
+    def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
+        """Those of ``doc_ids`` that the filter excludes (missing documents included)."""
+        ...
+
+    def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
+        """Every setting in effect for a system: k1, b, rrf_k, chunking, embedder, ..."""
+        ...
+
+
+class System(NamedTuple):
+    label: str
+    mode: str
+    settings: Mapping[str, object]
+
+
+class Interval(NamedTuple):
+    mean: float
+    low: float
+    high: float
+
+
+@dataclass(frozen=True, slots=True)
+class SystemResult:
+    system: System
+    settings_used: dict[str, object]
+    rankings: dict[str, list[tuple[str, float]]]
+    """Per evaluated query, the backend's documents and scores, best first."""
+    per_query: dict[str, dict[str, float]]
+    summary: dict[str, Interval]
+
+
+@dataclass(frozen=True, slots=True)
+class Comparison:
+    first: str
+    second: str
+    measure: str
+    mean_difference: float
+    """Mean over queries of first minus second."""
+    p_value: float
+
+
+@dataclass(frozen=True, slots=True)
+class EvaluationResult:
+    k: int
+    depth: int
+    global_filter: FilterSpec
+    measures: list[str]
+    queries: dict[str, LabeledQuery]
+    """The evaluated queries, in file order."""
+    judgments: dict[str, dict[str, int]]
+    """Per evaluated query, the judgments that survived its filter."""
+    systems: list[SystemResult]
+    comparisons: list[Comparison]
+    queries_read: int
+    skipped_without_relevant: list[str]
+    """Queries with no positive judgment at all."""
+    skipped_after_filter: list[str]
+    """Queries whose every positive judgment failed the filter."""
+    dropped_judgments: dict[str, int]
+    """Per query with a filter, the judged documents (any grade) that failed it, when any."""
+    dropped_relevant: int
+    """How many of the dropped judgments had a positive grade."""
+
+
+def systems_from_options(
+    modes: Sequence[str], set_options: Mapping[str, Sequence[str]]
+) -> list[System]:
+    """One system per mode, times every combination of the ``--set`` values that apply to it.
+
+    ``rrf_k`` only changes hybrid rankings, so ``--modes lexical,hybrid --set rrf_k=10,60``
+    gives one lexical row and two hybrid rows; a setting that applies to none of the modes is an
+    error rather than a silent no-op.
+    """
+    chosen = list(dict.fromkeys(mode.strip() for mode in modes if mode.strip()))
+    if not chosen:
+        raise ValueError("give at least one mode")
+    unknown_modes = [mode for mode in chosen if mode not in MODES]
+    if unknown_modes:
+        raise ValueError(f"unknown mode {unknown_modes[0]!r}; choose from {', '.join(MODES)}")
+    values_by_name = {
+        name: _parse_setting_values(name, raw_values) for name, raw_values in set_options.items()
+    }
+    for name in values_by_name:
+        if not any(mode in SETTING_MODES[name] for mode in chosen):
+            raise ValueError(
+                f"setting {name!r} only changes {' and '.join(SETTING_MODES[name])} rankings, "
+                "and no such mode was chosen"
+            )
+    systems: list[System] = []
+    for mode in chosen:
+        applicable = [name for name in values_by_name if mode in SETTING_MODES[name]]
+        combinations = itertools.product(*(values_by_name[name] for name in applicable))
+        for combination in combinations:
+            settings = dict(zip(applicable, combination, strict=True))
+            label = " ".join([mode, *(f"{name}={value}" for name, value in settings.items())])
+            systems.append(System(label, mode, settings))
+    return systems
+
+
+def evaluate(
+    backend: EvaluationBackend,
+    queries: Sequence[LabeledQuery],
+    qrels: Mapping[str, Mapping[str, int]],
+    *,
+    systems: Sequence[System],
+    k: int = 10,
+    depth: int = 100,
+    global_filter: FilterSpec = None,
+    progress: bool = True,
+) -> EvaluationResult:
+    """Measures of every system on every query that has a positive judgment left.
+
+    A judged document that fails the query's filter (the global one and its own) could never be
+    retrieved, so it is dropped from that query's judgments rather than counted as a miss; a
+    query left without any relevant document is skipped and counted.
+    """
+    if not 1 <= k <= depth:
+        raise ValueError(f"need 1 <= k <= depth, got k={k} and depth={depth}")
+    if not systems:
+        raise ValueError("give at least one system")
+    labels = [system.label for system in systems]
+    if len(set(labels)) != len(labels):
+        raise ValueError("system labels must be distinct")
+    names = measure_names(k, depth)
+
+    evaluated: dict[str, LabeledQuery] = {}
+    effective_judgments: dict[str, dict[str, int]] = {}
+    skipped_without_relevant: list[str] = []
+    skipped_after_filter: list[str] = []
+    dropped_judgments: dict[str, int] = {}
+    dropped_relevant = 0
+    rankings: list[dict[str, list[tuple[str, float]]]] = [{} for _ in systems]
+    per_query: list[dict[str, dict[str, float]]] = [{} for _ in systems]
+
+    for query in tqdm(
+        queries, desc="evaluating", unit="query", file=sys.stderr, disable=not progress
+    ):
+        judgments = dict(qrels.get(query.qid, {}))
+        if relevant_count(judgments) == 0:
+            skipped_without_relevant.append(query.qid)
+            continue
+        query_filter = combine_filters(global_filter, query.filter)
+        if query_filter is not None:
+            failing = backend.documents_failing_filter(query_filter, set(judgments))
+            if failing:
+                dropped_judgments[query.qid] = len(failing)
+                dropped_relevant += sum(1 for doc_id in failing if judgments[doc_id] > 0)
+                judgments = {doc: grade for doc, grade in judgments.items() if doc not in failing}
+            if relevant_count(judgments) == 0:
+                skipped_after_filter.append(query.qid)
+                continue
+        evaluated[query.qid] = query
+        effective_judgments[query.qid] = judgments
+        for index, system in enumerate(systems):
+            ranked = backend.rank_documents(
+                query.text,
+                mode=system.mode,
+                filter=query_filter,
+                depth=depth,
+                settings=system.settings,
+            )
+            ranked = _checked_ranking(ranked, system.label, query.qid, depth)
+            rankings[index][query.qid] = ranked
+            per_query[index][query.qid] = query_measures(
+                [doc_id for doc_id, _ in ranked], judgments, k=k, depth=depth
+            )
+
+    if not evaluated:
+        raise ValueError("no query has a positive judgment to evaluate against")
+    results = [
+        SystemResult(
+            system=system,
+            settings_used=backend.describe_settings(system.settings),
+            rankings=rankings[index],
+            per_query=per_query[index],
+            summary={
+                name: Interval(*bootstrap_interval([m[name] for m in per_query[index].values()]))
+                for name in names
+            },
+        )
+        for index, system in enumerate(systems)
+    ]
+    return EvaluationResult(
+        k=k,
+        depth=depth,
+        global_filter=global_filter,
+        measures=names,
+        queries=evaluated,
+        judgments=effective_judgments,
+        systems=results,
+        comparisons=_compare_pairs(results, names),
+        queries_read=len(queries),
+        skipped_without_relevant=skipped_without_relevant,
+        skipped_after_filter=skipped_after_filter,
+        dropped_judgments=dropped_judgments,
+        dropped_relevant=dropped_relevant,
+    )
+
+
+def combine_filters(first: FilterSpec, second: FilterSpec) -> FilterSpec:
+    """Both filters at once, in the form they share (CQL2 text or CQL2 JSON)."""
+    if first is None:
+        return second
+    if second is None:
+        return first
+    if isinstance(first, str) and isinstance(second, str):
+        return f"({first}) AND ({second})"
+    if isinstance(first, dict) and isinstance(second, dict):
+        return {"op": "and", "args": [first, second]}
+    raise ValueError(
+        "cannot combine a CQL2 text filter with a CQL2 JSON filter; "
+        "write the global filter in the same form as the per-query filters"
+    )
+
+
+def _compare_pairs(results: Sequence[SystemResult], names: Sequence[str]) -> list[Comparison]:
+    comparisons: list[Comparison] = []
+    for first, second in itertools.combinations(results, 2):
+        qids = list(first.per_query)
+        for name in names:
+            a = [first.per_query[qid][name] for qid in qids]
+            b = [second.per_query[qid][name] for qid in qids]
+            comparisons.append(
+                Comparison(
+                    first=first.system.label,
+                    second=second.system.label,
+                    measure=name,
+                    mean_difference=math.fsum(x - y for x, y in zip(a, b, strict=True)) / len(a),
+                    p_value=paired_randomization_test(a, b),
+                )
+            )
+    return comparisons
+
+
+def _checked_ranking(
+    ranked: Sequence[tuple[str, float]], label: str, qid: str, depth: int
+) -> list[tuple[str, float]]:
+    """The backend's ranking, refused when it breaks the contract the measures rely on."""
+    doc_ids = [doc_id for doc_id, _ in ranked]
+    if len(set(doc_ids)) != len(doc_ids):
+        raise ValueError(f"{label}: query {qid!r} ranked a document twice")
+    if len(doc_ids) > depth:
+        raise ValueError(f"{label}: query {qid!r} ranked {len(doc_ids)} documents, over {depth}")
+    if not all(math.isfinite(score) for _, score in ranked):
+        raise ValueError(f"{label}: query {qid!r} has a score that is not finite")
+    return [(doc_id, float(score)) for doc_id, score in ranked]
+
+
+def _parse_setting_values(name: str, raw_values: Sequence[str]) -> list[int | float]:
+    if name not in SETTING_MODES:
+        raise ValueError(f"unknown setting {name!r}; --set takes {', '.join(SETTING_MODES)}")
+    values: list[int | float] = []
+    for raw in raw_values:
+        text = raw.strip()
+        try:
+            value: int | float = int(text)
+        except ValueError:
+            try:
+                value = float(text)
+            except ValueError:
+                raise ValueError(f"setting {name}={raw!r} is not a number") from None
+        if not math.isfinite(value) or value < 0 or (name == "b" and value > 1):
+            allowed = "between 0 and 1" if name == "b" else "a number of at least 0"
+            raise ValueError(f"setting {name}={raw!r} must be {allowed}")
+        values.append(value)
+    if not values:
+        raise ValueError(f"setting {name!r} has no values")
+    if len(set(values)) != len(values):
+        raise ValueError(f"setting {name!r} repeats a value")
+    return values

@@ -1,0 +1,174 @@
+"""Exact similarity search over a float32 embedding matrix aligned with the index rows.
+
+Metrics: ``cosine`` (rows are normalised when inserted and the query when it arrives, so the
+score is a dot product), ``dot``, and ``euclidean`` (score = minus the distance, computed from
+precomputed squared row norms as sqrt(|x|^2 - 2 x.q + |q|^2), so larger is closer).
+
+Two ways to score a candidate set: multiply the whole matrix and keep the candidates' scores,
+or gather the candidate rows and multiply only those. Gathering copies rows scattered over
+memory, so it only wins when few rows are wanted; ``GATHER_BELOW_FRACTION`` is the cut-over,
+measured on the 2-core development machine at 100,000 x 384 (medians, scan vs gather: 10% of
+the rows 7.8 vs 1.8 ms, 15% 7.9 vs 6.3 ms, 20% 8.0 vs 7.3 ms, 25% 8.0 vs 15.7 ms; gathering
+slows sharply once the gathered rows outgrow the cache).
+
+Both ways must give a row the same score, bit for bit, so that filtering never changes a score
+or breaks a tie differently. The BLAS matrix-vector kernel computes rows in blocks and treats a
+trailing partial block (and a thread's share that is not a whole number of blocks) with
+different code, whose rounding differs in the last bit. Every product here therefore runs on a
+row count that is a multiple of ``ROW_BLOCK``: the matrix keeps that many rows of capacity
+(the padding is read and its scores dropped), and a gathered set is padded with copies of its
+first row.
+
+The matrix only grows by appending, into a buffer whose capacity doubles; see ``buffers``.
+"""
+
+from __future__ import annotations
+
+from typing import Literal
+
+import numpy as np
+
+from service.errors import InvalidRequest
+from service.index.buffers import round_up, write_rows
+
+Metric = Literal["cosine", "dot", "euclidean"]
+METRICS: tuple[Metric, ...] = ("cosine", "dot", "euclidean")
+ROW_BLOCK = 64
+GATHER_BELOW_FRACTION = 0.15
+
+
+class VectorMatrix:
+    """Immutable view of the first ``n_rows`` rows of a shared, append-only buffer."""
+
+    def __init__(
+        self,
+        *,
+        metric: Metric,
+        dimension: int,
+        buffer: np.ndarray,
+        squared_norms: np.ndarray,
+        n_rows: int,
+    ) -> None:
+        self.metric: Metric = metric
+        self.dimension = dimension
+        self._buffer = buffer
+        self._squared_norms = squared_norms
+        self._n_rows = n_rows
+
+    @classmethod
+    def empty(cls, *, metric: Metric, dimension: int) -> VectorMatrix:
+        if metric not in METRICS:
+            raise ValueError(f"unknown metric {metric!r}")
+        if dimension < 1:
+            raise ValueError("the vector dimension must be positive")
+        return cls(
+            metric=metric,
+            dimension=dimension,
+            buffer=np.zeros((0, dimension), dtype=np.float32),
+            squared_norms=np.zeros(0, dtype=np.float32),
+            n_rows=0,
+        )
+
+    @classmethod
+    def build(cls, vectors: np.ndarray, *, metric: Metric, dimension: int) -> VectorMatrix:
+        return cls.empty(metric=metric, dimension=dimension).append(vectors)
+
+    @property
+    def n_rows(self) -> int:
+        return self._n_rows
+
+    @property
+    def rows(self) -> np.ndarray:
+        """The stored rows (normalised for cosine), read-only."""
+        view = self._buffer[: self._n_rows].view()
+        view.flags.writeable = False
+        return view
+
+    @property
+    def nbytes(self) -> int:
+        return int(self._buffer.nbytes + self._squared_norms.nbytes)
+
+    def append(self, vectors: np.ndarray) -> VectorMatrix:
+        """A new version with ``vectors`` (one per row) after the existing rows."""
+        vectors = np.asarray(vectors, dtype=np.float32).reshape(-1, self.dimension)
+        if len(vectors) == 0:
+            return self
+        if not np.isfinite(vectors).all():
+            raise ValueError("vectors must be finite")
+        wide = vectors.astype(np.float64)
+        if self.metric == "cosine":
+            norms = np.linalg.norm(wide, axis=1, keepdims=True)
+            wide = wide / np.where(norms == 0, 1.0, norms)
+            vectors = wide.astype(np.float32)
+        squared = np.einsum("ij,ij->i", wide, wide).astype(np.float32)
+        buffer = write_rows(self._buffer, self._n_rows, vectors, capacity_multiple=ROW_BLOCK)
+        squared_norms = write_rows(self._squared_norms, self._n_rows, squared)
+        return VectorMatrix(
+            metric=self.metric,
+            dimension=self.dimension,
+            buffer=buffer,
+            squared_norms=squared_norms,
+            n_rows=self._n_rows + len(vectors),
+        )
+
+    def take(self, rows: np.ndarray) -> VectorMatrix:
+        """A new matrix of the given rows in that order (for compaction)."""
+        count = len(rows)
+        buffer = np.zeros((round_up(count, ROW_BLOCK), self.dimension), dtype=np.float32)
+        buffer[:count] = self._buffer[rows]
+        return VectorMatrix(
+            metric=self.metric,
+            dimension=self.dimension,
+            buffer=buffer,
+            squared_norms=self._squared_norms[rows],
+            n_rows=count,
+        )
+
+    def prepare_query(self, vector: np.ndarray | list[float]) -> np.ndarray:
+        """The query as float32 of the right dimension, normalised for cosine."""
+        query = np.asarray(vector, dtype=np.float64).reshape(-1)
+        if query.shape[0] != self.dimension:
+            raise InvalidRequest(
+                f"query_vector must have {self.dimension} numbers, not {query.shape[0]}",
+                field="query_vector",
+            )
+        if not np.isfinite(query).all():
+            raise InvalidRequest("query_vector must hold finite numbers", field="query_vector")
+        if self.metric == "cosine":
+            norm = float(np.linalg.norm(query))
+            if norm == 0:
+                raise InvalidRequest(
+                    "query_vector must not be all zeros for cosine similarity",
+                    field="query_vector",
+                )
+            query = query / norm
+        return query.astype(np.float32)
+
+    def score(self, query: np.ndarray, candidate_mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Rows where ``candidate_mask`` is true (ascending) and their scores (float32).
+
+        ``query`` is what ``prepare_query`` returned.
+        """
+        n = self._n_rows
+        if candidate_mask.shape != (n,) or candidate_mask.dtype != np.bool_:
+            raise ValueError(f"the candidate mask must be a boolean array of length {n}")
+        rows = np.flatnonzero(candidate_mask)
+        count = len(rows)
+        if count == 0:
+            return rows, np.zeros(0, dtype=np.float32)
+        if count < GATHER_BELOW_FRACTION * n:
+            padded = np.full(round_up(count, ROW_BLOCK), rows[0], dtype=np.int64)
+            padded[:count] = rows
+            products = (np.take(self._buffer, padded, axis=0) @ query)[:count]
+        else:
+            products = (self._buffer[: round_up(n, ROW_BLOCK)] @ query)[:n]
+            if count < n:
+                products = products[rows]
+        return rows, self._finish(products, rows, query)
+
+    def _finish(self, products: np.ndarray, rows: np.ndarray, query: np.ndarray) -> np.ndarray:
+        if self.metric != "euclidean":
+            return products
+        query_squared = np.float32(np.dot(query.astype(np.float64), query))
+        squared = self._squared_norms[rows] - np.float32(2) * products + query_squared
+        return -np.sqrt(np.maximum(squared, np.float32(0)))

@@ -1,0 +1,77 @@
+import numpy as np
+import pytest
+
+from service.errors import InvalidRequest
+from service.index import vectors as vectors_module
+from service.index.vectors import VectorMatrix
+
+
+def random_rows(count: int, dimension: int, seed: int = 0) -> np.ndarray:
+    return np.random.default_rng(seed).standard_normal((count, dimension)).astype(np.float32)
+
+
+@pytest.mark.parametrize("metric", ["cosine", "dot", "euclidean"])
+def test_scores_equal_plain_numpy(metric: str) -> None:
+    rows = random_rows(500, 24)
+    query = random_rows(1, 24, seed=1)[0]
+    matrix = VectorMatrix.build(rows, metric=metric, dimension=24)  # type: ignore[arg-type]
+    got_rows, got = matrix.score(matrix.prepare_query(query), np.ones(500, dtype=bool))
+    wide, q = rows.astype(np.float64), query.astype(np.float64)
+    if metric == "cosine":
+        want = (wide / np.linalg.norm(wide, axis=1, keepdims=True)) @ (q / np.linalg.norm(q))
+    elif metric == "dot":
+        want = wide @ q
+    else:
+        want = -np.linalg.norm(wide - q, axis=1)
+    assert got_rows.tolist() == list(range(500))
+    np.testing.assert_allclose(got, want, rtol=1e-5, atol=1e-6)
+
+
+@pytest.mark.parametrize("count", [1, 63, 64, 1000, 4099])
+@pytest.mark.parametrize("fraction", [0.001, 0.05, 0.5, 1.0])
+def test_gathering_and_scanning_give_bit_identical_scores(count: int, fraction: float) -> None:
+    rng = np.random.default_rng(count)
+    matrix = VectorMatrix.build(random_rows(count, 48, seed=count), metric="cosine", dimension=48)
+    query = matrix.prepare_query(rng.standard_normal(48))
+    mask = rng.random(count) < fraction
+    mask[0] = True
+    _, full = matrix.score(query, np.ones(count, dtype=bool))
+    rows, filtered = matrix.score(query, mask)
+    assert np.array_equal(filtered, full[rows])
+
+
+def test_both_paths_are_used_on_either_side_of_the_cut_over(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    matrix = VectorMatrix.build(random_rows(1000, 8), metric="dot", dimension=8)
+    query = matrix.prepare_query(np.ones(8))
+    mask = np.zeros(1000, dtype=bool)
+    mask[::50] = True
+    scanned = matrix.score(query, mask)[1]
+    monkeypatch.setattr(vectors_module, "GATHER_BELOW_FRACTION", 0.0)
+    assert np.array_equal(matrix.score(query, mask)[1], scanned)
+
+
+def test_growth_doubles_capacity_instead_of_copying_per_write() -> None:
+    matrix = VectorMatrix.empty(metric="dot", dimension=4)
+    buffers = set()
+    for row in range(2000):
+        matrix = matrix.append(np.full((1, 4), row, dtype=np.float32))
+        buffers.add(id(matrix._buffer))
+    assert len(buffers) <= 12
+    assert matrix.rows[1999].tolist() == [1999.0] * 4
+
+
+def test_an_earlier_version_keeps_its_rows_after_later_appends() -> None:
+    first = VectorMatrix.build(random_rows(10, 4), metric="dot", dimension=4)
+    copy = first.rows.copy()
+    first.append(random_rows(5, 4, seed=9))
+    assert first.n_rows == 10 and np.array_equal(first.rows, copy)
+
+
+def test_bad_query_vectors_are_rejected_as_invalid_requests() -> None:
+    matrix = VectorMatrix.build(random_rows(3, 4), metric="cosine", dimension=4)
+    with pytest.raises(InvalidRequest):
+        matrix.prepare_query([1.0, 2.0])
+    with pytest.raises(InvalidRequest):
+        matrix.prepare_query([0.0] * 4)

@@ -49,7 +49,7 @@ def parse_schema(raw: dict[str, Any]) -> Schema:
             raise AttributeValueError(f"attribute name {name!r} must match [a-z][a-z0-9_]{{0,62}}")
         type_name = spec.get("type") if isinstance(spec, dict) else None
         try:
-            schema[name] = AttributeType(type_name)
+            schema[name] = AttributeType(str(type_name))
         except ValueError:
             allowed = ", ".join(t.value for t in AttributeType)
             raise AttributeValueError(

@@ -188,6 +188,29 @@ def _key_session(args: argparse.Namespace) -> Any:
     return engine, session_factory(engine)
 
 
+def _print_keys(rows: Sequence[Any], *, as_json: bool) -> None:
+    if as_json:
+        _print_json([vars(r) for r in rows])
+        return
+    header = ("name", "role", "groups", "collections", "created", "last used", "state")
+    table = [header]
+    for r in rows:
+        table.append(
+            (
+                r.name,
+                r.role,
+                ",".join(r.groups) or "-",
+                ",".join(r.collections) if r.collections is not None else "all",
+                f"{r.created_at:%Y-%m-%d %H:%M:%S}",
+                f"{r.last_used_at:%Y-%m-%d %H:%M:%S}" if r.last_used_at else "-",
+                "revoked" if r.revoked else "active",
+            )
+        )
+    widths = [max(len(row[i]) for row in table) for i in range(len(header))]
+    for row in table:
+        print("  ".join(cell.ljust(width) for cell, width in zip(row, widths, strict=True)))
+
+
 def cmd_keys(args: argparse.Namespace) -> int:
     from service.store.db import unit_of_work
     from service.usecases import keys
@@ -204,25 +227,15 @@ def cmd_keys(args: argparse.Namespace) -> int:
                     name=args.name,
                 )
                 print(secret)
-                print(f"created key {info.name!r} ({info.role}); it is shown only once", file=sys.stderr)
+                print(
+                    f"created key {info.name!r} ({info.role}); it is shown only once",
+                    file=sys.stderr,
+                )
             elif args.keys_command == "revoke":
                 keys.revoke_key(session, args.name)
                 print(f"revoked key {args.name!r}")
             else:
-                rows = keys.list_keys(session)
-                if args.json:
-                    _print_json([vars(r) for r in rows])
-                else:
-                    print(f"{'name':<24} {'role':<7} {'groups':<20} {'collections':<20} "
-                          f"{'created':<20} {'last used':<20} state")
-                    for r in rows:
-                        print(
-                            f"{r.name:<24} {r.role:<7} {','.join(r.groups) or '-':<20} "
-                            f"{','.join(r.collections) if r.collections is not None else 'all':<20} "
-                            f"{r.created_at:%Y-%m-%d %H:%M:%S}  "
-                            f"{r.last_used_at.strftime('%Y-%m-%d %H:%M:%S') if r.last_used_at else '-':<20} "
-                            f"{'revoked' if r.revoked else 'active'}"
-                        )
+                _print_keys(keys.list_keys(session), as_json=args.json)
     finally:
         engine.dispose()
     return 0
@@ -319,7 +332,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
             written, failures = ingest_path(
                 runtime,
                 DEMO_COLLECTION,
-                corpus,
+                corpus / "documents",
                 schema_file=corpus / "schema.json",
                 batch_size=64,
                 report=lambda line: print(line, file=sys.stderr),

@@ -75,9 +75,7 @@ def make_runtime(tmp_path: Path) -> Iterator[Callable[..., Runtime]]:
 
     def build(engine: Engine | None = None, embedder: Any = None, **settings: Any) -> Runtime:
         options: dict[str, Any] = {"data_dir": tmp_path / "data", "index_poll_ms": 0, **settings}
-        runtime = Runtime(
-            Settings(**options), embedder or HashingTestEmbedder(), engine=engine
-        )
+        runtime = Runtime(Settings(**options), embedder or HashingTestEmbedder(), engine=engine)
         built.append(runtime)
         return runtime
 
@@ -97,7 +95,7 @@ def minilm() -> Any:
         from service.embedding.minilm import MiniLmEmbedder
 
         return MiniLmEmbedder()
-    except Exception as exc:  # noqa: BLE001 - reported as a skip or, in CI, a failure
+    except Exception as exc:
         need(False, f"the bundled model cannot be loaded: {exc}")
 
 

@@ -63,9 +63,7 @@ def create_app(runtime: Runtime) -> FastAPI:
         yield
         runtime.close()
 
-    docs: dict[str, Any] = (
-        {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
-    )
+    docs: dict[str, Any] = {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
     app = FastAPI(
         title="excerpta",
         version="0.1.0",

@@ -1,4 +1,4 @@
-"""The small interface every embedder offers, and the hashing helpers the cache keys on."""
+"""The small interface every embedder offers, and the hash the embedding cache keys on."""
 
 from __future__ import annotations
 
@@ -8,21 +8,31 @@ from typing import Protocol
 
 import numpy as np
 
-
-class TokenCounter(Protocol):
-    def count(self, text: str) -> int: ...
-
-    def offsets(self, text: str) -> list[tuple[int, int]]: ...
+from service.ingest.chunking import TokenCounter
 
 
 class Embedder(Protocol):
     """``window`` counts tokens including the model's special tokens."""
 
-    name: str
-    dimensions: int
-    window: int
-    tokenizer_name: str
-    tokens: TokenCounter
+    @property
+    def name(self) -> str: ...
+
+    @property
+    def dimensions(self) -> int: ...
+
+    @property
+    def window(self) -> int: ...
+
+    @property
+    def special_tokens(self) -> int:
+        """Tokens the model adds around every input ([CLS] and [SEP] for BERT-style models)."""
+        ...
+
+    @property
+    def tokenizer_name(self) -> str: ...
+
+    @property
+    def tokens(self) -> TokenCounter: ...
 
     def embed_documents(self, texts: Sequence[str]) -> np.ndarray: ...
 

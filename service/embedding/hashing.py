@@ -30,6 +30,7 @@ class WhitespaceTokenCounter:
 class HashingTestEmbedder:
     name = "hashing-test-only"
     window = 512
+    special_tokens = 0
     tokenizer_name = "words-and-punctuation (test only)"
 
     def __init__(self, dimensions: int = 64) -> None:

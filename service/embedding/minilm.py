@@ -16,6 +16,7 @@ class MiniLmEmbedder:
     name = "minilm"
     dimensions = 384
     window = 256
+    special_tokens = 2
     tokenizer_name = "all-MiniLM-L6-v2 wordpiece"
 
     def __init__(self, *, batch_size: int = 64) -> None:

@@ -203,7 +203,9 @@ def replace_chunks(
     session: Session, document_pk: int, generation: int, chunks: Sequence[dict[str, Any]]
 ) -> None:
     session.execute(
-        delete(ChunkRow).where(ChunkRow.document_id == document_pk, ChunkRow.generation == generation)
+        delete(ChunkRow).where(
+            ChunkRow.document_id == document_pk, ChunkRow.generation == generation
+        )
     )
     session.add_all(ChunkRow(document_id=document_pk, generation=generation, **c) for c in chunks)
 

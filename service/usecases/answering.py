@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -17,7 +17,7 @@ from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
 from service.generation.base import GeneratedAnswer, Generator
 from service.packing.packer import PackCandidate, PackedContext, pack_context
-from service.retrieval.hybrid import RetrievalResult, retrieve
+from service.retrieval.retrieve import Mode, RetrievalResult, retrieve
 from service.store import repository
 from service.usecases.callers import Caller, Role
 from service.usecases.collections import attribute_schema, load_collection
@@ -57,7 +57,10 @@ def _retrieve(
     options: SearchOptions,
     route: str,
     extra_request: dict[str, Any] | None = None,
+    *,
+    whole_ranking: bool = False,
 ) -> Retrieval:
+    """Run the pipeline; ``whole_ranking`` keeps every fused hit up to depth, for packing."""
     caller.require(Role.READER)
     check_options(options, runtime.settings, runtime.embedder.dimensions)
     with runtime.transaction() as session:
@@ -99,12 +102,12 @@ def _retrieve(
         query_tokens=query_tokens,
         query_vector=query_vector,
         candidate_mask=mask,
-        mode=options.mode,
-        top_k=options.top_k,
+        mode=cast(Mode, options.mode),
+        top_k=max(options.depth, options.top_k) if whole_ranking else options.top_k,
         depth=max(options.depth, options.top_k),
         rrf_k=options.rrf_k,
-        k1=view.k1,
-        b=view.b,
+        k1=view.k1 if options.k1 is None else options.k1,
+        b=view.b if options.b is None else options.b,
         bm25_variant=view.bm25_variant,
     )
     for stage in result.stages:
@@ -146,6 +149,21 @@ def search(
     }
 
 
+def search_without_trace(
+    runtime: Runtime, caller: Caller, collection: str, options: SearchOptions
+) -> dict[str, Any]:
+    """The search body without storing a trace: evaluation runs thousands of queries."""
+    retrieval = _retrieve(runtime, caller, collection, options, "search")
+    hits = [_hit(retrieval.view, hit) for hit in retrieval.result.hits]
+    return {"hits": hits, "candidates": retrieval.result.candidates, "trace_id": ""}
+
+
+def collection_settings(runtime: Runtime, caller: Caller, collection: str) -> dict[str, Any]:
+    from service.usecases.collections import get_collection
+
+    return get_collection(runtime, caller, collection)
+
+
 def _check_budget(runtime: Runtime, token_budget: int) -> None:
     if token_budget < 1:
         raise InvalidRequest("token_budget must be at least 1.", field="token_budget")
@@ -163,7 +181,7 @@ def _pack(
     view = retrieval.view
     started = time.perf_counter()
     candidates = []
-    for hit in retrieval.result.ranked:
+    for hit in retrieval.result.hits:
         row = view.row(hit.row)
         candidates.append(
             PackCandidate(
@@ -256,7 +274,13 @@ def build_context(
 ) -> dict[str, Any]:
     _check_budget(runtime, token_budget)
     retrieval = _retrieve(
-        runtime, caller, collection, options, "context", {"token_budget": token_budget}
+        runtime,
+        caller,
+        collection,
+        options,
+        "context",
+        {"token_budget": token_budget},
+        whole_ranking=True,
     )
     packed = _pack(runtime, retrieval, token_budget, 1.0)
     retrieval.recorder.save(runtime, caller, tokens_used=packed.tokens_used)
@@ -280,6 +304,7 @@ def answer(
         options,
         "answer",
         {"token_budget": token_budget, "generator": generator.name},
+        whole_ranking=True,
     )
     facts = retrieval.facts
     recorder = retrieval.recorder
@@ -291,7 +316,7 @@ def answer(
         "caution": facts.answer_caution,
         "trace_id": recorder.trace_id,
     }
-    if retrieval.result.candidates == 0 or not retrieval.result.ranked:
+    if retrieval.result.candidates == 0 or not retrieval.result.hits:
         body["reason"] = "no_candidates"
         recorder.save(runtime, caller, reason="no_candidates")
         return body

@@ -37,7 +37,9 @@ class Caller:
 
     def require(self, role: Role) -> None:
         if self.role < role:
-            raise Forbidden(f"This key's role ({self.role.name.lower()}) does not allow this route.")
+            raise Forbidden(
+                f"This key's role ({self.role.name.lower()}) does not allow this route."
+            )
 
     def require_collection(self, name: str) -> None:
         """A collection outside the key's list is reported exactly like a missing one."""

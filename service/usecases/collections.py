@@ -96,7 +96,11 @@ def _checked_retrieval(raw: dict[str, Any], current: dict[str, Any]) -> dict[str
         )
     for name, low, high in (("k1", 0.0, 10.0), ("b", 0.0, 1.0)):
         value = merged[name]
-        if isinstance(value, bool) or not isinstance(value, int | float) or not low <= value <= high:
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, int | float)
+            or not low <= value <= high
+        ):
             raise InvalidRequest(
                 f"retrieval.{name} must be a number from {low} to {high}.",
                 field=f"retrieval.{name}",
@@ -104,7 +108,9 @@ def _checked_retrieval(raw: dict[str, Any], current: dict[str, Any]) -> dict[str
         merged[name] = float(value)
     for name in ("stemming", "stopwords"):
         if not isinstance(merged[name], bool):
-            raise InvalidRequest(f"retrieval.{name} must be true or false.", field=f"retrieval.{name}")
+            raise InvalidRequest(
+                f"retrieval.{name} must be true or false.", field=f"retrieval.{name}"
+            )
     return merged
 
 
@@ -138,8 +144,10 @@ def put_collection(
         )
         current_settings = dict(row.settings) if row else {}
         retrieval = _checked_retrieval(spec.retrieval or {}, current_settings.get("retrieval", {}))
-        cite = spec.cite_attributes if spec.cite_attributes is not None else (
-            row.cite_attributes if row else []
+        cite = (
+            spec.cite_attributes
+            if spec.cite_attributes is not None
+            else (row.cite_attributes if row else [])
         )
         for attr in cite:
             if attr not in schema:
@@ -194,13 +202,15 @@ def put_collection(
             row.updated_at = now
             if retrieval_changed or set(new_schema) - set(old_schema):
                 repository.bump_revision(session, row, [(None, "reset")])
-        view = collection_view(session, row, caller)
+        view = collection_view(session, row, caller, runtime.embedder.tokenizer_name)
     if rebuild_needed:
         runtime.rebuilds.start(name)
     return created, view
 
 
-def collection_view(session: Session, row: CollectionRow, caller: Caller) -> dict[str, Any]:
+def collection_view(
+    session: Session, row: CollectionRow, caller: Caller, tokenizer: str
+) -> dict[str, Any]:
     documents, chunks = repository.count_documents(session, row.id, caller.visible_groups)
     pending = row.settings.get("pending_chunking")
     view: dict[str, Any] = {
@@ -211,7 +221,7 @@ def collection_view(session: Session, row: CollectionRow, caller: Caller) -> dic
         "cite_attributes": row.cite_attributes,
         "answer_caution": row.answer_caution,
         "retrieval": row.settings.get("retrieval", DEFAULT_RETRIEVAL),
-        "tokenizer": _tokenizer_name(row),
+        "tokenizer": tokenizer,
         "embedder": row.embedder,
         "documents": documents,
         "chunks": chunks,
@@ -224,21 +234,18 @@ def collection_view(session: Session, row: CollectionRow, caller: Caller) -> dic
     return view
 
 
-def _tokenizer_name(row: CollectionRow) -> str:
-    return "all-MiniLM-L6-v2 wordpiece" if row.embedder == "minilm" else row.embedder
-
-
 def get_collection(runtime: Runtime, caller: Caller, name: str) -> dict[str, Any]:
     caller.require(Role.READER)
     with runtime.transaction() as session:
-        return collection_view(session, load_collection(session, caller, name), caller)
+        row = load_collection(session, caller, name)
+        return collection_view(session, row, caller, runtime.embedder.tokenizer_name)
 
 
 def list_collections(runtime: Runtime, caller: Caller) -> list[dict[str, Any]]:
     caller.require(Role.READER)
     with runtime.transaction() as session:
         return [
-            collection_view(session, row, caller)
+            collection_view(session, row, caller, runtime.embedder.tokenizer_name)
             for row in repository.all_collections(session)
             if caller.collections is None or row.name in caller.collections
         ]
@@ -248,9 +255,12 @@ def delete_collection(runtime: Runtime, caller: Caller, name: str) -> None:
     caller.require(Role.ADMIN)
     with runtime.transaction() as session:
         row = load_collection(session, caller, name)
-        document_pks = [pk for pk, _ in repository.matching_document_ids(
-            session, row.id, groups=None, condition=None
-        )]
+        document_pks = [
+            pk
+            for pk, _ in repository.matching_document_ids(
+                session, row.id, groups=None, condition=None
+            )
+        ]
         repository.delete_documents(session, document_pks)
         session.delete(row)
     runtime.indexes.forget(name)

@@ -106,7 +106,9 @@ def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
     if title is None:
         title = external_id
     if not isinstance(title, str) or len(title) > 1000:
-        raise DocumentProblem("invalid_title", "The title must be a string of at most 1000 characters.")
+        raise DocumentProblem(
+            "invalid_title", "The title must be a string of at most 1000 characters."
+        )
     _check_text(title, "title")
     title = " ".join(title.split()) or external_id
     media_type = raw.get("media_type", "text/plain")
@@ -116,7 +118,9 @@ def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
         )
     source_url = raw.get("source_url")
     if source_url is not None and (not isinstance(source_url, str) or len(source_url) > 2000):
-        raise DocumentProblem("invalid_source_url", "The source_url must be a string of at most 2000 characters.")
+        raise DocumentProblem(
+            "invalid_source_url", "The source_url must be a string of at most 2000 characters."
+        )
     if isinstance(source_url, str):
         _check_text(source_url, "source_url")
     attributes_raw = raw.get("attributes") or {}
@@ -135,13 +139,16 @@ def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
         try:
             attributes[name] = normalize_value(name, schema[name], value)
         except AttributeValueError as exc:
-            raise DocumentProblem("invalid_attribute", f"{str(exc)[0].upper()}{str(exc)[1:]}.") from None
+            raise DocumentProblem(
+                "invalid_attribute", f"{str(exc)[0].upper()}{str(exc)[1:]}."
+            ) from None
     access_raw = raw.get("access") or []
     if not isinstance(access_raw, list) or not all(
         isinstance(g, str) and _GROUP.fullmatch(g) for g in access_raw
     ):
         raise DocumentProblem(
-            "invalid_access", "The access list must hold group names matching [A-Za-z0-9._:-]{1,128}."
+            "invalid_access",
+            "The access list must hold group names matching [A-Za-z0-9._:-]{1,128}.",
         )
     access = tuple(sorted(set(access_raw)))
     attributes_json = {name: to_json_value(attributes[name]) for name in sorted(attributes)}
@@ -188,7 +195,11 @@ def materialise(
     drafts = []
     for span in spans:
         embedded = embedding_input(
-            prepared.title, span.section, span.text, counter, runtime.embedder.window
+            prepared.title,
+            span.section,
+            span.text,
+            counter,
+            runtime.embedder.window - runtime.embedder.special_tokens,
         )
         drafts.append(
             ChunkDraft(
@@ -270,7 +281,9 @@ def upsert_documents(
             continue
         if doc.external_id in seen:
             problems.append(
-                _problem(doc.external_id, index, "duplicate_id", "The id appears twice in the batch.")
+                _problem(
+                    doc.external_id, index, "duplicate_id", "The id appears twice in the batch."
+                )
             )
             continue
         seen[doc.external_id] = index
@@ -299,14 +312,13 @@ def upsert_documents(
         )
 
     changed = [
-        d for d in prepared
+        d
+        for d in prepared
         if existing.get(d.external_id) is None
         or existing[d.external_id].content_hash != d.content_hash
     ]
     built = {d.external_id: materialise(runtime, d, chunking) for d in changed}
-    rebuilt = (
-        {d.external_id: materialise(runtime, d, pending) for d in changed} if pending else {}
-    )
+    rebuilt = {d.external_id: materialise(runtime, d, pending) for d in changed} if pending else {}
     results: list[dict[str, Any]] = []
     with runtime.transaction() as session:
         row = load_collection(session, caller, collection)
@@ -352,7 +364,9 @@ def upsert_documents(
                     row.chunk_generation + 1,
                     chunk_rows(rebuilt[doc.external_id]),
                 )
-            results.append({"id": doc.external_id, "status": status, "chunks": len(material.chunks)})
+            results.append(
+                {"id": doc.external_id, "status": status, "chunks": len(material.chunks)}
+            )
         if built:
             revision = repository.bump_revision(
                 session, row, [(external_id, "upsert") for external_id in built]
@@ -361,12 +375,7 @@ def upsert_documents(
         runtime.indexes.after_write(
             collection,
             revision,
-            {
-                external_id: runtime.indexes.records_for(
-                    material, vectors, schema_attributes=material.prepared.attributes
-                )
-                for external_id, material in built.items()
-            },
+            {external_id: (material, vectors) for external_id, material in built.items()},
         )
     return results
 
@@ -488,7 +497,7 @@ def delete_document(runtime: Runtime, caller: Caller, collection: str, document_
         document = _visible_document(session, caller, row, document_id)
         repository.delete_documents(session, [document.id])
         revision = repository.bump_revision(session, row, [(document_id, "delete")])
-    runtime.indexes.after_write(collection, revision, {document_id: []})
+    runtime.indexes.after_write(collection, revision, {document_id: None})
 
 
 def _filter_condition(row: CollectionRow, filter_value: str | dict[str, Any] | None) -> Any:
@@ -566,5 +575,5 @@ def delete_by_filter(
             return 0
         repository.delete_documents(session, [pk for pk, _ in matches])
         revision = repository.bump_revision(session, row, [(ext, "delete") for _, ext in matches])
-    runtime.indexes.after_write(collection, revision, {ext: [] for _, ext in matches})
+    runtime.indexes.after_write(collection, revision, {ext: None for _, ext in matches})
     return len(matches)

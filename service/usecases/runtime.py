@@ -18,6 +18,7 @@ from service.embedding.base import Embedder
 from service.store.db import make_engine, migrate, session_factory, unit_of_work
 
 if TYPE_CHECKING:
+    from service.usecases.generators import GeneratorRegistry
     from service.usecases.indexes import IndexRegistry
     from service.usecases.rebuild import RebuildWorker
 
@@ -31,6 +32,7 @@ class Runtime:
         engine: Engine | None = None,
         run_migrations: bool = True,
     ) -> None:
+        from service.usecases.generators import GeneratorRegistry
         from service.usecases.indexes import IndexRegistry
         from service.usecases.rebuild import RebuildWorker
 
@@ -42,6 +44,7 @@ class Runtime:
         self.sessions: sessionmaker[Session] = session_factory(self.engine)
         self.indexes: IndexRegistry = IndexRegistry(self)
         self.rebuilds: RebuildWorker = RebuildWorker(self)
+        self.generators: GeneratorRegistry = GeneratorRegistry(self)
 
     @contextmanager
     def transaction(self) -> Iterator[Session]:

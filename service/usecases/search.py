@@ -11,13 +11,13 @@ from typing import Any
 import numpy as np
 
 from service.attributes import Schema
+from service.config import Settings
 from service.errors import InvalidRequest, LimitExceeded
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
 from service.filters.render import to_text
 from service.filters.syntax import Node, conjunction
 from service.filters.time_window import resolve_time_window
-from service.config import Settings
 
 MODES = ("hybrid", "lexical", "semantic")
 
@@ -41,6 +41,9 @@ class SearchOptions:
     rrf_k: int = 60
     depth: int = 100
     query_vector: list[float] | None = None
+    # Evaluation may vary BM25's parameters per run; the HTTP API never sets these.
+    k1: float | None = None
+    b: float | None = None
 
     def as_request(self) -> dict[str, Any]:
         return {
@@ -51,7 +54,9 @@ class SearchOptions:
             "mode": self.mode,
             "rrf_k": self.rrf_k,
             "depth": max(self.depth, self.top_k),
-            "query_vector": None if self.query_vector is None else f"{len(self.query_vector)} floats",
+            "query_vector": None
+            if self.query_vector is None
+            else f"{len(self.query_vector)} floats",
         }
 
 

@@ -9,8 +9,13 @@ from fastapi import APIRouter, Query, Response
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
-from service.api.schemas import DeletedOut, DocumentBatchIn, DocumentBatchOut, DocumentListOut
-from service.api.schemas import DocumentOut
+from service.api.schemas import (
+    DeletedOut,
+    DocumentBatchIn,
+    DocumentBatchOut,
+    DocumentListOut,
+    DocumentOut,
+)
 from service.errors import InvalidRequest
 from service.usecases import documents as usecase
 

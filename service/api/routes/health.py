@@ -22,7 +22,7 @@ def readyz(runtime: RuntimeDep) -> HealthOut | JSONResponse:
     try:
         with runtime.engine.connect() as connection:
             connection.execute(text("SELECT 1"))
-    except Exception:  # noqa: BLE001 - readiness reports the store's state, it never raises
+    except Exception:
         return JSONResponse({"status": "database unreachable"}, status_code=503)
     if runtime.embedder.dimensions <= 0:
         return JSONResponse({"status": "embedder not loaded"}, status_code=503)

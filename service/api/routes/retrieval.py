@@ -6,14 +6,19 @@ from fastapi import APIRouter
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
-from service.api.schemas import AnswerIn, AnswerOut, ContextIn, ContextOut, ErrorOut
-from service.api.schemas import SearchIn, SearchOut
+from service.api.schemas import (
+    AnswerIn,
+    AnswerOut,
+    ContextIn,
+    ContextOut,
+    ErrorOut,
+    SearchIn,
+    SearchOut,
+)
 from service.usecases import answering
 from service.usecases.search import SearchOptions, TimeWindow
 
-router = APIRouter(
-    prefix="/v1/collections/{name}", tags=["retrieval"], responses=ERROR_RESPONSES
-)
+router = APIRouter(prefix="/v1/collections/{name}", tags=["retrieval"], responses=ERROR_RESPONSES)
 
 
 def _options(body: SearchIn) -> SearchOptions:

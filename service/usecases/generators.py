@@ -1,0 +1,63 @@
+"""Choosing a generator per request or by setting; only configured generators are offered."""
+
+from __future__ import annotations
+
+import threading
+from typing import TYPE_CHECKING
+
+from service.errors import InvalidRequest
+from service.generation.base import Generator
+from service.generation.chat_http import ChatHttpGenerator
+from service.generation.extractive import ExtractiveGenerator
+from service.index.analyzer import Analyzer
+from service.logging_setup import register_secret
+
+if TYPE_CHECKING:
+    from service.usecases.runtime import Runtime
+
+GENERATOR_NAMES = ("extractive", "chat-http")
+
+
+class GeneratorRegistry:
+    def __init__(self, runtime: Runtime) -> None:
+        self._runtime = runtime
+        self._built: dict[str, Generator] = {}
+        self._lock = threading.Lock()
+
+    def get(self, name: str | None) -> Generator:
+        chosen = name or self._runtime.settings.generator
+        if chosen not in GENERATOR_NAMES:
+            raise InvalidRequest(
+                f"Unknown generator {chosen!r}; choose extractive or chat-http.", field="generator"
+            )
+        with self._lock:
+            if chosen not in self._built:
+                self._built[chosen] = self._build(chosen)
+            return self._built[chosen]
+
+    def _build(self, name: str) -> Generator:
+        settings = self._runtime.settings
+        embedder = self._runtime.embedder
+        if name == "extractive":
+            return ExtractiveGenerator(
+                embed_query=embedder.embed_query,
+                embed_texts=embedder.embed_documents,
+                analyzer_tokens=Analyzer.english().tokens,
+                max_sentences=settings.extractive_max_sentences,
+            )
+        if not settings.chat_url:
+            raise InvalidRequest(
+                "The chat-http generator is not configured (set EXCERPTA_CHAT_URL).",
+                field="generator",
+            )
+        api_key = settings.chat_api_key.get_secret_value() if settings.chat_api_key else None
+        if api_key:
+            register_secret(api_key)
+        return ChatHttpGenerator(
+            settings.chat_url,
+            settings.chat_model,
+            api_key,
+            token_margin=settings.chat_token_margin,
+            timeout_seconds=settings.chat_timeout_seconds,
+            max_retries=settings.chat_max_retries,
+        )

@@ -113,6 +113,13 @@ def ingest_path(
     bar = tqdm(total=len(items), unit="doc", disable=not progress, file=sys.stderr)
     batch: list[tuple[str, dict[str, Any]]] = []
 
+    def emit(line: str) -> None:
+        # Through the bar when it is shown, so a report never lands inside its line.
+        if progress:
+            bar.write(line, file=sys.stderr)
+        else:
+            report(line)
+
     def flush() -> None:
         nonlocal failures, written, chunks
         pending = list(batch)
@@ -126,7 +133,7 @@ def ingest_path(
                 bad = {problem["index"] for problem in exc.extra["documents"]}
                 for problem in exc.extra["documents"]:
                     origin = pending[problem["index"]][0]
-                    report(f"{origin}: {problem['message']}")
+                    emit(f"{origin}: {problem['message']}")
                 failures += len(bad)
                 bar.update(len(bad))
                 pending = [item for i, item in enumerate(pending) if i not in bad]
@@ -140,7 +147,7 @@ def ingest_path(
 
     for item in items:
         if item.error is not None or item.document is None:
-            report(f"{item.origin}: {item.error}")
+            emit(f"{item.origin}: {item.error}")
             failures += 1
             bar.update(1)
             continue

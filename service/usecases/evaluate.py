@@ -255,10 +255,6 @@ def run_eval_command(
     files = write_report(result, Path(args.out), title=f"Retrieval evaluation: {args.collection}")
     print(f"report written to {files.report}")
     for system in result.systems:
-        cells = ", ".join(
-            f"{name} {system.summary[name].mean:.4f}"
-            for name in result.measures
-            if name.startswith(("ndcg", "recall", "mrr", "map"))
-        )
+        cells = ", ".join(f"{name} {system.summary[name].mean:.4f}" for name in result.measures)
         print(f"  {system.system.label}: {cells}")
     return 0

@@ -1,0 +1,168 @@
+"""``excerpta bench``: argument parsing and the run that prints and returns every figure.
+
+Exit status: 0 when the run completed (targets are reported, not enforced, in process),
+1 when the HTTP run saw an error or could not run, 2 on bad arguments.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+from threadpoolctl import threadpool_limits
+
+from service.bench.report import machine, print_http, print_machine, print_model, print_size
+from service.bench.synthetic import check_parameters, make_queries
+from service.bench.verdicts import http_targets, model_targets, ratios, targets
+
+DEFAULT_SIZES = "10000,100000,1000000"
+
+
+def _sizes(value: str) -> list[int]:
+    try:
+        sizes = [int(part.replace("_", "")) for part in value.split(",") if part.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError("--chunks takes sizes such as 10000,100000") from None
+    if not sizes or any(size < 10 for size in sizes):
+        raise argparse.ArgumentTypeError("every size must be at least 10 chunks")
+    return sizes
+
+
+def _positive(value: str) -> int:
+    number = int(value)
+    if number < 1:
+        raise argparse.ArgumentTypeError("must be at least 1")
+    return number
+
+
+def _positive_float(value: str) -> float:
+    number = float(value)
+    if not number > 0:
+        raise argparse.ArgumentTypeError("must be positive")
+    return number
+
+
+def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--chunks", type=_sizes, default=_sizes(DEFAULT_SIZES), help="collection sizes"
+    )
+    parser.add_argument("--dims", type=_positive, default=384, help="vector dimensions")
+    parser.add_argument("--queries", type=_positive, default=200, help="queries per stage")
+    parser.add_argument("--top-k", type=_positive, default=10)
+    parser.add_argument("--depth", type=_positive, default=100, help="depth of the hybrid query")
+    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument(
+        "--threads",
+        type=_positive,
+        help="BLAS threads for ours and the references alike (default: the library's own)",
+    )
+    parser.add_argument("--json", type=Path, help="write every figure to this file")
+    parser.add_argument(
+        "--with-model",
+        action="store_true",
+        help="also time the real embedder and ingestion through the real use case",
+    )
+    parser.add_argument(
+        "--model-documents", type=_positive, default=200, help="documents ingested with the model"
+    )
+    parser.add_argument(
+        "--http",
+        action="store_true",
+        help="drive the real server over HTTP instead of the in-process run",
+    )
+    parser.add_argument("--http-chunks", type=_positive, default=20_000)
+    parser.add_argument(
+        "--http-seconds", type=_positive_float, default=10.0, help="seconds per concurrency level"
+    )
+    parser.add_argument(
+        "--http-clients", default="1,4,16", help="concurrency levels, comma separated"
+    )
+
+
+def _progress(line: str) -> None:
+    print(f"... {line}", file=sys.stderr, flush=True)
+
+
+def run_bench(args: argparse.Namespace) -> dict[str, Any]:
+    """Run what ``args`` ask for, print it, and return every figure."""
+    info = machine()
+    print_machine(info, print)
+    results: dict[str, Any] = {
+        "machine": info,
+        "settings": {
+            "dimensions": args.dims,
+            "queries": args.queries,
+            "top_k": args.top_k,
+            "depth": args.depth,
+            "seed": args.seed,
+        },
+    }
+    queries = make_queries(args.queries, args.dims, args.seed)
+    if args.http:
+        from service.bench.http import run_http
+
+        check_parameters(args.http_chunks, args.dims)
+        clients = [_positive(part) for part in args.http_clients.split(",") if part.strip()]
+        http = run_http(
+            chunks=args.http_chunks,
+            dimension=args.dims,
+            queries=queries,
+            seed=args.seed,
+            seconds=args.http_seconds,
+            clients=clients,
+            top_k=args.top_k,
+            depth=args.depth,
+            progress=_progress,
+        )
+        http["targets"] = http_targets(http)
+        print_http(http, print)
+        results["http"] = http
+        return results
+
+    from service.bench.inprocess import run_size
+
+    results["sizes"] = []
+    for size in args.chunks:
+        check_parameters(size, args.dims)
+        figures = run_size(
+            size,
+            dimension=args.dims,
+            queries=queries,
+            seed=args.seed,
+            top_k=args.top_k,
+            depth=args.depth,
+            progress=_progress,
+        )
+        figures["ratios"] = ratios(figures)
+        figures["targets"] = targets(figures)
+        print_size(figures, print)
+        sys.stdout.flush()
+        results["sizes"].append(figures)
+    if args.with_model:
+        from service.bench.model import run_model
+
+        model = run_model(queries=queries, documents=args.model_documents, seed=args.seed)
+        model["targets"] = model_targets(model)
+        print_model(model, print)
+        results["model"] = model
+    return results
+
+
+def run_bench_command(args: argparse.Namespace) -> int:
+    try:
+        with threadpool_limits(limits=args.threads):
+            results = run_bench(args)
+    except ValueError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    except RuntimeError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    if args.json is not None:
+        args.json.write_text(json.dumps(results, indent=2, default=str) + "\n", encoding="utf-8")
+    if args.http and any(level["errors"] for level in results["http"]["levels"]):
+        return 1
+    return 0

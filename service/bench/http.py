@@ -1,0 +1,385 @@
+"""``excerpta bench --http``: the real server, a scratch store, and concurrent clients.
+
+The collection is written straight through the store layer with random unit vectors stored as
+its chunks' embeddings, so ingest needs no model; requests carry ``query_vector`` so queries need
+none either (the server still loads its model at start). Each concurrency level runs its
+clients, one thread and one keep-alive connection each, for a bounded time; the server is
+stopped at the end whatever happens.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+import httpx
+import numpy as np
+from sqlalchemy import insert
+from sqlalchemy.orm import Session
+
+from service.bench.inprocess import hybrid_query
+from service.bench.synthetic import (
+    CHUNKS_PER_DOCUMENT,
+    QuerySet,
+    SyntheticCollection,
+    document_id_of,
+    make_collection,
+)
+from service.bench.timing import Summary, time_each
+from service.index.analyzer import Analyzer
+from service.index.collection_index import ChunkRecord, CollectionIndex
+from service.store import repository
+from service.store.db import make_engine, migrate, session_factory, unit_of_work
+from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
+from service.usecases import keys
+from service.usecases.collections import DEFAULT_CHUNKING, DEFAULT_RETRIEVAL
+
+COLLECTION = "bench"
+EMBEDDER_NAME = "minilm"
+EMBEDDER_DIMENSIONS = 384
+READY_TIMEOUT_SECONDS = 300.0
+FIRST_QUERY_TIMEOUT_SECONDS = 600.0
+REQUEST_TIMEOUT_SECONDS = 60.0
+STOP_TIMEOUT_SECONDS = 15.0
+ERROR_SAMPLES = 5
+_INSERT_BATCH = 5_000
+
+Progress = Callable[[str], None]
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+def _chunk_hash(chunk_id: str) -> str:
+    return hashlib.sha256(f"bench:{chunk_id}".encode()).hexdigest()
+
+
+def write_collection(session: Session, collection: SyntheticCollection) -> None:
+    """The synthetic rows as documents, chunks and stored embeddings of one collection."""
+    now = repository.utcnow()
+    row = CollectionRow(
+        name=COLLECTION,
+        description="Synthetic benchmark collection",
+        attributes={},
+        chunking=dict(DEFAULT_CHUNKING),
+        cite_attributes=[],
+        answer_caution=None,
+        settings={"retrieval": dict(DEFAULT_RETRIEVAL)},
+        embedder=EMBEDDER_NAME,
+        chunk_generation=0,
+        revision=0,
+        created_at=now,
+        updated_at=now,
+    )
+    session.add(row)
+    session.flush()
+    records = collection.records
+    documents = []
+    for first in range(0, len(records), CHUNKS_PER_DOCUMENT):
+        chunks = records[first : first + CHUNKS_PER_DOCUMENT]
+        text = " ".join(r.text for r in chunks)
+        documents.append(
+            {
+                "id": first // CHUNKS_PER_DOCUMENT + 1,
+                "collection_id": row.id,
+                "external_id": document_id_of(first // CHUNKS_PER_DOCUMENT),
+                "title": chunks[0].title,
+                "media_type": "text/plain",
+                "source_url": None,
+                "content_hash": hashlib.sha256(text.encode()).hexdigest(),
+                "source_text": text,
+                "text": text,
+                "sections": [],
+                "attributes": {},
+                "access": [],
+                "created_at": now,
+                "updated_at": now,
+            }
+        )
+    _insert(session, DocumentRow, documents)
+    _insert(
+        session,
+        ChunkRow,
+        [
+            {
+                "document_id": index // CHUNKS_PER_DOCUMENT + 1,
+                "generation": 0,
+                "ordinal": r.ordinal,
+                "text": r.text,
+                "char_start": r.char_start,
+                "char_end": r.char_end,
+                "tokens": r.tokens,
+                "section": r.section,
+                "embedded_text_hash": _chunk_hash(r.chunk_id),
+            }
+            for index, r in enumerate(records)
+        ],
+    )
+    _insert(
+        session,
+        EmbeddingRow,
+        [
+            {
+                "embedder": EMBEDDER_NAME,
+                "text_hash": _chunk_hash(r.chunk_id),
+                "dimensions": collection.dimension,
+                "vector": np.asarray(r.vector, dtype=np.float32).tobytes(),
+            }
+            for r in records
+        ],
+    )
+    repository.bump_revision(session, row, [(None, "reset")])
+
+
+def _insert(session: Session, table: type, rows: Sequence[dict[str, Any]]) -> None:
+    for start in range(0, len(rows), _INSERT_BATCH):
+        session.execute(insert(table), list(rows[start : start + _INSERT_BATCH]))
+
+
+def analysed_index(collection: SyntheticCollection, analyzer: Analyzer) -> CollectionIndex:
+    """The index the server builds from the store: title, section and text through the analyzer."""
+    records = [
+        ChunkRecord(
+            chunk_id=r.chunk_id,
+            document_id=r.document_id,
+            ordinal=r.ordinal,
+            title=r.title,
+            section=r.section,
+            text=r.text,
+            char_start=r.char_start,
+            char_end=r.char_end,
+            tokens=r.tokens,
+            lexical_tokens=analyzer.tokens("\n".join(p for p in (r.title, r.section, r.text) if p)),
+            vector=r.vector,
+        )
+        for r in collection.records
+    ]
+    return CollectionIndex.build(records, metric="cosine", dimension=collection.dimension)
+
+
+def in_process_hybrid(
+    collection: SyntheticCollection, queries: QuerySet, *, top_k: int, depth: int
+) -> Summary:
+    """The hybrid query on the index the server builds, with the queries it analyses."""
+    analyzer = Analyzer.english()
+    snapshot = analysed_index(collection, analyzer).snapshot()
+    query_tokens = [analyzer.tokens(text) for text in queries.texts]
+    vectors = list(queries.vectors)
+    summary, _ = time_each(
+        range(len(queries)),
+        lambda i: hybrid_query(snapshot, query_tokens[i], vectors[i], top_k=top_k, depth=depth),
+    )
+    return summary
+
+
+class Server:
+    """``excerpta serve`` in a subprocess on 127.0.0.1, with its output in a log file."""
+
+    def __init__(self, data_dir: Path, port: int) -> None:
+        self.data_dir = data_dir
+        self.port = port
+        self.base_url = f"http://127.0.0.1:{port}"
+        self.log_path = data_dir / "server.log"
+        self._process: subprocess.Popen[bytes] | None = None
+
+    def start(self) -> None:
+        environment = dict(os.environ)
+        environment.update(
+            {
+                "EXCERPTA_DATA_DIR": str(self.data_dir),
+                "EXCERPTA_DATABASE_URL": f"sqlite:///{(self.data_dir / 'excerpta.db').as_posix()}",
+                "EXCERPTA_HOST": "127.0.0.1",
+                "EXCERPTA_PORT": str(self.port),
+                "EXCERPTA_AUTH": "required",
+                "EXCERPTA_RATE_LIMIT_PER_SECOND": "0",
+            }
+        )
+        command = [sys.executable, "-m", "service.cli", "serve"]
+        command += ["--host", "127.0.0.1", "--port", str(self.port)]
+        with open(self.log_path, "wb") as log:
+            self._process = subprocess.Popen(
+                command, env=environment, stdout=log, stderr=subprocess.STDOUT
+            )
+
+    def wait_ready(self, timeout: float) -> None:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self._process is not None and self._process.poll() is not None:
+                raise RuntimeError(f"the server exited early:\n{self.log_tail()}")
+            try:
+                if httpx.get(f"{self.base_url}/readyz", timeout=2.0).status_code == 200:
+                    return
+            except httpx.HTTPError:
+                pass
+            time.sleep(0.5)
+        raise RuntimeError(f"the server was not ready after {timeout:g} s:\n{self.log_tail()}")
+
+    def log_tail(self, lines: int = 30) -> str:
+        try:
+            text = self.log_path.read_text(encoding="utf-8", errors="replace")
+        except OSError:
+            return ""
+        return "\n".join(text.splitlines()[-lines:])
+
+    def stop(self) -> None:
+        process = self._process
+        if process is None or process.poll() is not None:
+            return
+        process.terminate()
+        try:
+            process.wait(timeout=STOP_TIMEOUT_SECONDS)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait(timeout=STOP_TIMEOUT_SECONDS)
+
+
+def request_bodies(queries: QuerySet, *, top_k: int, depth: int) -> list[bytes]:
+    return [
+        json.dumps(
+            {
+                "query": text,
+                "query_vector": vector.tolist(),
+                "mode": "hybrid",
+                "top_k": top_k,
+                "depth": depth,
+            }
+        ).encode()
+        for text, vector in zip(queries.texts, queries.vectors, strict=True)
+    ]
+
+
+def drive(
+    base_url: str, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float
+) -> dict[str, Any]:
+    """``clients`` threads sending requests back to back until the time is up."""
+    url = f"{base_url}/v1/collections/{COLLECTION}/search"
+    headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
+    latencies: list[list[float]] = [[] for _ in range(clients)]
+    errors: list[list[str]] = [[] for _ in range(clients)]
+    start_line = threading.Barrier(clients + 1)
+    finished_at = [0.0] * clients
+    deadline_box: list[float] = []
+
+    def client(number: int) -> None:
+        with httpx.Client(headers=headers, timeout=REQUEST_TIMEOUT_SECONDS) as session:
+            start_line.wait()
+            deadline = deadline_box[0]
+            position = number
+            while time.perf_counter() < deadline:
+                body = bodies[position % len(bodies)]
+                position += clients
+                started = time.perf_counter()
+                try:
+                    response = session.post(url, content=body)
+                    elapsed = (time.perf_counter() - started) * 1000
+                    if response.status_code == 200:
+                        latencies[number].append(elapsed)
+                    else:
+                        errors[number].append(f"{response.status_code}: {response.text[:200]}")
+                except httpx.HTTPError as exc:
+                    errors[number].append(f"{type(exc).__name__}: {exc}")
+            finished_at[number] = time.perf_counter()
+
+    threads = [threading.Thread(target=client, args=(n,), daemon=True) for n in range(clients)]
+    for thread in threads:
+        thread.start()
+    started = time.perf_counter()
+    deadline_box.append(started + seconds)
+    start_line.wait()
+    for thread in threads:
+        thread.join(seconds + REQUEST_TIMEOUT_SECONDS + 5)
+    elapsed = max([*finished_at, started + 1e-9]) - started
+    all_latencies = [value for values in latencies for value in values]
+    all_errors = [error for values in errors for error in values]
+    figures: dict[str, Any] = {
+        "clients": clients,
+        "requests": len(all_latencies),
+        "errors": len(all_errors),
+        "seconds": elapsed,
+        "requests_per_second": len(all_latencies) / elapsed,
+        "error_samples": all_errors[:ERROR_SAMPLES],
+    }
+    if all_latencies:
+        summary = Summary.of(all_latencies)
+        figures.update(p50_ms=summary.median_ms, p95_ms=summary.p95_ms, p99_ms=summary.p99_ms)
+    else:
+        figures.update(p50_ms=float("nan"), p95_ms=float("nan"), p99_ms=float("nan"))
+    return figures
+
+
+def run_http(
+    *,
+    chunks: int,
+    dimension: int,
+    queries: QuerySet,
+    seed: int,
+    seconds: float,
+    clients: Sequence[int],
+    top_k: int,
+    depth: int,
+    progress: Progress,
+) -> dict[str, Any]:
+    if dimension != EMBEDDER_DIMENSIONS:
+        raise ValueError(f"--http needs --dims {EMBEDDER_DIMENSIONS}, the server model's size")
+    collection = make_collection(chunks, dimension, seed)
+    in_process = in_process_hybrid(collection, queries, top_k=top_k, depth=depth)
+
+    with tempfile.TemporaryDirectory(prefix="excerpta-bench-") as scratch:
+        data_dir = Path(scratch)
+        engine = make_engine(f"sqlite:///{(data_dir / 'excerpta.db').as_posix()}")
+        try:
+            migrate(engine)
+            sessions = session_factory(engine)
+            with unit_of_work(sessions) as session:
+                write_collection(session, collection)
+            with unit_of_work(sessions) as session:
+                key, _ = keys.create_key(
+                    session, role="reader", groups=[], collections=None, name="bench"
+                )
+        finally:
+            engine.dispose()
+        progress(f"{chunks:,} chunks written to the scratch store; starting the server")
+        server = Server(data_dir, free_port())
+        levels = []
+        try:
+            server.start()
+            server.wait_ready(READY_TIMEOUT_SECONDS)
+            bodies = request_bodies(queries, top_k=top_k, depth=depth)
+            first = httpx.post(
+                f"{server.base_url}/v1/collections/{COLLECTION}/search",
+                content=bodies[0],
+                headers={"Authorization": f"Bearer {key}", "Content-Type": "application/json"},
+                timeout=FIRST_QUERY_TIMEOUT_SECONDS,
+            )
+            if first.status_code != 200:
+                raise RuntimeError(
+                    f"the first search failed with {first.status_code}: {first.text[:500]}\n"
+                    f"{server.log_tail()}"
+                )
+            for level in clients:
+                progress(f"driving {level} concurrent client(s) for {seconds:g} s")
+                levels.append(drive(server.base_url, key, bodies, clients=level, seconds=seconds))
+        finally:
+            server.stop()
+    return {
+        "chunks": chunks,
+        "dimensions": dimension,
+        "server_port": server.port,
+        "seconds_per_level": seconds,
+        "in_process_hybrid": in_process.as_dict(),
+        "levels": levels,
+        "error_samples": [e for level in levels for e in level["error_samples"]][:ERROR_SAMPLES],
+    }

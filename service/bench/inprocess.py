@@ -1,0 +1,333 @@
+"""One collection size in process: build, time every stage and every reference, compare.
+
+Every stage runs the index's own functions on one snapshot with the fixed query set; the
+references run in the same process, on the same token lists and vectors, with the same BLAS
+thread pool. Lexical and semantic stages are timed at ``top_k`` (the depth the references
+return); the hybrid query runs at the service's default depth, and its comparison uses the
+lexical and semantic stages timed at that depth too.
+"""
+
+from __future__ import annotations
+
+import gc
+import os
+import time
+from collections.abc import Callable
+from functools import partial
+from typing import Any
+
+import numpy as np
+
+from service.bench.references import (
+    Bm25sLucene,
+    NumpyFullScan,
+    RankBm25Okapi,
+    TopK,
+    agreement,
+)
+from service.bench.synthetic import (
+    SCHEMA,
+    SELECTIVITIES_PER_MILLE,
+    THREE_CLAUSE_FILTER,
+    QuerySet,
+    make_collection,
+    selected_rows,
+    selectivity_filters,
+    selectivity_label,
+)
+from service.bench.timing import Summary, resident_bytes, time_each
+from service.filters.check import check_filter
+from service.filters.evaluate import evaluate
+from service.filters.parse import parse_filter
+from service.filters.syntax import Node
+from service.index.collection_index import CollectionIndex, IndexSnapshot
+from service.index.lexical import DEFAULT_B, DEFAULT_K1
+from service.packing.packer import PackCandidate, PackedContext, pack_context
+from service.retrieval.ranking import Ranking, fuse_rrf, lexical_ranking, semantic_ranking
+from service.retrieval.retrieve import RetrievalResult, retrieve
+
+RRF_K = 60
+TOKEN_BUDGET = 1000
+RANK_BM25_MAX_CHUNKS = 100_000
+
+Progress = Callable[[str], None]
+
+
+def semantic_key(per_mille: int) -> str:
+    return f"semantic {selectivity_label(per_mille)}"
+
+
+def _mask(snapshot: IndexSnapshot, node: Node) -> np.ndarray:
+    assert snapshot.columns is not None
+    return evaluate(node, snapshot.columns) & snapshot.live
+
+
+def _checked(text: str) -> Node:
+    return check_filter(parse_filter(text), SCHEMA)
+
+
+def _top(ranking: Ranking) -> TopK:
+    return TopK(ranking.rows, ranking.scores)
+
+
+def count_words(text: str) -> int:
+    """Whitespace words: the packer's token counter when no model tokenizer is loaded."""
+    return len(text.split())
+
+
+def pack_ranking(snapshot: IndexSnapshot, ranking: Ranking) -> PackedContext:
+    """Pack a fused ranking as the context route does, with texts and vectors from the index."""
+    vectors = snapshot.vectors.rows
+    candidates = [
+        PackCandidate(
+            chunk_id=snapshot.chunk_ids[row],
+            document_id=snapshot.document_ids[row],
+            title=snapshot.titles[row],
+            section=snapshot.sections[row],
+            text=snapshot.texts[row],
+            ordinal=int(snapshot.ordinals[row]),
+            char_start=int(snapshot.char_starts[row]),
+            char_end=int(snapshot.char_ends[row]),
+            score=float(score),
+            vector=vectors[row],
+        )
+        for row, score in zip(ranking.rows.tolist(), ranking.scores.tolist(), strict=True)
+    ]
+    return pack_context(
+        candidates,
+        token_budget=TOKEN_BUDGET,
+        count_tokens=count_words,
+        document_span=lambda document_id, start, end: None,
+    )
+
+
+def hybrid_query(
+    snapshot: IndexSnapshot,
+    tokens: list[str],
+    vector: np.ndarray,
+    *,
+    top_k: int,
+    depth: int,
+) -> RetrievalResult:
+    """The whole in-process hybrid query over every live row, as the search route runs it."""
+    return retrieve(
+        snapshot,
+        query_tokens=tokens,
+        query_vector=vector,
+        candidate_mask=snapshot.live.copy(),
+        mode="hybrid",
+        top_k=top_k,
+        depth=depth,
+        rrf_k=RRF_K,
+        k1=DEFAULT_K1,
+        b=DEFAULT_B,
+        bm25_variant="smoothed",
+    )
+
+
+def _memory(snapshot: IndexSnapshot, size: int, dimension: int, rss_delta: int) -> dict[str, Any]:
+    raw = size * dimension * 4
+    postings = snapshot.lexical.nbytes
+    return {
+        "rss_delta_bytes": rss_delta,
+        "raw_vector_bytes": raw,
+        "postings_bytes": postings,
+        "vector_matrix_bytes": snapshot.vectors.nbytes,
+        "ratio": rss_delta / (raw + postings),
+    }
+
+
+def run_size(
+    size: int,
+    *,
+    dimension: int,
+    queries: QuerySet,
+    seed: int,
+    top_k: int,
+    depth: int,
+    progress: Progress,
+) -> dict[str, Any]:
+    """Every figure for one collection size (see ``service.bench.report`` for their meaning)."""
+    load_before = os.getloadavg()[0]
+    started = time.perf_counter()
+    collection = make_collection(size, dimension, seed)
+    generated = time.perf_counter() - started
+    progress(f"{size:,} chunks: generated in {generated:.1f} s; building the index")
+
+    gc.collect()
+    before = resident_bytes()
+    started = time.perf_counter()
+    index = CollectionIndex.build(
+        collection.records, metric="cosine", dimension=dimension, schema=SCHEMA
+    )
+    build_seconds = time.perf_counter() - started
+    gc.collect()
+    snapshot = index.snapshot()
+    memory = _memory(snapshot, size, dimension, resident_bytes() - before)
+    progress(f"{size:,} chunks: index built in {build_seconds:.1f} s; timing stages")
+
+    stages: dict[str, Summary] = {}
+    references: dict[str, Summary] = {}
+    notes: dict[str, Any] = {}
+    count = len(queries)
+    tokens = queries.token_lists
+    vectors = list(queries.vectors)
+    live = snapshot.live.copy()
+
+    stages["filter parse+check"], _ = time_each(
+        range(count), lambda _: _checked(THREE_CLAUSE_FILTER)
+    )
+    three_clauses = _checked(THREE_CLAUSE_FILTER)
+    stages["filter mask"], masks = time_each(range(count), lambda _: _mask(snapshot, three_clauses))
+    notes["filter"] = {"text": THREE_CLAUSE_FILTER, "selected": int(masks[0].sum())}
+    by_type: dict[str, Any] = {}
+    for selectivity_filter in selectivity_filters(size, 100):
+        node = _checked(selectivity_filter.text)
+        summary, type_masks = time_each(range(count), partial(_mask_of, snapshot, node))
+        expected = selected_rows(size, selectivity_filter.per_mille)
+        _require_count(selectivity_filter.text, int(type_masks[0].sum()), expected)
+        by_type[selectivity_filter.attribute_type] = {
+            "filter": selectivity_filter.text,
+            "selectivity": selectivity_label(selectivity_filter.per_mille),
+            "selected": expected,
+            **summary.as_dict(),
+        }
+    notes["filter_mask_by_type"] = by_type
+
+    stages["lexical"], lexical = time_each(
+        tokens, lambda t: lexical_ranking(snapshot, t, live, top_k, variant="smoothed")
+    )
+    stages["lexical okapi"], lexical_okapi = time_each(
+        tokens, lambda t: lexical_ranking(snapshot, t, live, top_k, variant="okapi")
+    )
+    stages["lexical depth"], lexical_deep = time_each(
+        tokens, lambda t: lexical_ranking(snapshot, t, live, depth, variant="smoothed")
+    )
+    semantic_all: list[Ranking] = []
+    for per_mille in SELECTIVITIES_PER_MILLE:
+        node = _checked(f"position < {selected_rows(size, per_mille)}")
+        mask = _mask(snapshot, node)
+        _require_count("semantic mask", int(mask.sum()), selected_rows(size, per_mille))
+        stages[semantic_key(per_mille)], found = time_each(
+            vectors, partial(_semantic, snapshot, mask, top_k)
+        )
+        if per_mille == 1000:
+            semantic_all = found
+    stages["semantic depth"], semantic_deep = time_each(
+        vectors, lambda v: semantic_ranking(snapshot, v, live, depth)
+    )
+    pairs = list(zip(lexical_deep, semantic_deep, strict=True))
+    stages["fusion"], fused = time_each(pairs, lambda pair: fuse_rrf(list(pair), RRF_K, depth))
+    stages["packing"], packed = time_each(fused, lambda ranking: pack_ranking(snapshot, ranking))
+    notes["packing"] = {
+        "token_budget": TOKEN_BUDGET,
+        "token_counter": "whitespace words",
+        "median_passages": float(np.median([len(p.passages) for p in packed])),
+    }
+    stages["hybrid"], _ = time_each(
+        range(count),
+        lambda i: hybrid_query(snapshot, tokens[i], vectors[i], top_k=top_k, depth=depth),
+    )
+    progress(f"{size:,} chunks: stages timed; timing the references")
+
+    rankings: dict[str, Any] = {}
+    _time_full_scan(collection.vectors, vectors, semantic_all, top_k, references, rankings)
+    _time_bm25s(collection.token_lists, tokens, lexical, top_k, references, rankings, notes)
+    if size <= RANK_BM25_MAX_CHUNKS:
+        _time_rank_bm25(
+            collection.token_lists, tokens, lexical_okapi, top_k, references, rankings, notes
+        )
+    gc.collect()
+
+    return {
+        "chunks": size,
+        "dimensions": dimension,
+        "queries": count,
+        "top_k": top_k,
+        "depth": depth,
+        "load_average_1min": load_before,
+        "load_average_1min_after": os.getloadavg()[0],
+        "generate_seconds": generated,
+        "build_seconds": build_seconds,
+        "memory": memory,
+        "stages": {name: summary.as_dict() for name, summary in stages.items()},
+        "references": {name: summary.as_dict() for name, summary in references.items()},
+        "rankings": rankings,
+        "notes": notes,
+    }
+
+
+def _semantic(snapshot: IndexSnapshot, mask: np.ndarray, depth: int, vector: np.ndarray) -> Ranking:
+    return semantic_ranking(snapshot, vector, mask, depth)
+
+
+def _mask_of(snapshot: IndexSnapshot, node: Node, _: int) -> np.ndarray:
+    return _mask(snapshot, node)
+
+
+def _time_full_scan(
+    matrix: np.ndarray,
+    vectors: list[np.ndarray],
+    ours: list[Ranking],
+    top_k: int,
+    references: dict[str, Summary],
+    rankings: dict[str, Any],
+) -> None:
+    scan = NumpyFullScan(matrix)
+    references["numpy full scan"], scanned = time_each(vectors, lambda v: scan.search(v, top_k))
+    rankings["semantic vs numpy full scan"] = agreement(
+        [_top(r) for r in ours],
+        scanned,
+        [scan.scores(v) for v in vectors],
+        scale=1.0,
+        positive_only=False,
+    ).as_dict()
+
+
+def _time_bm25s(
+    token_lists: list[list[str]],
+    queries: list[list[str]],
+    ours: list[Ranking],
+    top_k: int,
+    references: dict[str, Summary],
+    rankings: dict[str, Any],
+    notes: dict[str, Any],
+) -> None:
+    started = time.perf_counter()
+    model = Bm25sLucene(token_lists, k1=DEFAULT_K1, b=DEFAULT_B)
+    notes["bm25s_build_seconds"] = time.perf_counter() - started
+    references["bm25s"], found = time_each(queries, lambda t: model.search(t, top_k))
+    rankings["lexical smoothed vs bm25s"] = agreement(
+        [_top(r) for r in ours],
+        found,
+        [model.scores(t) for t in queries],
+        scale=1.0 / (DEFAULT_K1 + 1.0),
+        positive_only=True,
+    ).as_dict()
+
+
+def _time_rank_bm25(
+    token_lists: list[list[str]],
+    queries: list[list[str]],
+    ours: list[Ranking],
+    top_k: int,
+    references: dict[str, Summary],
+    rankings: dict[str, Any],
+    notes: dict[str, Any],
+) -> None:
+    started = time.perf_counter()
+    model = RankBm25Okapi(token_lists, k1=DEFAULT_K1, b=DEFAULT_B)
+    notes["rank_bm25_build_seconds"] = time.perf_counter() - started
+    references["rank_bm25"], found = time_each(queries, lambda t: model.search(t, top_k))
+    rankings["lexical okapi vs rank_bm25"] = agreement(
+        [_top(r) for r in ours],
+        found,
+        [model.scores(t) for t in queries],
+        scale=1.0,
+        positive_only=True,
+    ).as_dict()
+
+
+def _require_count(what: str, found: int, expected: int) -> None:
+    if found != expected:
+        raise RuntimeError(f"{what}: selected {found} rows, the data was made for {expected}")

@@ -1,0 +1,174 @@
+"""Plain-text tables of a bench run, printed from the same figures ``--json`` writes."""
+
+from __future__ import annotations
+
+import os
+import platform
+import sys
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+Write = Callable[[str], None]
+
+_STAGE_LABELS = {
+    "filter parse+check": "filter parse + check (3 clauses)",
+    "filter mask": "filter mask (3 clauses)",
+    "lexical": "lexical, smoothed idf, top k",
+    "lexical okapi": "lexical, okapi idf, top k",
+    "lexical depth": "lexical, smoothed idf, at depth",
+    "semantic depth": "semantic 100%, at depth",
+    "fusion": "fusion (RRF of both at depth)",
+    "packing": "packing (fused ranking)",
+    "hybrid": "hybrid query, whole, in process",
+}
+
+
+def machine() -> dict[str, Any]:
+    """What the figures were measured on."""
+    cpu = ""
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8") as info:
+            cpu = next(
+                (line.split(":", 1)[1].strip() for line in info if line.startswith("model name")),
+                "",
+            )
+    except OSError:
+        cpu = platform.processor()
+    memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    from threadpoolctl import threadpool_info
+
+    pools = [
+        {
+            "api": p.get("internal_api"),
+            "threads": p.get("num_threads"),
+            "architecture": p.get("architecture"),
+        }
+        for p in threadpool_info()
+    ]
+    return {
+        "cpu": cpu,
+        "cores": os.cpu_count(),
+        "memory_bytes": memory,
+        "python": sys.version.split()[0],
+        "numpy": np.__version__,
+        "blas_pools": pools,
+        "openblas_coretype": os.environ.get("OPENBLAS_CORETYPE"),
+        "load_average_1min": os.getloadavg()[0],
+    }
+
+
+def print_machine(info: dict[str, Any], write: Write) -> None:
+    pools = ", ".join(
+        f"{p['api']} {p['threads']} threads ({p['architecture']})" for p in info["blas_pools"]
+    )
+    write(
+        f"machine: {info['cpu']}, {info['cores']} cores, "
+        f"{info['memory_bytes'] / 2**30:.1f} GiB; Python {info['python']}, numpy {info['numpy']}; "
+        f"BLAS: {pools or 'none found'}; load average {info['load_average_1min']:.2f}"
+        + (f"; OPENBLAS_CORETYPE={info['openblas_coretype']}" if info["openblas_coretype"] else "")
+    )
+
+
+def _row(label: str, summary: dict[str, Any]) -> str:
+    return (
+        f"  {label:<40} {summary['median_ms']:>10.3f} {summary['p95_ms']:>10.3f} "
+        f"{summary['p99_ms']:>10.3f}"
+    )
+
+
+def _verdict(target: dict[str, Any]) -> str:
+    met = target["met"]
+    mark = "[met]    " if met else "[NOT MET]" if met is False else "[no limit]"
+    return f"  {mark} {target['target']}: {target['figure']}  (stated for {target['stated_for']})"
+
+
+def print_size(figures: dict[str, Any], write: Write) -> None:
+    size = figures["chunks"]
+    write("")
+    write(
+        f"== {size:,} chunks, {figures['dimensions']} dimensions, {figures['queries']} queries, "
+        f"top k {figures['top_k']}, depth {figures['depth']} "
+        f"(generated in {figures['generate_seconds']:.1f} s, "
+        f"index built in {figures['build_seconds']:.1f} s; load average "
+        f"{figures['load_average_1min']:.2f} before, "
+        f"{figures['load_average_1min_after']:.2f} after) =="
+    )
+    header = f"  {'stage':<40} {'median ms':>10} {'p95 ms':>10} {'p99 ms':>10}"
+    write(header)
+    for name, summary in figures["stages"].items():
+        write(_row(_STAGE_LABELS.get(name, f"{name}, top k"), summary))
+    write(f"  {'reference':<40}")
+    for name, summary in figures["references"].items():
+        write(_row(name, summary))
+    write("  filter mask by attribute type:")
+    for type_name, entry in figures["notes"]["filter_mask_by_type"].items():
+        write(_row(f"  {type_name} ({entry['selectivity']})", entry) + f"  {entry['filter']}")
+    write(
+        f"  three-clause filter: {figures['notes']['filter']['text']} "
+        f"({figures['notes']['filter']['selected']:,} rows)"
+    )
+    write("  ratios (our median / reference median):")
+    for entry in figures["ratios"]:
+        write(
+            f"    {entry['name']:<44} {entry['value']:>8.3f}  "
+            f"({entry['numerator_ms']:.3f} ms / {entry['denominator_ms']:.3f} ms)"
+        )
+    write("  rankings (top k on the same tokens and vectors):")
+    for name, result in figures["rankings"].items():
+        write(
+            f"    {name:<44} {result['equal_up_to_ties']}/{result['queries']} equal up to ties, "
+            f"{result['identical']} in identical order"
+        )
+    memory = figures["memory"]
+    write(
+        "  memory: index resident growth while building "
+        f"{memory['rss_delta_bytes'] / 2**20:.1f} MiB; raw float32 vectors "
+        f"{memory['raw_vector_bytes'] / 2**20:.1f} MiB; postings arrays "
+        f"{memory['postings_bytes'] / 2**20:.1f} MiB; vector matrix held "
+        f"{memory['vector_matrix_bytes'] / 2**20:.1f} MiB"
+    )
+    write("  targets:")
+    for target in figures["targets"]:
+        write(_verdict(target))
+
+
+def print_model(model: dict[str, Any], write: Write) -> None:
+    write("")
+    write(f"== with the real model ({model['embedder']}) ==")
+    write(f"  {'stage':<40} {'median ms':>10} {'p95 ms':>10} {'p99 ms':>10}")
+    write(_row("query embedding", model["query_embedding"]))
+    ingest = model["ingest"]
+    write(
+        f"  ingestion: {ingest['documents']} documents, {ingest['chunks']} chunks in "
+        f"{ingest['seconds']:.2f} s = {ingest['chunks_per_second']:.1f} chunks/s; raw encode of "
+        f"the same texts {ingest['raw_seconds']:.2f} s = {ingest['raw_chunks_per_second']:.1f} "
+        f"chunks/s; pipeline overhead {ingest['pipeline_overhead'] * 100:.1f}%"
+    )
+    for target in model["targets"]:
+        write(_verdict(target))
+
+
+def print_http(http: dict[str, Any], write: Write) -> None:
+    write("")
+    write(
+        f"== over HTTP: {http['chunks']:,} chunks, hybrid search with query_vector, "
+        f"{http['seconds_per_level']:g} s per level =="
+    )
+    write(
+        f"  {'clients':>7} {'requests':>9} {'req/s':>9} {'p50 ms':>9} {'p95 ms':>9} "
+        f"{'p99 ms':>9} {'errors':>7}"
+    )
+    for level in http["levels"]:
+        write(
+            f"  {level['clients']:>7} {level['requests']:>9} {level['requests_per_second']:>9.1f} "
+            f"{level['p50_ms']:>9.2f} {level['p95_ms']:>9.2f} {level['p99_ms']:>9.2f} "
+            f"{level['errors']:>7}"
+        )
+    in_process = http["in_process_hybrid"]
+    write(f"  in-process hybrid on the same data: median {in_process['median_ms']:.3f} ms")
+    for error in http.get("error_samples", []):
+        write(f"  error: {error}")
+    for target in http["targets"]:
+        write(_verdict(target))

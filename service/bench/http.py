@@ -26,6 +26,7 @@ import httpx
 import numpy as np
 from sqlalchemy import insert
 from sqlalchemy.orm import Session
+from threadpoolctl import threadpool_limits
 
 from service.bench.inprocess import hybrid_query
 from service.bench.synthetic import (
@@ -36,6 +37,7 @@ from service.bench.synthetic import (
     make_collection,
 )
 from service.bench.timing import Summary, time_each
+from service.config import Settings
 from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord, CollectionIndex
 from service.store import repository
@@ -52,6 +54,7 @@ FIRST_QUERY_TIMEOUT_SECONDS = 600.0
 REQUEST_TIMEOUT_SECONDS = 60.0
 STOP_TIMEOUT_SECONDS = 15.0
 ERROR_SAMPLES = 5
+SERVER_BLAS_THREADS = Settings().blas_threads or None
 _INSERT_BATCH = 5_000
 
 Progress = Callable[[str], None]
@@ -204,6 +207,7 @@ class Server:
                 "EXCERPTA_HOST": "127.0.0.1",
                 "EXCERPTA_PORT": str(self.port),
                 "EXCERPTA_AUTH": "required",
+                "EXCERPTA_BLAS_THREADS": str(SERVER_BLAS_THREADS),
                 "EXCERPTA_RATE_LIMIT_PER_SECOND": "0",
             }
         )
@@ -335,7 +339,9 @@ def run_http(
     if dimension != EMBEDDER_DIMENSIONS:
         raise ValueError(f"--http needs --dims {EMBEDDER_DIMENSIONS}, the server model's size")
     collection = make_collection(chunks, dimension, seed)
-    in_process = in_process_hybrid(collection, queries, top_k=top_k, depth=depth)
+    # The reference runs with the BLAS threads the server gives each query, so the two agree.
+    with threadpool_limits(limits=SERVER_BLAS_THREADS):
+        in_process = in_process_hybrid(collection, queries, top_k=top_k, depth=depth)
 
     with tempfile.TemporaryDirectory(prefix="excerpta-bench-") as scratch:
         data_dir = Path(scratch)

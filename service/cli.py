@@ -137,7 +137,8 @@ def ingest_path(
                 bad = {problem["index"] for problem in exc.extra["documents"]}
                 for problem in exc.extra["documents"]:
                     origin = pending[problem["index"]][0]
-                    emit(f"{origin}: {problem['message']}")
+                    named = f"document {problem['id']!r}: " if problem["id"] else ""
+                    emit(f"{origin}: {named}{problem['message']}")
                 failures += len(bad)
                 bar.update(len(bad))
                 pending = [item for i, item in enumerate(pending) if i not in bad]

@@ -81,7 +81,10 @@ def normalize_value(name: str, type_: AttributeType, value: Any) -> AttributeVal
     if type_ is AttributeType.NUMBER:
         if isinstance(value, bool) or not isinstance(value, int | float):
             raise AttributeValueError(f"attribute {name!r} must be a number")
-        number = float(value)
+        try:
+            number = float(value)
+        except OverflowError:
+            number = math.inf
         if not math.isfinite(number):
             raise AttributeValueError(f"attribute {name!r} must be a finite number")
         return number
@@ -142,7 +145,10 @@ def parse_datetime(name: str, value: Any) -> dt.datetime:
         parsed = dt.datetime.fromisoformat(value.replace("Z", "+00:00"))
     except ValueError:
         raise AttributeValueError(f"attribute {name!r} is not a valid datetime") from None
-    return parsed.astimezone(dt.UTC)
+    try:
+        return parsed.astimezone(dt.UTC)
+    except OverflowError:
+        raise AttributeValueError(f"attribute {name!r} is out of range in UTC") from None
 
 
 def to_json_value(value: AttributeValue) -> Any:

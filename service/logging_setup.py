@@ -28,12 +28,21 @@ def redact(text: str) -> str:
 
 
 class RedactingFilter(logging.Filter):
+    _traceback_formatter = logging.Formatter()
+
     def filter(self, record: logging.LogRecord) -> bool:
         message = record.getMessage()
         cleaned = redact(message)
         if cleaned != message:
             record.msg = cleaned
             record.args = None
+        # An exception's message can quote a header too; handlers reuse a set exc_text as is.
+        if record.exc_info and not record.exc_text:
+            record.exc_text = self._traceback_formatter.formatException(record.exc_info)
+        if record.exc_text:
+            record.exc_text = redact(record.exc_text)
+        if record.stack_info:
+            record.stack_info = redact(record.stack_info)
         return True
 
 

@@ -52,6 +52,9 @@ def _validation_error(exc: RequestValidationError) -> errors.ServiceError:
     for problem in problems:
         if problem.get("type") == "json_invalid":
             return errors.MalformedJson("The request body is not valid JSON.")
+        # An empty body reaches validation as a missing one; it is not JSON either.
+        if problem.get("type") == "missing" and tuple(problem.get("loc", ())) == ("body",):
+            return errors.MalformedJson("The request body is empty; it must be a JSON object.")
     first = problems[0] if problems else {"loc": ("body",), "msg": "invalid request"}
     field = _field_path(tuple(first.get("loc", ("body",))))
     message = str(first.get("msg", "invalid value")).rstrip(".")

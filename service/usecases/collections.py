@@ -229,7 +229,8 @@ def collection_view(
         "created_at": row.created_at,
         "updated_at": row.updated_at,
     }
-    if pending is not None:
+    # Progress counts every document, hidden ones included, so only an admin sees it.
+    if pending is not None and caller.visible_groups is None:
         view["rebuild"] = {"done": row.rebuild_done or 0, "total": row.rebuild_total or 0}
     return view
 

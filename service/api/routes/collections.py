@@ -6,10 +6,16 @@ from fastapi import APIRouter, Response
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
+from service.api.routing import StrictJsonRoute
 from service.api.schemas import CollectionIn, CollectionListOut, CollectionOut
 from service.usecases import collections as usecase
 
-router = APIRouter(prefix="/v1/collections", tags=["collections"], responses=ERROR_RESPONSES)
+router = APIRouter(
+    prefix="/v1/collections",
+    tags=["collections"],
+    responses=ERROR_RESPONSES,
+    route_class=StrictJsonRoute,
+)
 
 
 @router.put("/{name}", response_model=CollectionOut, responses={201: {"model": CollectionOut}})

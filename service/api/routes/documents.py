@@ -9,6 +9,7 @@ from fastapi import APIRouter, Query, Response
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
+from service.api.routing import StrictJsonRoute
 from service.api.schemas import (
     DeletedOut,
     DocumentBatchIn,
@@ -20,7 +21,10 @@ from service.errors import InvalidRequest
 from service.usecases import documents as usecase
 
 router = APIRouter(
-    prefix="/v1/collections/{name}/documents", tags=["documents"], responses=ERROR_RESPONSES
+    prefix="/v1/collections/{name}/documents",
+    tags=["documents"],
+    responses=ERROR_RESPONSES,
+    route_class=StrictJsonRoute,
 )
 
 

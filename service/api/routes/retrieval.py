@@ -6,6 +6,7 @@ from fastapi import APIRouter
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
+from service.api.routing import StrictJsonRoute
 from service.api.schemas import (
     AnswerIn,
     AnswerOut,
@@ -18,7 +19,12 @@ from service.api.schemas import (
 from service.usecases import answering
 from service.usecases.search import SearchOptions, TimeWindow
 
-router = APIRouter(prefix="/v1/collections/{name}", tags=["retrieval"], responses=ERROR_RESPONSES)
+router = APIRouter(
+    prefix="/v1/collections/{name}",
+    tags=["retrieval"],
+    responses=ERROR_RESPONSES,
+    route_class=StrictJsonRoute,
+)
 
 
 def _options(body: SearchIn) -> SearchOptions:

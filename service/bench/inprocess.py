@@ -232,10 +232,29 @@ def run_size(
 
     rankings: dict[str, Any] = {}
     _time_full_scan(collection.vectors, vectors, semantic_all, top_k, references, rankings)
-    _time_bm25s(collection.token_lists, tokens, lexical, top_k, references, rankings, notes)
+    measured = (references, rankings, notes)
+    token_lists = collection.token_lists
+    _time_lexical_reference(
+        "bm25s",
+        lambda: Bm25sLucene(token_lists, k1=DEFAULT_K1, b=DEFAULT_B),
+        tokens,
+        lexical,
+        top_k,
+        measured,
+        comparison="lexical smoothed vs bm25s",
+        # bm25s leaves the constant (k1 + 1) factor out of its term weight.
+        scale=1.0 / (DEFAULT_K1 + 1.0),
+    )
     if size <= RANK_BM25_MAX_CHUNKS:
-        _time_rank_bm25(
-            collection.token_lists, tokens, lexical_okapi, top_k, references, rankings, notes
+        _time_lexical_reference(
+            "rank_bm25",
+            lambda: RankBm25Okapi(token_lists, k1=DEFAULT_K1, b=DEFAULT_B),
+            tokens,
+            lexical_okapi,
+            top_k,
+            measured,
+            comparison="lexical okapi vs rank_bm25",
+            scale=1.0,
         )
     gc.collect()
 
@@ -284,46 +303,28 @@ def _time_full_scan(
     ).as_dict()
 
 
-def _time_bm25s(
-    token_lists: list[list[str]],
+def _time_lexical_reference(
+    reference: str,
+    build: Callable[[], Any],
     queries: list[list[str]],
     ours: list[Ranking],
     top_k: int,
-    references: dict[str, Summary],
-    rankings: dict[str, Any],
-    notes: dict[str, Any],
+    measured: tuple[dict[str, Summary], dict[str, Any], dict[str, Any]],
+    *,
+    comparison: str,
+    scale: float,
 ) -> None:
+    """Build a BM25 library's index, time its top-k search and compare its rankings with ours."""
+    references, rankings, notes = measured
     started = time.perf_counter()
-    model = Bm25sLucene(token_lists, k1=DEFAULT_K1, b=DEFAULT_B)
-    notes["bm25s_build_seconds"] = time.perf_counter() - started
-    references["bm25s"], found = time_each(queries, lambda t: model.search(t, top_k))
-    rankings["lexical smoothed vs bm25s"] = agreement(
+    model = build()
+    notes[f"{reference}_build_seconds"] = time.perf_counter() - started
+    references[reference], found = time_each(queries, lambda t: model.search(t, top_k))
+    rankings[comparison] = agreement(
         [_top(r) for r in ours],
         found,
         [model.scores(t) for t in queries],
-        scale=1.0 / (DEFAULT_K1 + 1.0),
-        positive_only=True,
-    ).as_dict()
-
-
-def _time_rank_bm25(
-    token_lists: list[list[str]],
-    queries: list[list[str]],
-    ours: list[Ranking],
-    top_k: int,
-    references: dict[str, Summary],
-    rankings: dict[str, Any],
-    notes: dict[str, Any],
-) -> None:
-    started = time.perf_counter()
-    model = RankBm25Okapi(token_lists, k1=DEFAULT_K1, b=DEFAULT_B)
-    notes["rank_bm25_build_seconds"] = time.perf_counter() - started
-    references["rank_bm25"], found = time_each(queries, lambda t: model.search(t, top_k))
-    rankings["lexical okapi vs rank_bm25"] = agreement(
-        [_top(r) for r in ours],
-        found,
-        [model.scores(t) for t in queries],
-        scale=1.0,
+        scale=scale,
         positive_only=True,
     ).as_dict()
 

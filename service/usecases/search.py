@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import datetime as dt
-import math
 import time
 from dataclasses import dataclass
 from typing import Any
@@ -85,7 +84,11 @@ def check_options(options: SearchOptions, limits: Settings, dimensions: int) -> 
                 f"query_vector must hold {dimensions} numbers for this embedder.",
                 field="query_vector",
             )
-        if not all(isinstance(v, int | float) and math.isfinite(v) for v in options.query_vector):
+        try:
+            values = np.asarray(options.query_vector, dtype=np.float64)
+        except (TypeError, ValueError):
+            raise InvalidRequest("query_vector must hold numbers.", field="query_vector") from None
+        if values.ndim != 1 or not np.isfinite(values).all():
             raise InvalidRequest("query_vector must hold finite numbers.", field="query_vector")
 
 

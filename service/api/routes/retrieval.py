@@ -1,8 +1,14 @@
-"""Search, context and answer: parse the body, call one use case, return its result."""
+"""Search, context and answer: parse the body, call one use case, return its result.
+
+These are the hot routes, and their use cases already build JSON-ready bodies in the declared
+shapes (the schema tests hold them to ``SearchOut``, ``ContextOut`` and ``AnswerOut``), so they
+are sent as they are instead of being validated and re-serialised a second time.
+"""
 
 from __future__ import annotations
 
 from fastapi import APIRouter
+from fastapi.responses import JSONResponse
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
@@ -46,15 +52,15 @@ def _options(body: SearchIn) -> SearchOptions:
 
 
 @router.post("/search", response_model=SearchOut)
-def search(name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep) -> dict[str, object]:
-    return answering.search(runtime, caller, name, _options(body))
+def search(name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep) -> JSONResponse:
+    return JSONResponse(answering.search(runtime, caller, name, _options(body)))
 
 
 @router.post("/context", response_model=ContextOut)
-def context(
-    name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep
-) -> dict[str, object]:
-    return answering.build_context(runtime, caller, name, _options(body), body.token_budget)
+def context(name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep) -> JSONResponse:
+    return JSONResponse(
+        answering.build_context(runtime, caller, name, _options(body), body.token_budget)
+    )
 
 
 @router.post(
@@ -62,7 +68,7 @@ def context(
     response_model=AnswerOut,
     responses={502: {"model": ErrorOut, "description": "The generator failed"}},
 )
-def answer(name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep) -> dict[str, object]:
-    return answering.answer(
-        runtime, caller, name, _options(body), body.token_budget, body.generator
+def answer(name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep) -> JSONResponse:
+    return JSONResponse(
+        answering.answer(runtime, caller, name, _options(body), body.token_budget, body.generator)
     )

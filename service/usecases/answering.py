@@ -205,14 +205,22 @@ def _pack(
         )
     collection_name = retrieval.facts.name
 
+    texts: dict[str, str | None] = {}
+
     def document_span(document_id: str, start: int, end: int) -> str | None:
-        with runtime.transaction() as session:
-            row = repository.collection_by_name(session, collection_name)
-            if row is None:
-                return None
-            found = repository.documents_by_external_id(session, row.id, [document_id])
-            document = found.get(document_id)
-            return None if document is None else document.text[start:end]
+        """The document's text over a merged span, read once per document and request."""
+        if document_id not in texts:
+            with runtime.transaction() as session:
+                row = repository.collection_by_name(session, collection_name)
+                found = (
+                    {}
+                    if row is None
+                    else repository.documents_by_external_id(session, row.id, [document_id])
+                )
+                document = found.get(document_id)
+                texts[document_id] = None if document is None else document.text
+        text = texts[document_id]
+        return None if text is None else text[start:end]
 
     packed = pack_context(
         candidates,

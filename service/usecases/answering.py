@@ -73,13 +73,8 @@ def _retrieve(
     started = time.perf_counter()
     candidate_filter = build_candidate_filter(options, schema)
     view = runtime.indexes.view(collection, collection_id)
-    mask = view.candidate_mask(candidate_filter.node, caller.visible_groups)
     # A trace counts only the rows its caller may see, like every other count.
-    visible_rows = (
-        view.live_rows
-        if caller.visible_groups is None
-        else int(np.count_nonzero(view.candidate_mask(None, caller.visible_groups)))
-    )
+    mask, visible_rows = view.candidates(candidate_filter.node, caller.visible_groups)
     recorder.stage(
         "filter",
         timed(started),

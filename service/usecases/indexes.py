@@ -78,18 +78,24 @@ class IndexView:
     def live_rows(self) -> int:
         return int(self.snapshot.live_rows)
 
-    def candidate_mask(self, node: Node | None, groups: frozenset[str] | None) -> np.ndarray:
+    def candidates(
+        self, node: Node | None, groups: frozenset[str] | None
+    ) -> tuple[np.ndarray, int]:
+        """The candidate mask (live AND access AND filter) and how many rows the caller sees."""
         mask = self.snapshot.live.copy()
+        if groups is None:
+            visible = self.live_rows
+        else:
+            mask &= access_mask(self.snapshot, groups)
+            visible = int(np.count_nonzero(mask))
         if node is not None:
             columns = self.snapshot.columns
             if columns is None:
                 # A checked filter names attributes, so this collection has some; an index
                 # without columns can only mean no row has been indexed yet.
-                return np.zeros_like(mask)
+                return np.zeros_like(mask), visible
             mask &= evaluate(node, columns)
-        if groups is not None:
-            mask &= access_mask(self.snapshot, groups)
-        return mask
+        return mask, visible
 
     def row(self, row: int) -> IndexedChunk:
         return self.snapshot.record(row)

@@ -64,14 +64,19 @@ def cmd_serve(args: argparse.Namespace) -> int:
     return 0
 
 
-def cmd_migrate(args: argparse.Namespace) -> int:
+def _migrated_engine(args: argparse.Namespace) -> Any:
+    """The store's engine with its schema brought up to date; no model is loaded."""
     from service.store.db import make_engine, migrate
 
     settings = _settings(args)
     settings.data_dir.mkdir(parents=True, exist_ok=True)
     engine = make_engine(settings.resolved_database_url())
     migrate(engine)
-    engine.dispose()
+    return engine
+
+
+def cmd_migrate(args: argparse.Namespace) -> int:
+    _migrated_engine(args).dispose()
     print("migrated to the newest schema")
     return 0
 
@@ -190,16 +195,6 @@ def _split(value: str | None) -> list[str] | None:
     return [part.strip() for part in value.split(",") if part.strip()]
 
 
-def _key_session(args: argparse.Namespace) -> Any:
-    from service.store.db import make_engine, migrate, session_factory
-
-    settings = _settings(args)
-    settings.data_dir.mkdir(parents=True, exist_ok=True)
-    engine = make_engine(settings.resolved_database_url())
-    migrate(engine)
-    return engine, session_factory(engine)
-
-
 def _print_keys(rows: Sequence[Any], *, as_json: bool) -> None:
     if as_json:
         _print_json([vars(r) for r in rows])
@@ -224,10 +219,11 @@ def _print_keys(rows: Sequence[Any], *, as_json: bool) -> None:
 
 
 def cmd_keys(args: argparse.Namespace) -> int:
-    from service.store.db import unit_of_work
+    from service.store.db import session_factory, unit_of_work
     from service.usecases import keys
 
-    engine, factory = _key_session(args)
+    engine = _migrated_engine(args)
+    factory = session_factory(engine)
     try:
         with unit_of_work(factory) as session:
             if args.keys_command == "create":

@@ -116,14 +116,26 @@ def visible_condition(groups: frozenset[str] | None) -> ColumnElement[bool] | No
     return or_(~has_groups, shares_group)
 
 
-def count_documents(
-    session: Session, collection_id: int, groups: frozenset[str] | None
-) -> tuple[int, int]:
-    """Documents and live chunks of the current generation the caller can see."""
+def _document_conditions(
+    collection_id: int,
+    groups: frozenset[str] | None,
+    condition: ColumnElement[bool] | None = None,
+) -> list[ColumnElement[bool]]:
+    """The documents of a collection that the caller sees and, if given, the filter matches."""
     conditions: list[ColumnElement[bool]] = [DocumentRow.collection_id == collection_id]
     visible = visible_condition(groups)
     if visible is not None:
         conditions.append(visible)
+    if condition is not None:
+        conditions.append(condition)
+    return conditions
+
+
+def count_documents(
+    session: Session, collection_id: int, groups: frozenset[str] | None
+) -> tuple[int, int]:
+    """Documents and live chunks of the current generation the caller can see."""
+    conditions = _document_conditions(collection_id, groups)
     documents = session.scalar(select(func.count(DocumentRow.id)).where(*conditions)) or 0
     generation = select(CollectionRow.chunk_generation).where(CollectionRow.id == collection_id)
     chunks = (
@@ -137,6 +149,17 @@ def count_documents(
     return documents, chunks
 
 
+def count_matching_documents(
+    session: Session,
+    collection_id: int,
+    *,
+    groups: frozenset[str] | None,
+    condition: ColumnElement[bool] | None,
+) -> int:
+    conditions = _document_conditions(collection_id, groups, condition)
+    return session.scalar(select(func.count(DocumentRow.id)).where(*conditions)) or 0
+
+
 def list_documents(
     session: Session,
     collection_id: int,
@@ -146,12 +169,7 @@ def list_documents(
     after: str | None,
     limit: int,
 ) -> list[DocumentRow]:
-    conditions: list[ColumnElement[bool]] = [DocumentRow.collection_id == collection_id]
-    visible = visible_condition(groups)
-    if visible is not None:
-        conditions.append(visible)
-    if condition is not None:
-        conditions.append(condition)
+    conditions = _document_conditions(collection_id, groups, condition)
     if after is not None:
         conditions.append(DocumentRow.external_id > after)
     query = select(DocumentRow).where(*conditions).order_by(DocumentRow.external_id).limit(limit)
@@ -165,12 +183,7 @@ def matching_document_ids(
     groups: frozenset[str] | None,
     condition: ColumnElement[bool] | None,
 ) -> list[tuple[int, str]]:
-    conditions: list[ColumnElement[bool]] = [DocumentRow.collection_id == collection_id]
-    visible = visible_condition(groups)
-    if visible is not None:
-        conditions.append(visible)
-    if condition is not None:
-        conditions.append(condition)
+    conditions = _document_conditions(collection_id, groups, condition)
     rows = session.execute(select(DocumentRow.id, DocumentRow.external_id).where(*conditions))
     return [(row[0], row[1]) for row in rows]
 
@@ -208,6 +221,20 @@ def replace_chunks(
         )
     )
     session.add_all(ChunkRow(document_id=document_pk, generation=generation, **c) for c in chunks)
+
+
+def chunk_counts(session: Session, document_pks: Sequence[int], generation: int) -> dict[int, int]:
+    """Chunks of each document in one generation, in one query per 500 documents."""
+    counts: dict[int, int] = {}
+    for start in range(0, len(document_pks), 500):
+        part = list(document_pks[start : start + 500])
+        rows = session.execute(
+            select(ChunkRow.document_id, func.count(ChunkRow.id))
+            .where(ChunkRow.document_id.in_(part), ChunkRow.generation == generation)
+            .group_by(ChunkRow.document_id)
+        )
+        counts.update((document_pk, count) for document_pk, count in rows)
+    return counts
 
 
 def chunks_of(session: Session, document_pk: int, generation: int) -> list[ChunkRow]:

@@ -136,33 +136,23 @@ def _hit(view: IndexView, hit: Any) -> dict[str, Any]:
 
 
 def search(
-    runtime: Runtime, caller: Caller, collection: str, options: SearchOptions
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    options: SearchOptions,
+    *,
+    keep_trace: bool = True,
 ) -> dict[str, Any]:
+    """The search route's body; evaluation passes ``keep_trace=False`` for its many queries."""
     retrieval = _retrieve(runtime, caller, collection, options, "search")
     hits = [_hit(retrieval.view, hit) for hit in retrieval.result.hits]
+    candidates = retrieval.result.candidates
+    if not keep_trace:
+        return {"hits": hits, "candidates": candidates, "trace_id": ""}
     retrieval.recorder.save(
-        runtime, caller, hits=[h["chunk_id"] for h in hits], candidates=retrieval.result.candidates
+        runtime, caller, hits=[h["chunk_id"] for h in hits], candidates=candidates
     )
-    return {
-        "hits": hits,
-        "candidates": retrieval.result.candidates,
-        "trace_id": retrieval.recorder.trace_id,
-    }
-
-
-def search_without_trace(
-    runtime: Runtime, caller: Caller, collection: str, options: SearchOptions
-) -> dict[str, Any]:
-    """The search body without storing a trace: evaluation runs thousands of queries."""
-    retrieval = _retrieve(runtime, caller, collection, options, "search")
-    hits = [_hit(retrieval.view, hit) for hit in retrieval.result.hits]
-    return {"hits": hits, "candidates": retrieval.result.candidates, "trace_id": ""}
-
-
-def collection_settings(runtime: Runtime, caller: Caller, collection: str) -> dict[str, Any]:
-    from service.usecases.collections import get_collection
-
-    return get_collection(runtime, caller, collection)
+    return {"hits": hits, "candidates": candidates, "trace_id": retrieval.recorder.trace_id}
 
 
 def _check_budget(runtime: Runtime, token_budget: int) -> None:

@@ -36,6 +36,7 @@ from service.store.attribute_rows import attribute_value_rows
 from service.store.filter_sql import compile_filter
 from service.store.tables import CollectionRow, DocumentRow
 from service.usecases.callers import Caller, Role
+from service.usecases.chunk_ids import chunk_id
 from service.usecases.collections import attribute_schema, load_collection
 from service.usecases.runtime import Runtime
 
@@ -328,13 +329,18 @@ def upsert_documents(
             session, row.id, [d.external_id for d in changed]
         )
         now = repository.utcnow()
+        unchanged_chunks = repository.chunk_counts(
+            session,
+            [existing[d.external_id].id for d in prepared if d.external_id not in built],
+            row.chunk_generation,
+        )
         for doc in prepared:
             if doc.external_id not in built:
                 results.append(
                     {
                         "id": doc.external_id,
                         "status": "unchanged",
-                        "chunks": _chunk_count(session, existing[doc.external_id], row),
+                        "chunks": unchanged_chunks.get(existing[doc.external_id].id, 0),
                     }
                 )
                 continue
@@ -405,10 +411,6 @@ def _problem(raw_id: Any, index: int, reason: str, message: str) -> dict[str, An
     }
 
 
-def _chunk_count(session: Session, document: DocumentRow, collection: CollectionRow) -> int:
-    return len(repository.chunks_of(session, document.id, collection.chunk_generation))
-
-
 def _fill_document(row: DocumentRow, material: MaterialisedDocument, now: Any) -> None:
     doc = material.prepared
     row.title = doc.title
@@ -436,10 +438,6 @@ def chunk_rows(material: MaterialisedDocument) -> list[dict[str, Any]]:
         }
         for c in material.chunks
     ]
-
-
-def chunk_id(document_id: str, ordinal: int) -> str:
-    return f"{document_id}#{ordinal:04d}"
 
 
 def document_view(session: Session, row: DocumentRow, collection: CollectionRow) -> dict[str, Any]:
@@ -529,10 +527,8 @@ def list_documents(
             after=after,
             limit=limit + 1,
         )
-        total = len(
-            repository.matching_document_ids(
-                session, row.id, groups=caller.visible_groups, condition=condition
-            )
+        total = repository.count_matching_documents(
+            session, row.id, groups=caller.visible_groups, condition=condition
         )
     page = rows[:limit]
     return {

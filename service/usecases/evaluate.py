@@ -19,7 +19,7 @@ from service.store import repository
 from service.store.filter_sql import compile_filter
 from service.usecases import answering
 from service.usecases.callers import LOCAL_ADMIN
-from service.usecases.collections import attribute_schema, load_collection
+from service.usecases.collections import attribute_schema, get_collection, load_collection
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions
 
@@ -79,8 +79,8 @@ class StoreBackend:
                 k1=_optional_float(settings.get("k1")),
                 b=_optional_float(settings.get("b")),
             )
-            return answering.search_without_trace(
-                self.runtime, LOCAL_ADMIN, self.collection, options
+            return answering.search(
+                self.runtime, LOCAL_ADMIN, self.collection, options, keep_trace=False
             )
 
         return _DocumentRanking(run, MAX_CHUNKS).rank(depth)
@@ -102,7 +102,7 @@ class StoreBackend:
         return {doc for doc in doc_ids if doc not in passing}
 
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
-        view = answering.collection_settings(self.runtime, LOCAL_ADMIN, self.collection)
+        view = get_collection(self.runtime, LOCAL_ADMIN, self.collection)
         return _describe(view, settings)
 
 

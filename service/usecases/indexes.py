@@ -32,9 +32,10 @@ from service.index.vectors import Metric
 from service.retrieval.access import access_mask
 from service.store import repository
 from service.store.tables import ChunkRow, DocumentRow
+from service.usecases.chunk_ids import chunk_id
 
 if TYPE_CHECKING:
-    from service.usecases.documents import MaterialisedDocument
+    from service.usecases.documents import ChunkDraft, MaterialisedDocument
     from service.usecases.runtime import Runtime
 
 log = logging.getLogger("excerpta.index")
@@ -45,10 +46,6 @@ def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
         english_stopwords() if retrieval.get("stopwords", True) else None,
         "english" if retrieval.get("stemming", True) else None,
     )
-
-
-def chunk_id(document_id: str, ordinal: int) -> str:
-    return f"{document_id}#{ordinal:04d}"
 
 
 @dataclass
@@ -254,23 +251,14 @@ class IndexRegistry:
         chunk: ChunkRow,
         vector: bytes,
     ) -> ChunkRecord:
-        attributes = _attributes_from_json(schema, document.attributes)
-        return ChunkRecord(
-            chunk_id=chunk_id(document.external_id, chunk.ordinal),
+        return _chunk_record(
+            analyzer,
             document_id=document.external_id,
-            ordinal=chunk.ordinal,
             title=document.title,
-            section=chunk.section,
-            text=chunk.text,
-            char_start=chunk.char_start,
-            char_end=chunk.char_end,
-            tokens=chunk.tokens,
-            lexical_tokens=analyzer.tokens(
-                _indexed_text(document.title, chunk.section, chunk.text)
-            ),
-            vector=np.frombuffer(vector, dtype=np.float32),
-            attributes=attributes,
+            attributes=_attributes_from_json(schema, document.attributes),
             access=tuple(document.access),
+            chunk=chunk,
+            vector=np.frombuffer(vector, dtype=np.float32),
         )
 
     def _records_from_material(
@@ -278,20 +266,14 @@ class IndexRegistry:
     ) -> list[ChunkRecord]:
         doc = material.prepared
         return [
-            ChunkRecord(
-                chunk_id=chunk_id(doc.external_id, c.ordinal),
+            _chunk_record(
+                entry.analyzer,
                 document_id=doc.external_id,
-                ordinal=c.ordinal,
                 title=doc.title,
-                section=c.section,
-                text=c.text,
-                char_start=c.char_start,
-                char_end=c.char_end,
-                tokens=c.tokens,
-                lexical_tokens=entry.analyzer.tokens(_indexed_text(doc.title, c.section, c.text)),
-                vector=np.asarray(vectors[c.embedded_text_hash], dtype=np.float32),
                 attributes=dict(doc.attributes),
                 access=doc.access,
+                chunk=c,
+                vector=np.asarray(vectors[c.embedded_text_hash], dtype=np.float32),
             )
             for c in material.chunks
         ]
@@ -319,6 +301,34 @@ class IndexRegistry:
         self._stopping.set()
         if self._compactor is not None:
             self._compactor.join(timeout=5)
+
+
+def _chunk_record(
+    analyzer: Analyzer,
+    *,
+    document_id: str,
+    title: str,
+    attributes: dict[str, AttributeValue],
+    access: tuple[str, ...],
+    chunk: ChunkRow | ChunkDraft,
+    vector: np.ndarray,
+) -> ChunkRecord:
+    """One index row, from a stored chunk or one just written; both carry the same fields."""
+    return ChunkRecord(
+        chunk_id=chunk_id(document_id, chunk.ordinal),
+        document_id=document_id,
+        ordinal=chunk.ordinal,
+        title=title,
+        section=chunk.section,
+        text=chunk.text,
+        char_start=chunk.char_start,
+        char_end=chunk.char_end,
+        tokens=chunk.tokens,
+        lexical_tokens=analyzer.tokens(_indexed_text(title, chunk.section, chunk.text)),
+        vector=vector,
+        attributes=attributes,
+        access=access,
+    )
 
 
 def _indexed_text(title: str, section: str, text: str) -> str:

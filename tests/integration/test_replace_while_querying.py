@@ -40,7 +40,7 @@ Observation = frozenset[tuple[str, str]]
 
 def searched(runtime: Runtime, mode: str) -> tuple[Observation, bool]:
     options = SearchOptions(query="marker term", mode=mode, top_k=50)
-    hits = answering.search_without_trace(runtime, LOCAL_ADMIN, NAME, options)["hits"]
+    hits = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False)["hits"]
     mine = frozenset((h["chunk_id"], h["text"]) for h in hits if h["document_id"] == "swapped")
     return mine, any(h["document_id"] == "stable" for h in hits)
 

@@ -7,7 +7,19 @@ from collections.abc import Iterable, Sequence
 from typing import Any
 
 import numpy as np
-from sqlalchemy import ColumnElement, delete, exists, func, or_, select, update
+from sqlalchemy import (
+    ColumnElement,
+    Connection,
+    Row,
+    bindparam,
+    delete,
+    exists,
+    func,
+    insert,
+    or_,
+    select,
+    update,
+)
 from sqlalchemy.orm import Session
 
 from service.store.tables import (
@@ -70,8 +82,15 @@ def bump_revision(
     return revision
 
 
-def current_revision(session: Session, collection_id: int) -> int | None:
-    return session.scalar(select(CollectionRow.revision).where(CollectionRow.id == collection_id))
+def collection_state(
+    session: Session, collection_id: int
+) -> Row[int, list[str], str | None] | None:
+    """The parts of a collection a query reads that can change without a new revision."""
+    return session.execute(
+        select(
+            CollectionRow.revision, CollectionRow.cite_attributes, CollectionRow.answer_caution
+        ).where(CollectionRow.id == collection_id)
+    ).first()
 
 
 def changes_since(session: Session, collection_id: int, revision: int) -> list[ChangeRow]:
@@ -333,8 +352,56 @@ def store_embeddings(session: Session, embedder: str, vectors: dict[str, np.ndar
 # Keys and traces --------------------------------------------------------------------------------
 
 
-def key_by_lookup(session: Session, lookup: str) -> ApiKeyRow | None:
-    return session.scalars(select(ApiKeyRow).where(ApiKeyRow.lookup == lookup)).first()
+# Every query authenticates and records a trace, so those statements are built once and run on
+# a plain connection: building a statement, or going through an ORM session, costs several
+# times as much as running it.
+
+KeyRow = Row[
+    int, str, bytes, bytes, str, list[str], list[str] | None, dt.datetime | None, dt.datetime | None
+]
+
+_KEY_FOR_LOOKUP = select(
+    ApiKeyRow.id,
+    ApiKeyRow.name,
+    ApiKeyRow.salt,
+    ApiKeyRow.secret_hash,
+    ApiKeyRow.role,
+    ApiKeyRow.groups,
+    ApiKeyRow.collections,
+    ApiKeyRow.last_used_at,
+    ApiKeyRow.revoked_at,
+).where(ApiKeyRow.lookup == bindparam("lookup"))
+_INSERT_TRACE = insert(TraceRow)
+
+
+def key_for_lookup(connection: Connection, lookup: str) -> KeyRow | None:
+    return connection.execute(_KEY_FOR_LOOKUP, {"lookup": lookup}).first()
+
+
+def mark_key_used(connection: Connection, key_id: int, when: dt.datetime) -> None:
+    connection.execute(update(ApiKeyRow).where(ApiKeyRow.id == key_id).values(last_used_at=when))
+
+
+def insert_trace(
+    connection: Connection,
+    *,
+    trace_id: str,
+    key_id: int | None,
+    collection: str,
+    route: str,
+    body: dict[str, Any],
+) -> None:
+    connection.execute(
+        _INSERT_TRACE,
+        {
+            "id": trace_id,
+            "key_id": key_id,
+            "collection": collection,
+            "route": route,
+            "created_at": utcnow(),
+            "body": body,
+        },
+    )
 
 
 def key_by_name(session: Session, name: str) -> ApiKeyRow | None:

@@ -10,7 +10,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import TYPE_CHECKING
 
-from sqlalchemy import Engine
+from sqlalchemy import Connection, Engine
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.config import Settings
@@ -50,6 +50,12 @@ class Runtime:
     def transaction(self) -> Iterator[Session]:
         with unit_of_work(self.sessions) as session:
             yield session
+
+    @contextmanager
+    def connection(self) -> Iterator[Connection]:
+        """A transaction without a session, for the few statements every query runs."""
+        with self.engine.begin() as connection:
+            yield connection
 
     def close(self) -> None:
         self.rebuilds.stop()

@@ -11,7 +11,6 @@ from typing import Any
 
 from service.errors import TraceNotFound
 from service.store import repository
-from service.store.tables import TraceRow
 from service.usecases.callers import Caller
 from service.usecases.runtime import Runtime
 
@@ -38,16 +37,14 @@ class TraceRecorder:
             "total_milliseconds": round((time.perf_counter() - self.started) * 1000, 3),
             **summary,
         }
-        with runtime.transaction() as session:
-            session.add(
-                TraceRow(
-                    id=self.trace_id,
-                    key_id=caller.key_id,
-                    collection=self.collection,
-                    route=self.route,
-                    created_at=repository.utcnow(),
-                    body=body,
-                )
+        with runtime.connection() as connection:
+            repository.insert_trace(
+                connection,
+                trace_id=self.trace_id,
+                key_id=caller.key_id,
+                collection=self.collection,
+                route=self.route,
+                body=body,
             )
         if next(_saves) % PRUNE_EVERY == 0:
             prune_traces(runtime)

@@ -20,8 +20,7 @@ from service.packing.packer import PackCandidate, PackedContext, pack_context
 from service.retrieval.retrieve import Mode, RetrievalResult, retrieve
 from service.store import repository
 from service.usecases.callers import Caller, Role
-from service.usecases.collections import attribute_schema, load_collection
-from service.usecases.indexes import IndexView
+from service.usecases.indexes import CollectionFacts, IndexView
 from service.usecases.runtime import Runtime
 from service.usecases.search import (
     SearchOptions,
@@ -33,13 +32,6 @@ from service.usecases.search import (
 from service.usecases.traces import TraceRecorder
 
 TRACE_TOP_ENTRIES = 20
-
-
-@dataclass(frozen=True)
-class CollectionFacts:
-    name: str
-    cite_attributes: tuple[str, ...]
-    answer_caution: str | None
 
 
 @dataclass(frozen=True)
@@ -63,16 +55,12 @@ def _retrieve(
     """Run the pipeline; ``whole_ranking`` keeps every fused hit up to depth, for packing."""
     caller.require(Role.READER)
     check_options(options, runtime.settings, runtime.embedder.dimensions)
-    with runtime.transaction() as session:
-        row = load_collection(session, caller, collection)
-        schema = attribute_schema(row)
-        facts = CollectionFacts(row.name, tuple(row.cite_attributes), row.answer_caution)
-        collection_id = row.id
+    caller.require_collection(collection)
+    view = runtime.indexes.view(collection)
     recorder = TraceRecorder(route, collection, {**options.as_request(), **(extra_request or {})})
 
     started = time.perf_counter()
-    candidate_filter = build_candidate_filter(options, schema)
-    view = runtime.indexes.view(collection, collection_id)
+    candidate_filter = build_candidate_filter(options, view.facts.schema)
     # A trace counts only the rows its caller may see, like every other count.
     mask, visible_rows = view.candidates(candidate_filter.node, caller.visible_groups)
     recorder.stage(
@@ -118,7 +106,7 @@ def _retrieve(
             counts=dict(stage.counts),
             top=[view.describe_entry(entry) for entry in stage.top[:TRACE_TOP_ENTRIES]],
         )
-    return Retrieval(facts, view, result, recorder)
+    return Retrieval(view.facts, view, result, recorder)
 
 
 def _hit(view: IndexView, hit: Any) -> dict[str, Any]:
@@ -188,7 +176,7 @@ def _pack(
                 vector=view.vector(hit.row),
             )
         )
-    collection_name = retrieval.facts.name
+    collection_id = retrieval.facts.collection_id
 
     texts: dict[str, str | None] = {}
 
@@ -196,12 +184,7 @@ def _pack(
         """The document's text over a merged span, read once per document and request."""
         if document_id not in texts:
             with runtime.transaction() as session:
-                row = repository.collection_by_name(session, collection_name)
-                found = (
-                    {}
-                    if row is None
-                    else repository.documents_by_external_id(session, row.id, [document_id])
-                )
+                found = repository.documents_by_external_id(session, collection_id, [document_id])
                 document = found.get(document_id)
                 texts[document_id] = None if document is None else document.text
         text = texts[document_id]
@@ -365,13 +348,8 @@ def _citations(
     by_marker = {p.marker: p for p in packed.passages}
     used = [by_marker[m] for m in sorted(set(generated.markers_used)) if m in by_marker]
     with runtime.transaction() as session:
-        row = repository.collection_by_name(session, facts.name)
-        documents = (
-            {}
-            if row is None
-            else repository.documents_by_external_id(
-                session, row.id, sorted({p.document_id for p in used})
-            )
+        documents = repository.documents_by_external_id(
+            session, facts.collection_id, sorted({p.document_id for p in used})
         )
     citations = []
     for passage in used:

@@ -203,6 +203,7 @@ def put_collection(
             if retrieval_changed or set(new_schema) - set(old_schema):
                 repository.bump_revision(session, row, [(None, "reset")])
         view = collection_view(session, row, caller, runtime.embedder.tokenizer_name)
+    runtime.indexes.expire(name)
     if rebuild_needed:
         runtime.rebuilds.start(name)
     return created, view

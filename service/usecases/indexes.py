@@ -11,7 +11,7 @@ import logging
 import threading
 import time
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
@@ -48,11 +48,22 @@ def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
     )
 
 
+@dataclass(frozen=True)
+class CollectionFacts:
+    """What a query needs of its collection besides the index, kept beside the index so that
+    a query reads nothing from the store."""
+
+    name: str
+    collection_id: int
+    schema: Schema
+    cite_attributes: tuple[str, ...]
+    answer_caution: str | None
+
+
 @dataclass
 class _Entry:
-    collection_id: int
+    facts: CollectionFacts
     generation: int
-    schema: Schema
     retrieval: dict[str, Any]
     analyzer: Analyzer
     index: CollectionIndex
@@ -65,6 +76,7 @@ class _Entry:
 class IndexView:
     """What one query reads: a consistent snapshot and the collection's scoring settings."""
 
+    facts: CollectionFacts
     snapshot: IndexSnapshot
     analyzer: Analyzer
     k1: float
@@ -119,16 +131,17 @@ class IndexRegistry:
 
     # queries ------------------------------------------------------------------------------
 
-    def view(self, name: str, collection_id: int) -> IndexView:
-        entry = self._entry(name, collection_id)
+    def view(self, name: str) -> IndexView:
+        entry = self._entry(name)
         poll = self._runtime.settings.index_poll_ms / 1000.0
         if time.monotonic() - entry.checked_at >= poll:
             with entry.lock:
                 if time.monotonic() - entry.checked_at >= poll:
                     self._catch_up(name, entry)
-        entry = self._entry(name, collection_id)
+        entry = self._entry(name)
         retrieval = entry.retrieval
         return IndexView(
+            facts=entry.facts,
             snapshot=entry.index.snapshot(),
             analyzer=entry.analyzer,
             k1=float(retrieval["k1"]),
@@ -136,15 +149,21 @@ class IndexRegistry:
             bm25_variant=cast(Bm25Variant, retrieval["bm25"]),
         )
 
-    def _entry(self, name: str, collection_id: int) -> _Entry:
+    def _entry(self, name: str) -> _Entry:
         with self._lock:
             entry = self._entries.get(name)
-            if entry is not None and entry.collection_id == collection_id:
+            if entry is not None:
                 return entry
         loaded = self._load(name)
         with self._lock:
-            self._entries[name] = loaded
-        return loaded
+            return self._entries.setdefault(name, loaded)
+
+    def expire(self, name: str) -> None:
+        """Have the next query re-read the collection: this process has just changed it."""
+        with self._lock:
+            entry = self._entries.get(name)
+        if entry is not None:
+            entry.checked_at = float("-inf")
 
     # building and catching up --------------------------------------------------------------
 
@@ -168,9 +187,14 @@ class IndexRegistry:
                 bm25_b=float(retrieval.get("b", 0.75)),
             )
             return _Entry(
-                collection_id=row.id,
+                facts=CollectionFacts(
+                    name=row.name,
+                    collection_id=row.id,
+                    schema=schema,
+                    cite_attributes=tuple(row.cite_attributes),
+                    answer_caution=row.answer_caution,
+                ),
                 generation=row.chunk_generation,
-                schema=schema,
                 retrieval=retrieval,
                 analyzer=analyzer,
                 index=index,
@@ -180,30 +204,35 @@ class IndexRegistry:
             )
 
     def _catch_up(self, name: str, entry: _Entry) -> None:
+        collection_id = entry.facts.collection_id
         with self._runtime.transaction() as session:
-            current = repository.current_revision(session, entry.collection_id)
-            if current is None:
+            state = repository.collection_state(session, collection_id)
+            if state is None:
+                # Deleted, perhaps made again under the same name: the next lookup loads afresh.
                 self.forget(name)
-                raise CollectionNotFound(f"Collection {name!r} does not exist.")
-            entry.checked_at = time.monotonic()
-            if current == entry.revision:
                 return
-            changes = repository.changes_since(session, entry.collection_id, entry.revision)
+            entry.facts = replace(
+                entry.facts,
+                cite_attributes=tuple(state.cite_attributes),
+                answer_caution=state.answer_caution,
+            )
+            entry.checked_at = time.monotonic()
+            if state.revision == entry.revision:
+                return
+            changes = repository.changes_since(session, collection_id, entry.revision)
             if any(change.operation == "reset" for change in changes):
                 reset = True
             else:
                 reset = False
                 document_ids = sorted({c.document_id for c in changes if c.document_id})
-                found = repository.documents_by_external_id(
-                    session, entry.collection_id, document_ids
-                )
+                found = repository.documents_by_external_id(session, collection_id, document_ids)
                 rows = repository.index_rows(
-                    session, entry.collection_id, entry.generation, [d.id for d in found.values()]
+                    session, collection_id, entry.generation, [d.id for d in found.values()]
                 )
                 grouped: dict[str, list[ChunkRecord]] = {doc: [] for doc in document_ids}
                 for document, chunk, vector in rows:
                     grouped[document.external_id].append(
-                        self._record(entry.analyzer, entry.schema, document, chunk, vector)
+                        self._record(entry.analyzer, entry.facts.schema, document, chunk, vector)
                     )
         if reset:
             replacement = self._load(name)

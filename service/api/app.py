@@ -11,6 +11,7 @@ from fastapi.middleware.cors import CORSMiddleware
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.api.errors import error_response, install_error_handlers
+from service.api.query_pool import QueryPool
 from service.api.routes import collections, documents, health, retrieval, traces
 from service.errors import PayloadTooLarge
 from service.usecases.ratelimit import RateLimiter
@@ -56,11 +57,14 @@ class BodySizeLimit:
 def create_app(runtime: Runtime) -> FastAPI:
     settings = runtime.settings
 
+    query_pool = QueryPool()
+
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
         runtime.indexes.start_background()
         runtime.rebuilds.resume()
         yield
+        query_pool.close()
         runtime.close()
 
     docs: dict[str, Any] = {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
@@ -72,9 +76,11 @@ def create_app(runtime: Runtime) -> FastAPI:
         **docs,
     )
     app.state.runtime = runtime
+    app.state.query_pool = query_pool
     app.state.rate_limiter = RateLimiter(settings.rate_limit_per_second, settings.rate_limit_burst)
     install_error_handlers(app)
-    for module in (health, collections, documents, retrieval, traces):
+    # The retrieval routes come first: they are the busiest, and routes are matched in order.
+    for module in (retrieval, health, collections, documents, traces):
         app.include_router(module.router)
     if settings.cors_origins:
         app.add_middleware(

@@ -6,6 +6,7 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 
+from service.api.query_pool import QueryPool
 from service.errors import Unauthenticated
 from service.usecases.callers import LOCAL_ADMIN, Caller
 from service.usecases.keys import authenticate
@@ -21,6 +22,14 @@ async def get_runtime(request: Request) -> Runtime:
 RuntimeDep = Annotated[Runtime, Depends(get_runtime)]
 
 
+async def get_query_pool(request: Request) -> QueryPool:
+    pool: QueryPool = request.app.state.query_pool
+    return pool
+
+
+QueryPoolDep = Annotated[QueryPool, Depends(get_query_pool)]
+
+
 async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
     """The key's caller; async so the lookup (one indexed row, well under a millisecond) runs
     on the event loop instead of paying a hop to a worker thread on every request."""
@@ -30,8 +39,8 @@ async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
     scheme, _, presented = header.partition(" ")
     if scheme.lower() != "bearer":
         raise Unauthenticated("A valid API key is required in the Authorization header.")
-    with runtime.transaction() as session:
-        caller = authenticate(session, presented.strip())
+    with runtime.connection() as connection:
+        caller = authenticate(connection, presented.strip())
     request.app.state.rate_limiter.check(caller)
     return caller
 

@@ -1,8 +1,9 @@
 """Search, context and answer: parse the body, call one use case, return its result.
 
-These are the hot routes, and their use cases already build JSON-ready bodies in the declared
-shapes (the schema tests hold them to ``SearchOut``, ``ContextOut`` and ``AnswerOut``), so they
-are sent as they are instead of being validated and re-serialised a second time.
+These are the hot routes. They run their use case on the query pool (see ``query_pool``), and
+their use cases already build JSON-ready bodies in the declared shapes (the schema tests hold
+them to ``SearchOut``, ``ContextOut`` and ``AnswerOut``), so they are sent as they are instead
+of being validated and re-serialised a second time.
 """
 
 from __future__ import annotations
@@ -10,7 +11,7 @@ from __future__ import annotations
 from fastapi import APIRouter
 from fastapi.responses import JSONResponse
 
-from service.api.deps import CallerDep, RuntimeDep
+from service.api.deps import CallerDep, QueryPoolDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
 from service.api.routing import StrictJsonRoute
 from service.api.schemas import (
@@ -52,14 +53,22 @@ def _options(body: SearchIn) -> SearchOptions:
 
 
 @router.post("/search", response_model=SearchOut)
-def search(name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep) -> JSONResponse:
-    return JSONResponse(answering.search(runtime, caller, name, _options(body)))
+async def search(
+    name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
+) -> JSONResponse:
+    options = _options(body)
+    return await pool.run(lambda: JSONResponse(answering.search(runtime, caller, name, options)))
 
 
 @router.post("/context", response_model=ContextOut)
-def context(name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep) -> JSONResponse:
-    return JSONResponse(
-        answering.build_context(runtime, caller, name, _options(body), body.token_budget)
+async def context(
+    name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
+) -> JSONResponse:
+    options = _options(body)
+    return await pool.run(
+        lambda: JSONResponse(
+            answering.build_context(runtime, caller, name, options, body.token_budget)
+        )
     )
 
 
@@ -68,7 +77,12 @@ def context(name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep) 
     response_model=AnswerOut,
     responses={502: {"model": ErrorOut, "description": "The generator failed"}},
 )
-def answer(name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep) -> JSONResponse:
-    return JSONResponse(
-        answering.answer(runtime, caller, name, _options(body), body.token_budget, body.generator)
+async def answer(
+    name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
+) -> JSONResponse:
+    options = _options(body)
+    return await pool.run(
+        lambda: JSONResponse(
+            answering.answer(runtime, caller, name, options, body.token_budget, body.generator)
+        )
     )

@@ -10,6 +10,7 @@ stopped at the end whatever happens.
 from __future__ import annotations
 
 import hashlib
+import http.client
 import json
 import os
 import socket
@@ -36,7 +37,7 @@ from service.bench.synthetic import (
     document_id_of,
     make_collection,
 )
-from service.bench.timing import Summary, time_each
+from service.bench.timing import WARMUP_CALLS, Summary
 from service.config import Settings
 from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord, CollectionIndex
@@ -54,6 +55,7 @@ FIRST_QUERY_TIMEOUT_SECONDS = 600.0
 REQUEST_TIMEOUT_SECONDS = 60.0
 STOP_TIMEOUT_SECONDS = 15.0
 ERROR_SAMPLES = 5
+ROUND_SECONDS = 1.0
 SERVER_BLAS_THREADS = Settings().blas_threads or None
 _INSERT_BATCH = 5_000
 
@@ -173,19 +175,42 @@ def analysed_index(collection: SyntheticCollection, analyzer: Analyzer) -> Colle
     return CollectionIndex.build(records, metric="cosine", dimension=collection.dimension)
 
 
-def in_process_hybrid(
-    collection: SyntheticCollection, queries: QuerySet, *, top_k: int, depth: int
-) -> Summary:
-    """The hybrid query on the index the server builds, with the queries it analyses."""
-    analyzer = Analyzer.english()
-    snapshot = analysed_index(collection, analyzer).snapshot()
-    query_tokens = [analyzer.tokens(text) for text in queries.texts]
-    vectors = list(queries.vectors)
-    summary, _ = time_each(
-        range(len(queries)),
-        lambda i: hybrid_query(snapshot, query_tokens[i], vectors[i], top_k=top_k, depth=depth),
-    )
-    return summary
+class InProcessHybrid:
+    """The hybrid query on the index the server builds, with the queries it analyses.
+
+    It is timed in rounds between the one-client rounds over HTTP, so that both figures come
+    from the same stretches of time on a machine whose speed drifts.
+    """
+
+    def __init__(
+        self, collection: SyntheticCollection, queries: QuerySet, *, top_k: int, depth: int
+    ) -> None:
+        analyzer = Analyzer.english()
+        self._snapshot = analysed_index(collection, analyzer).snapshot()
+        self._tokens = [analyzer.tokens(text) for text in queries.texts]
+        self._vectors = list(queries.vectors)
+        self._top_k = top_k
+        self._depth = depth
+        self.timings: list[float] = []
+        with threadpool_limits(limits=SERVER_BLAS_THREADS):
+            for i in range(min(WARMUP_CALLS, len(self._tokens))):
+                self._query(i)
+
+    def time_round(self) -> None:
+        # With the BLAS threads the server gives each query, so the two agree.
+        with threadpool_limits(limits=SERVER_BLAS_THREADS):
+            for i in range(len(self._tokens)):
+                started = time.perf_counter_ns()
+                self._query(i)
+                self.timings.append((time.perf_counter_ns() - started) / 1e6)
+
+    def _query(self, i: int) -> object:
+        return hybrid_query(
+            self._snapshot, self._tokens[i], self._vectors[i], top_k=self._top_k, depth=self._depth
+        )
+
+    def summary(self) -> Summary:
+        return Summary.of(self.timings)
 
 
 class Server:
@@ -265,12 +290,43 @@ def request_bodies(queries: QuerySet, *, top_k: int, depth: int) -> list[bytes]:
     ]
 
 
+class _Client:
+    """One keep-alive connection; a failed request is recorded and the connection reopened.
+
+    The standard library's client keeps the client's own cost per request well below that of
+    richer client libraries, so the figures describe the server more than the client.
+    """
+
+    def __init__(self, port: int, key: str, timeout: float = REQUEST_TIMEOUT_SECONDS) -> None:
+        self._port = port
+        self._timeout = timeout
+        self._headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
+        self._connection = self._connect()
+
+    def _connect(self) -> http.client.HTTPConnection:
+        connection = http.client.HTTPConnection("127.0.0.1", self._port, timeout=self._timeout)
+        connection.connect()
+        return connection
+
+    def post(self, path: str, body: bytes) -> tuple[int, bytes]:
+        try:
+            self._connection.request("POST", path, body=body, headers=self._headers)
+            response = self._connection.getresponse()
+            return response.status, response.read()
+        except (OSError, http.client.HTTPException):
+            self._connection.close()
+            self._connection = self._connect()
+            raise
+
+    def close(self) -> None:
+        self._connection.close()
+
+
 def drive(
-    base_url: str, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float
+    port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
 ) -> dict[str, Any]:
     """``clients`` threads sending requests back to back until the time is up."""
-    url = f"{base_url}/v1/collections/{COLLECTION}/search"
-    headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
+    path = f"/v1/collections/{COLLECTION}/search"
     latencies: list[list[float]] = [[] for _ in range(clients)]
     errors: list[list[str]] = [[] for _ in range(clients)]
     start_line = threading.Barrier(clients + 1)
@@ -278,24 +334,29 @@ def drive(
     deadline_box: list[float] = []
 
     def client(number: int) -> None:
-        with httpx.Client(headers=headers, timeout=REQUEST_TIMEOUT_SECONDS) as session:
+        session = _Client(port, key)
+        try:
             start_line.wait()
             deadline = deadline_box[0]
-            position = number
+            position = first + number
             while time.perf_counter() < deadline:
                 body = bodies[position % len(bodies)]
                 position += clients
                 started = time.perf_counter()
                 try:
-                    response = session.post(url, content=body)
-                    elapsed = (time.perf_counter() - started) * 1000
-                    if response.status_code == 200:
-                        latencies[number].append(elapsed)
-                    else:
-                        errors[number].append(f"{response.status_code}: {response.text[:200]}")
-                except httpx.HTTPError as exc:
+                    status, payload = session.post(path, body)
+                except (OSError, http.client.HTTPException) as exc:
                     errors[number].append(f"{type(exc).__name__}: {exc}")
+                    continue
+                elapsed = (time.perf_counter() - started) * 1000
+                if status == 200:
+                    latencies[number].append(elapsed)
+                else:
+                    text = payload[:200].decode("utf-8", "replace")
+                    errors[number].append(f"{status}: {text}")
             finished_at[number] = time.perf_counter()
+        finally:
+            session.close()
 
     threads = [threading.Thread(target=client, args=(n,), daemon=True) for n in range(clients)]
     for thread in threads:
@@ -306,18 +367,53 @@ def drive(
     for thread in threads:
         thread.join(seconds + REQUEST_TIMEOUT_SECONDS + 5)
     elapsed = max([*finished_at, started + 1e-9]) - started
-    all_latencies = [value for values in latencies for value in values]
-    all_errors = [error for values in errors for error in values]
+    return _level(
+        clients,
+        [value for values in latencies for value in values],
+        [error for values in errors for error in values],
+        elapsed,
+    )
+
+
+def drive_alternating(
+    port: int,
+    key: str,
+    bodies: Sequence[bytes],
+    *,
+    seconds: float,
+    reference: InProcessHybrid,
+) -> dict[str, Any]:
+    """One client in rounds, the in-process reference timed between them."""
+    rounds = max(1, round(seconds / ROUND_SECONDS))
+    latencies: list[float] = []
+    errors: list[str] = []
+    elapsed = 0.0
+    sent = 0
+    for _ in range(rounds):
+        level = drive(port, key, bodies, clients=1, seconds=seconds / rounds, first=sent)
+        latencies.extend(level["latencies_ms"])
+        errors.extend(level["errors_seen"])
+        elapsed += level["seconds"]
+        sent += level["requests"] + level["errors"]
+        reference.time_round()
+    return _level(1, latencies, errors, elapsed)
+
+
+def _level(
+    clients: int, latencies: list[float], errors: list[str], elapsed: float
+) -> dict[str, Any]:
     figures: dict[str, Any] = {
         "clients": clients,
-        "requests": len(all_latencies),
-        "errors": len(all_errors),
+        "requests": len(latencies),
+        "errors": len(errors),
         "seconds": elapsed,
-        "requests_per_second": len(all_latencies) / elapsed,
-        "error_samples": all_errors[:ERROR_SAMPLES],
+        "requests_per_second": len(latencies) / elapsed if elapsed > 0 else 0.0,
+        "error_samples": errors[:ERROR_SAMPLES],
+        "latencies_ms": latencies,
+        "errors_seen": errors,
     }
-    if all_latencies:
-        summary = Summary.of(all_latencies)
+    if latencies:
+        summary = Summary.of(latencies)
         figures.update(p50_ms=summary.median_ms, p95_ms=summary.p95_ms, p99_ms=summary.p99_ms)
     else:
         figures.update(p50_ms=float("nan"), p95_ms=float("nan"), p99_ms=float("nan"))
@@ -339,9 +435,7 @@ def run_http(
     if dimension != EMBEDDER_DIMENSIONS:
         raise ValueError(f"--http needs --dims {EMBEDDER_DIMENSIONS}, the server model's size")
     collection = make_collection(chunks, dimension, seed)
-    # The reference runs with the BLAS threads the server gives each query, so the two agree.
-    with threadpool_limits(limits=SERVER_BLAS_THREADS):
-        in_process = in_process_hybrid(collection, queries, top_k=top_k, depth=depth)
+    reference = InProcessHybrid(collection, queries, top_k=top_k, depth=depth)
 
     with tempfile.TemporaryDirectory(prefix="excerpta-bench-") as scratch:
         data_dir = Path(scratch)
@@ -364,28 +458,37 @@ def run_http(
             server.start()
             server.wait_ready(READY_TIMEOUT_SECONDS)
             bodies = request_bodies(queries, top_k=top_k, depth=depth)
-            first = httpx.post(
-                f"{server.base_url}/v1/collections/{COLLECTION}/search",
-                content=bodies[0],
-                headers={"Authorization": f"Bearer {key}", "Content-Type": "application/json"},
-                timeout=FIRST_QUERY_TIMEOUT_SECONDS,
-            )
-            if first.status_code != 200:
+            first = _Client(server.port, key, FIRST_QUERY_TIMEOUT_SECONDS)
+            try:
+                status, payload = first.post(f"/v1/collections/{COLLECTION}/search", bodies[0])
+            finally:
+                first.close()
+            if status != 200:
                 raise RuntimeError(
-                    f"the first search failed with {first.status_code}: {first.text[:500]}\n"
-                    f"{server.log_tail()}"
+                    f"the first search failed with {status}: {payload[:500]!r}\n{server.log_tail()}"
                 )
-            for level in clients:
-                progress(f"driving {level} concurrent client(s) for {seconds:g} s")
-                levels.append(drive(server.base_url, key, bodies, clients=level, seconds=seconds))
+            for clients_at_once in clients:
+                progress(f"driving {clients_at_once} concurrent client(s) for {seconds:g} s")
+                if clients_at_once == 1:
+                    level = drive_alternating(
+                        server.port, key, bodies, seconds=seconds, reference=reference
+                    )
+                else:
+                    level = drive(
+                        server.port, key, bodies, clients=clients_at_once, seconds=seconds
+                    )
+                del level["latencies_ms"], level["errors_seen"]
+                levels.append(level)
         finally:
             server.stop()
+    if not reference.timings:
+        reference.time_round()
     return {
         "chunks": chunks,
         "dimensions": dimension,
         "server_port": server.port,
         "seconds_per_level": seconds,
-        "in_process_hybrid": in_process.as_dict(),
+        "in_process_hybrid": reference.summary().as_dict(),
         "levels": levels,
         "error_samples": [e for level in levels for e in level["error_samples"]][:ERROR_SAMPLES],
     }

@@ -2,7 +2,8 @@
 
 Writes through this process are applied directly; writes made elsewhere (the CLI, another
 replica) are found through the collection's revision and change log, checked at most every
-``index_poll_ms`` before a query. No query reads chunks from the database.
+``index_poll_ms`` before a query. No query reads chunks or the collection row from the
+database: the collection's facts are kept beside its index and refreshed by the same check.
 """
 
 from __future__ import annotations

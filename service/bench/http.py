@@ -291,7 +291,7 @@ def request_bodies(queries: QuerySet, *, top_k: int, depth: int) -> list[bytes]:
 
 
 class _Client:
-    """One keep-alive connection; a failed request is recorded and the connection reopened.
+    """One keep-alive connection, opened before the clock starts and reopened after a failure.
 
     The standard library's client keeps the client's own cost per request well below that of
     richer client libraries, so the figures describe the server more than the client.
@@ -334,7 +334,12 @@ def drive(
     deadline_box: list[float] = []
 
     def client(number: int) -> None:
-        session = _Client(port, key)
+        try:
+            session = _Client(port, key)
+        except OSError as exc:
+            errors[number].append(f"{type(exc).__name__}: {exc}")
+            start_line.wait()
+            return
         try:
             start_line.wait()
             deadline = deadline_box[0]

@@ -1,7 +1,8 @@
 """``excerpta bench --http`` against the real server on a tiny collection.
 
-The server loads the bundled model at start, so the test is skipped where the model package is
-missing (and fails under CI=true, where it must run). No latency target is asserted.
+The server loads the bundled model at start, so the whole-bench test is skipped where the model
+package is missing (and fails under CI=true, where it must run). No latency target is asserted.
+The clients' failure handling needs no server at all.
 """
 
 from __future__ import annotations
@@ -17,11 +18,11 @@ import httpx
 import pytest
 
 from service.bench.command import add_bench_arguments, run_bench_command
+from service.bench.http import drive, free_port
 from tests.conftest import need
 
-pytestmark = pytest.mark.model
 
-
+@pytest.mark.model
 def test_http_bench_serves_every_level_without_errors_and_stops_the_server(
     tmp_path: Path,
 ) -> None:
@@ -63,3 +64,10 @@ def test_http_bench_serves_every_level_without_errors_and_stops_the_server(
     assert "over HTTP: 300 chunks" in printed.getvalue()
     with pytest.raises(httpx.ConnectError):
         httpx.get(f"http://127.0.0.1:{http['server_port']}/healthz", timeout=2.0)
+
+
+def test_clients_that_cannot_connect_are_counted_as_errors_and_the_level_still_ends() -> None:
+    level = drive(free_port(), "no-key", [b"{}"], clients=3, seconds=0.2)
+    assert level["requests"] == 0
+    assert level["errors"] == 3
+    assert all("ConnectionRefusedError" in sample for sample in level["error_samples"])

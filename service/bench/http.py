@@ -20,6 +20,7 @@ import tempfile
 import threading
 import time
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -322,10 +323,30 @@ class _Client:
         self._connection.close()
 
 
+@dataclass
+class _Samples:
+    """What one stretch of driving saw: each success's latency and each failure's message."""
+
+    latencies_ms: list[float] = field(default_factory=list)
+    errors: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+
+    def add(self, other: _Samples) -> None:
+        self.latencies_ms += other.latencies_ms
+        self.errors += other.errors
+        self.seconds += other.seconds
+
+
 def drive(
-    port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
+    port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float
 ) -> dict[str, Any]:
     """``clients`` threads sending requests back to back until the time is up."""
+    return _level(clients, _samples(port, key, bodies, clients=clients, seconds=seconds))
+
+
+def _samples(
+    port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
+) -> _Samples:
     path = f"/v1/collections/{COLLECTION}/search"
     latencies: list[list[float]] = [[] for _ in range(clients)]
     errors: list[list[str]] = [[] for _ in range(clients)]
@@ -371,12 +392,10 @@ def drive(
     start_line.wait()
     for thread in threads:
         thread.join(seconds + REQUEST_TIMEOUT_SECONDS + 5)
-    elapsed = max([*finished_at, started + 1e-9]) - started
-    return _level(
-        clients,
+    return _Samples(
         [value for values in latencies for value in values],
         [error for values in errors for error in values],
-        elapsed,
+        max([*finished_at, started + 1e-9]) - started,
     )
 
 
@@ -390,23 +409,16 @@ def drive_alternating(
 ) -> dict[str, Any]:
     """One client in rounds, the in-process reference timed between them."""
     rounds = max(1, round(seconds / ROUND_SECONDS))
-    latencies: list[float] = []
-    errors: list[str] = []
-    elapsed = 0.0
-    sent = 0
+    seen = _Samples()
     for _ in range(rounds):
-        level = drive(port, key, bodies, clients=1, seconds=seconds / rounds, first=sent)
-        latencies.extend(level["latencies_ms"])
-        errors.extend(level["errors_seen"])
-        elapsed += level["seconds"]
-        sent += level["requests"] + level["errors"]
+        sent = len(seen.latencies_ms) + len(seen.errors)
+        seen.add(_samples(port, key, bodies, clients=1, seconds=seconds / rounds, first=sent))
         reference.time_round()
-    return _level(1, latencies, errors, elapsed)
+    return _level(1, seen)
 
 
-def _level(
-    clients: int, latencies: list[float], errors: list[str], elapsed: float
-) -> dict[str, Any]:
+def _level(clients: int, seen: _Samples) -> dict[str, Any]:
+    latencies, errors, elapsed = seen.latencies_ms, seen.errors, seen.seconds
     figures: dict[str, Any] = {
         "clients": clients,
         "requests": len(latencies),
@@ -414,8 +426,6 @@ def _level(
         "seconds": elapsed,
         "requests_per_second": len(latencies) / elapsed if elapsed > 0 else 0.0,
         "error_samples": errors[:ERROR_SAMPLES],
-        "latencies_ms": latencies,
-        "errors_seen": errors,
     }
     if latencies:
         summary = Summary.of(latencies)
@@ -482,7 +492,6 @@ def run_http(
                     level = drive(
                         server.port, key, bodies, clients=clients_at_once, seconds=seconds
                     )
-                del level["latencies_ms"], level["errors_seen"]
                 levels.append(level)
         finally:
             server.stop()

@@ -54,7 +54,6 @@ class CollectionFacts:
     """What a query needs of its collection besides the index, kept beside the index so that
     a query reads nothing from the store."""
 
-    name: str
     collection_id: int
     schema: Schema
     cite_attributes: tuple[str, ...]
@@ -189,7 +188,6 @@ class IndexRegistry:
             )
             return _Entry(
                 facts=CollectionFacts(
-                    name=row.name,
                     collection_id=row.id,
                     schema=schema,
                     cite_attributes=tuple(row.cite_attributes),

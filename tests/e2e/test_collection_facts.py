@@ -6,8 +6,9 @@ interval; a change made by another process must show once the registry next chec
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
+import pytest
 from fastapi.testclient import TestClient
 
 from service.api.app import create_app
@@ -40,9 +41,9 @@ def test_a_caution_changed_here_shows_in_the_next_answer_despite_a_long_poll(
         assert _caution(api) == NEW_CAUTION
 
 
-def test_a_caution_changed_by_another_process_shows_after_the_next_check(
-    make_runtime: Callable[..., Runtime],
-) -> None:
+@pytest.fixture
+def two_processes(make_runtime: Callable[..., Runtime]) -> Iterator[tuple[Api, Api]]:
+    """One admin key on two servers over one store: the one under test, and another process."""
     serving = make_runtime(index_poll_ms=0)
     other = make_runtime(index_poll_ms=0)
     key = make_key(serving, "admin", name="admin")
@@ -51,36 +52,30 @@ def test_a_caution_changed_by_another_process_shows_after_the_next_check(
         TestClient(create_app(other)) as other_client,
     ):
         api = Api(serving_client, key)
-        elsewhere = Api(other_client, key)
         assert api.put("/v1/collections/bikes", json=BIKE_SCHEMA).status_code == 201
         assert _caution(api) == BIKE_SCHEMA["answer_caution"]
+        yield api, Api(other_client, key)
 
-        changed = {**BIKE_SCHEMA, "answer_caution": NEW_CAUTION}
-        assert elsewhere.put("/v1/collections/bikes", json=changed).status_code == 200
 
-        assert _caution(api) == NEW_CAUTION
+def test_a_caution_changed_by_another_process_shows_after_the_next_check(
+    two_processes: tuple[Api, Api],
+) -> None:
+    api, elsewhere = two_processes
+    changed = {**BIKE_SCHEMA, "answer_caution": NEW_CAUTION}
+    assert elsewhere.put("/v1/collections/bikes", json=changed).status_code == 200
+
+    assert _caution(api) == NEW_CAUTION
 
 
 def test_a_collection_deleted_and_made_again_elsewhere_is_served_afresh(
-    make_runtime: Callable[..., Runtime],
+    two_processes: tuple[Api, Api],
 ) -> None:
-    serving = make_runtime(index_poll_ms=0)
-    other = make_runtime(index_poll_ms=0)
-    key = make_key(serving, "admin", name="admin")
-    with (
-        TestClient(create_app(serving)) as serving_client,
-        TestClient(create_app(other)) as other_client,
-    ):
-        api = Api(serving_client, key)
-        elsewhere = Api(other_client, key)
-        assert api.put("/v1/collections/bikes", json=BIKE_SCHEMA).status_code == 201
-        assert _caution(api) == BIKE_SCHEMA["answer_caution"]
+    api, elsewhere = two_processes
+    assert elsewhere.delete("/v1/collections/bikes").status_code == 204
+    missing = api.post("/v1/collections/bikes/answer", json={"query": "brake pads"})
+    assert missing.status_code == 404
+    assert missing.json()["error"]["code"] == "collection_not_found"
 
-        assert elsewhere.delete("/v1/collections/bikes").status_code == 204
-        missing = api.post("/v1/collections/bikes/answer", json={"query": "brake pads"})
-        assert missing.status_code == 404
-        assert missing.json()["error"]["code"] == "collection_not_found"
-
-        remade = {**BIKE_SCHEMA, "answer_caution": NEW_CAUTION}
-        assert elsewhere.put("/v1/collections/bikes", json=remade).status_code == 201
-        assert _caution(api) == NEW_CAUTION
+    remade = {**BIKE_SCHEMA, "answer_caution": NEW_CAUTION}
+    assert elsewhere.put("/v1/collections/bikes", json=remade).status_code == 201
+    assert _caution(api) == NEW_CAUTION

@@ -8,11 +8,15 @@ of being validated and re-serialised a second time.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from typing import Any
+
 from fastapi import APIRouter
 from fastapi.responses import JSONResponse
 
 from service.api.deps import CallerDep, QueryPoolDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
+from service.api.query_pool import QueryPool
 from service.api.routing import StrictJsonRoute
 from service.api.schemas import (
     AnswerIn,
@@ -52,23 +56,25 @@ def _options(body: SearchIn) -> SearchOptions:
     )
 
 
+async def _respond(pool: QueryPool, make_body: Callable[[], dict[str, Any]]) -> JSONResponse:
+    """Build the body and render it on the query pool, off the event loop."""
+    return await pool.run(lambda: JSONResponse(make_body()))
+
+
 @router.post("/search", response_model=SearchOut)
 async def search(
     name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
 ) -> JSONResponse:
-    options = _options(body)
-    return await pool.run(lambda: JSONResponse(answering.search(runtime, caller, name, options)))
+    return await _respond(pool, lambda: answering.search(runtime, caller, name, _options(body)))
 
 
 @router.post("/context", response_model=ContextOut)
 async def context(
     name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
 ) -> JSONResponse:
-    options = _options(body)
-    return await pool.run(
-        lambda: JSONResponse(
-            answering.build_context(runtime, caller, name, options, body.token_budget)
-        )
+    return await _respond(
+        pool,
+        lambda: answering.build_context(runtime, caller, name, _options(body), body.token_budget),
     )
 
 
@@ -80,9 +86,9 @@ async def context(
 async def answer(
     name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
 ) -> JSONResponse:
-    options = _options(body)
-    return await pool.run(
-        lambda: JSONResponse(
-            answering.answer(runtime, caller, name, options, body.token_budget, body.generator)
-        )
+    return await _respond(
+        pool,
+        lambda: answering.answer(
+            runtime, caller, name, _options(body), body.token_budget, body.generator
+        ),
     )

@@ -10,6 +10,7 @@ from service.api.query_pool import QueryPool
 from service.errors import Unauthenticated
 from service.usecases.callers import LOCAL_ADMIN, Caller
 from service.usecases.keys import authenticate
+from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
 
 
@@ -30,19 +31,24 @@ async def get_query_pool(request: Request) -> QueryPool:
 QueryPoolDep = Annotated[QueryPool, Depends(get_query_pool)]
 
 
-async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
-    """The key's caller; async so the lookup (one indexed row, well under a millisecond) runs
-    on the event loop instead of paying a hop to a worker thread on every request."""
+def caller_for(runtime: Runtime, rate_limiter: RateLimiter, authorization: str) -> Caller:
+    """The caller an ``Authorization`` header names, charged one request against its rate."""
     if runtime.settings.auth == "disabled":
         return LOCAL_ADMIN
-    header = request.headers.get("authorization", "")
-    scheme, _, presented = header.partition(" ")
+    scheme, _, presented = authorization.partition(" ")
     if scheme.lower() != "bearer":
         raise Unauthenticated("A valid API key is required in the Authorization header.")
     with runtime.connection() as connection:
         caller = authenticate(connection, presented.strip())
-    request.app.state.rate_limiter.check(caller)
+    rate_limiter.check(caller)
     return caller
+
+
+async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
+    """Async so the lookup (one indexed row, well under a millisecond) runs on the event loop
+    instead of paying a hop to a worker thread on every request."""
+    authorization = request.headers.get("authorization", "")
+    return caller_for(runtime, request.app.state.rate_limiter, authorization)
 
 
 CallerDep = Annotated[Caller, Depends(get_caller)]

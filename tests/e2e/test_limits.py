@@ -259,6 +259,21 @@ def test_cors_allows_only_a_configured_origin(client_for: Callable[..., Api]) ->
     assert preflight.headers["access-control-allow-origin"] == "https://app.example.invalid"
 
 
+@pytest.mark.parametrize("route", ["search", "context", "answer"])
+def test_cors_and_the_body_limit_apply_to_the_query_routes(
+    client_for: Callable[..., Api], route: str
+) -> None:
+    api = client_for(cors_origins=["https://app.example.invalid"], max_body_bytes=4096)
+    origin = {"Origin": "https://app.example.invalid"}
+    path = f"/v1/collections/bikes/{route}"
+    answered = api.post(path, json={"query": "brakes"}, headers=origin)
+    assert answered.status_code == 200, answered.text
+    assert answered.headers["access-control-allow-origin"] == "https://app.example.invalid"
+    too_large = api.post(path, json={"query": "brakes " * 1000}, headers=origin)
+    assert too_large.status_code == 413
+    assert too_large.headers["access-control-allow-origin"] == "https://app.example.invalid"
+
+
 @pytest.mark.parametrize("path", ["/docs", "/redoc"])
 def test_interactive_docs_are_off_unless_enabled(client_for: Callable[..., Api], path: str) -> None:
     assert client_for().client.get(path).status_code == 404

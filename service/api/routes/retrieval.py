@@ -9,6 +9,7 @@ of being validated and re-serialised a second time.
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 from fastapi import APIRouter
@@ -28,6 +29,8 @@ from service.api.schemas import (
     SearchOut,
 )
 from service.usecases import answering
+from service.usecases.callers import Caller
+from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions, TimeWindow
 
 router = APIRouter(
@@ -56,26 +59,55 @@ def _options(body: SearchIn) -> SearchOptions:
     )
 
 
-async def _respond(pool: QueryPool, make_body: Callable[[], dict[str, Any]]) -> JSONResponse:
+def _search(runtime: Runtime, caller: Caller, name: str, body: SearchIn) -> dict[str, Any]:
+    return answering.search(runtime, caller, name, _options(body))
+
+
+def _context(runtime: Runtime, caller: Caller, name: str, body: ContextIn) -> dict[str, Any]:
+    return answering.build_context(runtime, caller, name, _options(body), body.token_budget)
+
+
+def _answer(runtime: Runtime, caller: Caller, name: str, body: AnswerIn) -> dict[str, Any]:
+    return answering.answer(
+        runtime, caller, name, _options(body), body.token_budget, body.generator
+    )
+
+
+@dataclass(frozen=True)
+class QueryRoute:
+    """What one query route takes and which use case makes its body; shared with the fast path."""
+
+    body_model: type[SearchIn]
+    make_body: Callable[[Runtime, Caller, str, Any], dict[str, Any]]
+
+
+QUERY_ROUTES: dict[str, QueryRoute] = {
+    "search": QueryRoute(SearchIn, _search),
+    "context": QueryRoute(ContextIn, _context),
+    "answer": QueryRoute(AnswerIn, _answer),
+}
+
+
+async def respond(
+    pool: QueryPool, route: str, runtime: Runtime, caller: Caller, name: str, body: SearchIn
+) -> JSONResponse:
     """Build the body and render it on the query pool, off the event loop."""
-    return await pool.run(lambda: JSONResponse(make_body()))
+    make_body = QUERY_ROUTES[route].make_body
+    return await pool.run(lambda: JSONResponse(make_body(runtime, caller, name, body)))
 
 
 @router.post("/search", response_model=SearchOut)
 async def search(
     name: str, body: SearchIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
 ) -> JSONResponse:
-    return await _respond(pool, lambda: answering.search(runtime, caller, name, _options(body)))
+    return await respond(pool, "search", runtime, caller, name, body)
 
 
 @router.post("/context", response_model=ContextOut)
 async def context(
     name: str, body: ContextIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
 ) -> JSONResponse:
-    return await _respond(
-        pool,
-        lambda: answering.build_context(runtime, caller, name, _options(body), body.token_budget),
-    )
+    return await respond(pool, "context", runtime, caller, name, body)
 
 
 @router.post(
@@ -86,9 +118,4 @@ async def context(
 async def answer(
     name: str, body: AnswerIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
 ) -> JSONResponse:
-    return await _respond(
-        pool,
-        lambda: answering.answer(
-            runtime, caller, name, _options(body), body.token_budget, body.generator
-        ),
-    )
+    return await respond(pool, "answer", runtime, caller, name, body)

@@ -298,12 +298,14 @@ def index_rows(
     query = (
         select(DocumentRow, ChunkRow, EmbeddingRow.vector)
         .join(ChunkRow, ChunkRow.document_id == DocumentRow.id)
+        # The collection is joined before the embeddings, whose condition names it: PostgreSQL
+        # refuses a join condition on a table that comes later in the FROM clause.
+        .join(CollectionRow, CollectionRow.id == DocumentRow.collection_id)
         .join(
             EmbeddingRow,
             (EmbeddingRow.text_hash == ChunkRow.embedded_text_hash)
             & (EmbeddingRow.embedder == CollectionRow.embedder),
         )
-        .join(CollectionRow, CollectionRow.id == DocumentRow.collection_id)
         .where(DocumentRow.collection_id == collection_id, ChunkRow.generation == generation)
         .order_by(DocumentRow.id, ChunkRow.ordinal)
     )

@@ -14,9 +14,10 @@ from alembic.migration import MigrationContext
 from service.errors import DocumentNotFound
 from service.store import repository
 from service.store.tables import Base
-from service.usecases import collections, documents
+from service.usecases import answering, collections, documents
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.runtime import Runtime
+from service.usecases.search import SearchOptions
 from tests.api_helpers import BIKE_SCHEMA
 
 NAME = "bikes"
@@ -156,3 +157,13 @@ def test_the_migrated_schema_matches_the_models(runtime: Runtime) -> None:
         context = MigrationContext.configure(connection, opts={"compare_type": True})
         differences = compare_metadata(context, Base.metadata)
     assert differences == []
+
+
+def test_a_search_builds_its_index_from_the_store_and_finds_the_document(
+    runtime: Runtime,
+) -> None:
+    create_collection(runtime)
+    documents.upsert_documents(runtime, LOCAL_ADMIN, NAME, DOCUMENTS)
+    options = SearchOptions(query="chain wax", mode="lexical", top_k=1)
+    result = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False)
+    assert [hit["document_id"] for hit in result["hits"]] == ["cote-2023"]

@@ -384,26 +384,9 @@ def mark_key_used(connection: Connection, key_id: int, when: dt.datetime) -> Non
     connection.execute(update(ApiKeyRow).where(ApiKeyRow.id == key_id).values(last_used_at=when))
 
 
-def insert_trace(
-    connection: Connection,
-    *,
-    trace_id: str,
-    key_id: int | None,
-    collection: str,
-    route: str,
-    body: dict[str, Any],
-) -> None:
-    connection.execute(
-        _INSERT_TRACE,
-        {
-            "id": trace_id,
-            "key_id": key_id,
-            "collection": collection,
-            "route": route,
-            "created_at": utcnow(),
-            "body": body,
-        },
-    )
+def insert_traces(connection: Connection, rows: list[dict[str, Any]]) -> None:
+    """Rows of ``id``, ``key_id``, ``collection``, ``route``, ``created_at`` and ``body``."""
+    connection.execute(_INSERT_TRACE, rows)
 
 
 def key_by_name(session: Session, name: str) -> ApiKeyRow | None:

@@ -21,6 +21,7 @@ if TYPE_CHECKING:
     from service.usecases.generators import GeneratorRegistry
     from service.usecases.indexes import IndexRegistry
     from service.usecases.rebuild import RebuildWorker
+    from service.usecases.traces import TraceWriter
 
 
 class Runtime:
@@ -35,6 +36,7 @@ class Runtime:
         from service.usecases.generators import GeneratorRegistry
         from service.usecases.indexes import IndexRegistry
         from service.usecases.rebuild import RebuildWorker
+        from service.usecases.traces import TraceWriter
 
         self.settings = settings
         self.embedder = embedder
@@ -45,6 +47,7 @@ class Runtime:
         self.indexes: IndexRegistry = IndexRegistry(self)
         self.rebuilds: RebuildWorker = RebuildWorker(self)
         self.generators: GeneratorRegistry = GeneratorRegistry(self)
+        self.traces: TraceWriter = TraceWriter(self)
 
     @contextmanager
     def transaction(self) -> Iterator[Session]:
@@ -60,6 +63,7 @@ class Runtime:
     def close(self) -> None:
         self.rebuilds.stop()
         self.indexes.stop()
+        self.traces.stop()
         self.engine.dispose()
 
 

@@ -11,11 +11,11 @@ import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
 
-from service.errors import DocumentNotFound
+from service.errors import DocumentNotFound, Unauthenticated
 from service.store import repository
 from service.store.tables import Base
-from service.usecases import answering, collections, documents
-from service.usecases.callers import LOCAL_ADMIN
+from service.usecases import answering, collections, documents, keys
+from service.usecases.callers import LOCAL_ADMIN, Role
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions
 from tests.api_helpers import BIKE_SCHEMA
@@ -167,3 +167,22 @@ def test_a_search_builds_its_index_from_the_store_and_finds_the_document(
     options = SearchOptions(query="chain wax", mode="lexical", top_k=1)
     result = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False)
     assert [hit["document_id"] for hit in result["hits"]] == ["cote-2023"]
+
+
+def test_a_key_authenticates_with_its_groups_and_collections_until_revoked(
+    runtime: Runtime,
+) -> None:
+    with runtime.transaction() as session:
+        secret, _ = keys.create_key(
+            session, role="writer", groups=["staff", "field"], collections=["bikes"], name="w"
+        )
+    with runtime.connection() as connection:
+        caller = keys.authenticate(connection, secret)
+    assert (caller.name, caller.role, caller.groups) == ("w", Role.WRITER, {"staff", "field"})
+    assert caller.collections == {"bikes"}
+    with runtime.transaction() as session:
+        assert [k.last_used_at is not None for k in keys.list_keys(session)] == [True]
+    with runtime.transaction() as session:
+        keys.revoke_key(session, "w")
+    with runtime.connection() as connection, pytest.raises(Unauthenticated):
+        keys.authenticate(connection, secret)

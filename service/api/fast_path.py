@@ -20,14 +20,19 @@ from service.api.body import body_of, read_body, replay
 from service.api.deps import caller_for
 from service.api.errors import error_response
 from service.api.query_pool import QueryPool
-from service.api.routes.retrieval import QUERY_ROUTES, respond
+from service.api.routes.retrieval import QUERY_ROUTES, respond, router
 from service.api.schemas import SearchIn
 from service.errors import ServiceError
 from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
 
-# A path parameter matches one segment, as the framework's ``{name}`` does.
-_QUERY_PATH = re.compile(r"/v1/collections/([^/]+)/(search|context|answer)")
+# The query routes' own paths; a path parameter matches one segment, as the framework's does.
+_QUERY_PATH = re.compile(
+    re.escape(router.prefix).replace(re.escape("{name}"), "([^/]+)")
+    + "/("
+    + "|".join(QUERY_ROUTES)
+    + ")"
+)
 # The model's JSON parser reads these non-JSON tokens as numbers; the framework's refuses them.
 _NON_JSON_NUMBERS = (b"NaN", b"Infinity")
 _JSON_MEDIA_TYPES = (b"", b"application/json")

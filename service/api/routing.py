@@ -20,18 +20,22 @@ def _reject_constant(name: str) -> Any:
     raise json.JSONDecodeError(f"{name} is not a JSON value", name, 0)
 
 
+def strict_json(body: bytes) -> Any:
+    """The body's JSON value; any body that is not strict JSON raises ``JSONDecodeError``."""
+    try:
+        text = body.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise json.JSONDecodeError("the body is not UTF-8", "", exc.start) from None
+    try:
+        return json.loads(text, parse_constant=_reject_constant)
+    except RecursionError:
+        raise json.JSONDecodeError("the body nests too deeply", "", 0) from None
+
+
 class StrictJsonRequest(Request):
     async def json(self) -> Any:
         if not hasattr(self, "_json"):
-            body = await self.body()
-            try:
-                text = body.decode("utf-8")
-            except UnicodeDecodeError as exc:
-                raise json.JSONDecodeError("the body is not UTF-8", "", exc.start) from None
-            try:
-                self._json = json.loads(text, parse_constant=_reject_constant)
-            except RecursionError:
-                raise json.JSONDecodeError("the body nests too deeply", "", 0) from None
+            self._json = strict_json(await self.body())
         return self._json
 
 

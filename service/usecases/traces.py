@@ -130,11 +130,10 @@ class TraceWriter:
             with self._runtime.connection() as connection:
                 repository.insert_traces(connection, batch)
         except Exception:
+            # Kept: the writer's loop tries again after its next batch wait.
             log.exception(
                 "%d traces could not be written; they are kept for the next try", len(batch)
             )
-            if not self._stopping:
-                time.sleep(self._batch_seconds)
             return
         with self._condition:
             for row in batch:

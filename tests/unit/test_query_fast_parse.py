@@ -2,7 +2,7 @@
 
 Whatever the fast parse declines goes on to the framework's route, so declining is always safe;
 taking a body the framework would read differently (or refuse) is the failure looked for here.
-The framework's parse is the standard library's ``json`` followed by model validation.
+The framework's parse is the query routes' strict JSON parse followed by model validation.
 """
 
 from __future__ import annotations
@@ -16,6 +16,7 @@ from hypothesis import strategies as st
 from pydantic import ValidationError
 
 from service.api.fast_path import parse_query_body
+from service.api.routing import strict_json
 from service.api.schemas import AnswerIn, ContextIn, SearchIn
 
 MODELS = (SearchIn, ContextIn, AnswerIn)
@@ -43,12 +44,9 @@ field_values = st.one_of(
 
 
 def framework_parse(model: type[SearchIn], raw: bytes) -> SearchIn | None:
-    def refuse(constant: str) -> Any:
-        raise ValueError(constant)
-
     try:
-        return model.model_validate(json.loads(raw.decode("utf-8"), parse_constant=refuse))
-    except (ValueError, RecursionError, ValidationError):
+        return model.model_validate(strict_json(raw))
+    except (json.JSONDecodeError, ValidationError):
         return None
 
 

@@ -10,7 +10,6 @@ stopped at the end whatever happens.
 from __future__ import annotations
 
 import hashlib
-import http.client
 import json
 import os
 import socket
@@ -30,6 +29,7 @@ from sqlalchemy import insert
 from sqlalchemy.orm import Session
 from threadpoolctl import threadpool_limits
 
+from service.bench.client import KeepAliveClient, ProtocolError, build_request
 from service.bench.inprocess import hybrid_query
 from service.bench.synthetic import (
     CHUNKS_PER_DOCUMENT,
@@ -291,38 +291,6 @@ def request_bodies(queries: QuerySet, *, top_k: int, depth: int) -> list[bytes]:
     ]
 
 
-class _Client:
-    """One keep-alive connection, opened before the clock starts and reopened after a failure.
-
-    The standard library's client keeps the client's own cost per request well below that of
-    richer client libraries, so the figures describe the server more than the client.
-    """
-
-    def __init__(self, port: int, key: str, timeout: float = REQUEST_TIMEOUT_SECONDS) -> None:
-        self._port = port
-        self._timeout = timeout
-        self._headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
-        self._connection = self._connect()
-
-    def _connect(self) -> http.client.HTTPConnection:
-        connection = http.client.HTTPConnection("127.0.0.1", self._port, timeout=self._timeout)
-        connection.connect()
-        return connection
-
-    def post(self, path: str, body: bytes) -> tuple[int, bytes]:
-        try:
-            self._connection.request("POST", path, body=body, headers=self._headers)
-            response = self._connection.getresponse()
-            return response.status, response.read()
-        except (OSError, http.client.HTTPException):
-            self._connection.close()
-            self._connection = self._connect()
-            raise
-
-    def close(self) -> None:
-        self._connection.close()
-
-
 @dataclass
 class _Samples:
     """What one stretch of driving saw: each success's latency and each failure's message."""
@@ -337,6 +305,19 @@ class _Samples:
         self.seconds += other.seconds
 
 
+SEARCH_PATH = f"/v1/collections/{COLLECTION}/search"
+
+
+def search_requests(port: int, key: str, bodies: Sequence[bytes]) -> list[bytes]:
+    """Each body as a whole search request, built once before any clock starts."""
+    headers = {
+        "Host": f"127.0.0.1:{port}",
+        "Authorization": f"Bearer {key}",
+        "Content-Type": "application/json",
+    }
+    return [build_request("POST", SEARCH_PATH, headers, body) for body in bodies]
+
+
 def drive(
     port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float
 ) -> dict[str, Any]:
@@ -347,7 +328,7 @@ def drive(
 def _samples(
     port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
 ) -> _Samples:
-    path = f"/v1/collections/{COLLECTION}/search"
+    requests = search_requests(port, key, bodies)
     latencies: list[list[float]] = [[] for _ in range(clients)]
     errors: list[list[str]] = [[] for _ in range(clients)]
     start_line = threading.Barrier(clients + 1)
@@ -356,7 +337,7 @@ def _samples(
 
     def client(number: int) -> None:
         try:
-            session = _Client(port, key)
+            session = KeepAliveClient("127.0.0.1", port, REQUEST_TIMEOUT_SECONDS)
         except OSError as exc:
             errors[number].append(f"{type(exc).__name__}: {exc}")
             start_line.wait()
@@ -366,20 +347,20 @@ def _samples(
             deadline = deadline_box[0]
             position = first + number
             while time.perf_counter() < deadline:
-                body = bodies[position % len(bodies)]
+                request = requests[position % len(requests)]
                 position += clients
                 started = time.perf_counter()
                 try:
-                    status, payload = session.post(path, body)
-                except (OSError, http.client.HTTPException) as exc:
+                    response = session.send(request)
+                except (OSError, ProtocolError) as exc:
                     errors[number].append(f"{type(exc).__name__}: {exc}")
                     continue
                 elapsed = (time.perf_counter() - started) * 1000
-                if status == 200:
+                if response.status == 200:
                     latencies[number].append(elapsed)
                 else:
-                    text = payload[:200].decode("utf-8", "replace")
-                    errors[number].append(f"{status}: {text}")
+                    text = response.body[:200].decode("utf-8", "replace")
+                    errors[number].append(f"{response.status}: {text}")
             finished_at[number] = time.perf_counter()
         finally:
             session.close()
@@ -473,14 +454,15 @@ def run_http(
             server.start()
             server.wait_ready(READY_TIMEOUT_SECONDS)
             bodies = request_bodies(queries, top_k=top_k, depth=depth)
-            first = _Client(server.port, key, FIRST_QUERY_TIMEOUT_SECONDS)
+            first = KeepAliveClient("127.0.0.1", server.port, FIRST_QUERY_TIMEOUT_SECONDS)
             try:
-                status, payload = first.post(f"/v1/collections/{COLLECTION}/search", bodies[0])
+                response = first.send(search_requests(server.port, key, bodies[:1])[0])
             finally:
                 first.close()
-            if status != 200:
+            if response.status != 200:
                 raise RuntimeError(
-                    f"the first search failed with {status}: {payload[:500]!r}\n{server.log_tail()}"
+                    f"the first search failed with {response.status}: {response.body[:500]!r}\n"
+                    f"{server.log_tail()}"
                 )
             for clients_at_once in clients:
                 progress(f"driving {clients_at_once} concurrent client(s) for {seconds:g} s")

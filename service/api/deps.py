@@ -38,8 +38,7 @@ def caller_for(runtime: Runtime, rate_limiter: RateLimiter, authorization: str) 
     scheme, _, presented = authorization.partition(" ")
     if scheme.lower() != "bearer":
         raise Unauthenticated("A valid API key is required in the Authorization header.")
-    with runtime.connection() as connection:
-        caller = authenticate(connection, presented.strip())
+    caller = authenticate(runtime.key_reader, presented.strip())
     rate_limiter.check(caller)
     return caller
 

@@ -4,12 +4,13 @@ from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Iterable, Sequence
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from sqlalchemy import (
     ColumnElement,
     Connection,
+    Engine,
     Row,
     bindparam,
     delete,
@@ -22,6 +23,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Session
 
+from service.store.driver_query import DriverQuery
 from service.store.tables import (
     ApiKeyRow,
     AttributeValueRow,
@@ -354,13 +356,10 @@ def store_embeddings(session: Session, embedder: str, vectors: dict[str, np.ndar
 # Keys and traces --------------------------------------------------------------------------------
 
 
-# Every query authenticates and records a trace, so those statements are built once and run on
-# a plain connection: building a statement, or going through an ORM session, costs several
-# times as much as running it.
-
-KeyRow = Row[
-    int, str, bytes, bytes, str, list[str], list[str] | None, dt.datetime | None, dt.datetime | None
-]
+# Every query authenticates and records a trace, so those statements are built once: the key
+# lookup runs on the driver's cursor (see ``driver_query``), the trace insert on a plain
+# connection; building a statement, or going through an ORM session, costs several times as
+# much as running it.
 
 _KEY_FOR_LOOKUP = select(
     ApiKeyRow.id,
@@ -376,12 +375,34 @@ _KEY_FOR_LOOKUP = select(
 _INSERT_TRACE = insert(TraceRow)
 
 
-def key_for_lookup(connection: Connection, lookup: str) -> KeyRow | None:
-    return connection.execute(_KEY_FOR_LOOKUP, {"lookup": lookup}).first()
+class StoredKey(NamedTuple):
+    id: int
+    name: str
+    salt: bytes
+    secret_hash: bytes
+    role: str
+    groups: list[str]
+    collections: list[str] | None
+    last_used_at: dt.datetime | None
+    revoked_at: dt.datetime | None
 
 
-def mark_key_used(connection: Connection, key_id: int, when: dt.datetime) -> None:
-    connection.execute(update(ApiKeyRow).where(ApiKeyRow.id == key_id).values(last_used_at=when))
+class KeyReader:
+    """The key check every request runs, and the rare write that marks a key used."""
+
+    def __init__(self, engine: Engine) -> None:
+        self._engine = engine
+        self._lookup = DriverQuery(engine, _KEY_FOR_LOOKUP)
+
+    def by_lookup(self, lookup: str) -> StoredKey | None:
+        row = self._lookup.first({"lookup": lookup})
+        return None if row is None else StoredKey(*row)
+
+    def mark_used(self, key_id: int, when: dt.datetime) -> None:
+        with self._engine.begin() as connection:
+            connection.execute(
+                update(ApiKeyRow).where(ApiKeyRow.id == key_id).values(last_used_at=when)
+            )
 
 
 def insert_traces(connection: Connection, rows: list[dict[str, Any]]) -> None:

@@ -9,7 +9,6 @@ import re
 import secrets
 from dataclasses import dataclass
 
-from sqlalchemy import Connection
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, InvalidRequest, NotFound, Unauthenticated
@@ -108,7 +107,7 @@ def list_keys(session: Session) -> list[KeyInfo]:
     return [_info(row) for row in repository.all_keys(session)]
 
 
-def authenticate(connection: Connection, presented: str | None) -> Caller:
+def authenticate(reader: repository.KeyReader, presented: str | None) -> Caller:
     """The caller behind a bearer key; every failure looks the same to the client."""
     failure = Unauthenticated("A valid API key is required in the Authorization header.")
     if not presented:
@@ -116,14 +115,14 @@ def authenticate(connection: Connection, presented: str | None) -> Caller:
     match = _KEY_SHAPE.fullmatch(presented)
     if match is None:
         raise failure
-    row = repository.key_for_lookup(connection, match.group(1))
+    row = reader.by_lookup(match.group(1))
     if row is None or row.revoked_at is not None:
         raise failure
     if not hmac.compare_digest(_digest(row.salt, match.group(2)), row.secret_hash):
         raise failure
     now = repository.utcnow()
     if row.last_used_at is None or now - row.last_used_at > LAST_USED_RESOLUTION:
-        repository.mark_key_used(connection, row.id, now)
+        reader.mark_used(row.id, now)
     return Caller(
         key_id=row.id,
         name=row.name,

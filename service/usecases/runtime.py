@@ -16,6 +16,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.config import Settings
 from service.embedding.base import Embedder
 from service.store.db import make_engine, migrate, session_factory, unit_of_work
+from service.store.repository import KeyReader
 
 if TYPE_CHECKING:
     from service.usecases.generators import GeneratorRegistry
@@ -44,6 +45,7 @@ class Runtime:
         if run_migrations:
             migrate(self.engine)
         self.sessions: sessionmaker[Session] = session_factory(self.engine)
+        self.key_reader = KeyReader(self.engine)
         self.indexes: IndexRegistry = IndexRegistry(self)
         self.rebuilds: RebuildWorker = RebuildWorker(self)
         self.generators: GeneratorRegistry = GeneratorRegistry(self)

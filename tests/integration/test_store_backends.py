@@ -5,15 +5,18 @@ The test-only hashing embedder keeps these fast; what is under test is the store
 
 from __future__ import annotations
 
+import datetime as dt
 from typing import Any
 
 import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
+from sqlalchemy import bindparam, select, update
 
 from service.errors import DocumentNotFound, Unauthenticated
 from service.store import repository
-from service.store.tables import Base
+from service.store.driver_query import DriverQuery
+from service.store.tables import ApiKeyRow, Base
 from service.usecases import answering, collections, documents, keys
 from service.usecases.callers import LOCAL_ADMIN, Role
 from service.usecases.runtime import Runtime
@@ -176,13 +179,42 @@ def test_a_key_authenticates_with_its_groups_and_collections_until_revoked(
         secret, _ = keys.create_key(
             session, role="writer", groups=["staff", "field"], collections=["bikes"], name="w"
         )
-    with runtime.connection() as connection:
-        caller = keys.authenticate(connection, secret)
+    caller = keys.authenticate(runtime.key_reader, secret)
     assert (caller.name, caller.role, caller.groups) == ("w", Role.WRITER, {"staff", "field"})
     assert caller.collections == {"bikes"}
     with runtime.transaction() as session:
         assert [k.last_used_at is not None for k in keys.list_keys(session)] == [True]
     with runtime.transaction() as session:
         keys.revoke_key(session, "w")
-    with runtime.connection() as connection, pytest.raises(Unauthenticated):
-        keys.authenticate(connection, secret)
+    with pytest.raises(Unauthenticated):
+        keys.authenticate(runtime.key_reader, secret)
+
+
+def test_the_driver_lookup_returns_what_core_returns_for_the_same_statement(
+    runtime: Runtime,
+) -> None:
+    with runtime.transaction() as session:
+        keys.create_key(session, role="reader", groups=[], collections=None, name="plain")
+        keys.create_key(session, role="admin", groups=["a", "b"], collections=["x"], name="full")
+        keys.revoke_key(session, "full")
+    with runtime.transaction() as session:
+        session.execute(
+            update(ApiKeyRow).values(last_used_at=dt.datetime(2024, 5, 1, tzinfo=dt.UTC))
+        )
+    statement = select(
+        ApiKeyRow.id,
+        ApiKeyRow.groups,
+        ApiKeyRow.collections,
+        ApiKeyRow.salt,
+        ApiKeyRow.last_used_at,
+        ApiKeyRow.revoked_at,
+    ).where(ApiKeyRow.name == bindparam("name"))
+    lookup = DriverQuery(runtime.engine, statement)
+    for name in ("plain", "full"):
+        with runtime.connection() as connection:
+            expected = tuple(connection.execute(statement, {"name": name}).one())
+        assert lookup.first({"name": name}) == expected
+        assert [type(value) for value in lookup.first({"name": name}) or ()] == [
+            type(value) for value in expected
+        ]
+    assert lookup.first({"name": "absent"}) is None

@@ -90,7 +90,10 @@ class TraceWriter:
                     target=self._run, name="excerpta-traces", daemon=True
                 )
                 self._thread.start()
-            self._condition.notify_all()
+            if len(self._held) == 1:
+                # The first of a batch starts its wait; waking the writer for every later one
+                # would cost each request a thread switch while the batch gathers.
+                self._condition.notify_all()
         if self._stopping:
             self._write_held()
 

@@ -11,13 +11,13 @@ a Core ``execute`` returns, on SQLite and PostgreSQL alike.
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from typing import Any, Unpack
+from typing import Any
 
 from sqlalchemy import Engine, Select
 
 
 class DriverQuery:
-    def __init__(self, engine: Engine, statement: Select[Unpack[tuple[Any, ...]]]) -> None:
+    def __init__(self, engine: Engine, statement: Select[*tuple[Any, ...]]) -> None:
         dialect = engine.dialect
         compiled = statement.compile(dialect=dialect)
         self._engine = engine

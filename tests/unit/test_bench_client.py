@@ -74,8 +74,13 @@ def server() -> Iterator[ThreadingHTTPServer]:
         httpd.server_close()
 
 
-def _client(httpd: ThreadingHTTPServer) -> KeepAliveClient:
-    return KeepAliveClient("127.0.0.1", httpd.server_address[1], timeout=5.0)
+@pytest.fixture
+def client(server: ThreadingHTTPServer) -> Iterator[KeepAliveClient]:
+    connection = KeepAliveClient("127.0.0.1", server.server_address[1], timeout=5.0)
+    try:
+        yield connection
+    finally:
+        connection.close()
 
 
 def _request(path: str, body: bytes) -> bytes:
@@ -83,67 +88,47 @@ def _request(path: str, body: bytes) -> bytes:
 
 
 def test_responses_with_a_length_come_back_whole_over_one_connection(
-    server: ThreadingHTTPServer,
+    client: KeepAliveClient,
 ) -> None:
-    client = _client(server)
-    try:
-        bodies = [b'{"n": %d}' % n + b" " * (n * 5000) for n in range(6)]
-        for body in bodies:
-            response = client.send(_request("/search", body))
-            assert response.status == 200
-            assert response.headers["content-type"] == "application/json"
-            echo = json.loads(response.body)
-            assert echo == {"path": "/search", "body": body.decode(), "authorization": "Bearer k"}
-    finally:
-        client.close()
+    bodies = [b'{"n": %d}' % n + b" " * (n * 5000) for n in range(6)]
+    for body in bodies:
+        response = client.send(_request("/search", body))
+        assert response.status == 200
+        assert response.headers["content-type"] == "application/json"
+        echo = json.loads(response.body)
+        assert echo == {"path": "/search", "body": body.decode(), "authorization": "Bearer k"}
     assert len(_Handler.connections) == 1
 
 
 def test_a_chunked_response_is_joined_and_its_trailers_skipped(
-    server: ThreadingHTTPServer,
+    client: KeepAliveClient,
 ) -> None:
-    client = _client(server)
-    try:
-        for _ in range(2):
-            response = client.send(_request("/chunked", b"[1, 2, 3]"))
-            assert json.loads(response.body)["body"] == "[1, 2, 3]"
-        assert client.send(_request("/after", b"{}")).status == 200
-    finally:
-        client.close()
+    for _ in range(2):
+        response = client.send(_request("/chunked", b"[1, 2, 3]"))
+        assert json.loads(response.body)["body"] == "[1, 2, 3]"
+    assert client.send(_request("/after", b"{}")).status == 200
 
 
 def test_a_body_ended_by_closing_is_read_and_the_next_request_reconnects(
-    server: ThreadingHTTPServer,
+    client: KeepAliveClient,
 ) -> None:
-    client = _client(server)
-    try:
-        response = client.send(_request("/until-close", b"{}"))
-        assert response.status == 200
-        assert json.loads(response.body)["path"] == "/until-close"
-        assert client.send(_request("/again", b"{}")).status == 200
-    finally:
-        client.close()
+    response = client.send(_request("/until-close", b"{}"))
+    assert response.status == 200
+    assert json.loads(response.body)["path"] == "/until-close"
+    assert client.send(_request("/again", b"{}")).status == 200
     assert len(_Handler.connections) == 2
 
 
-def test_an_error_status_is_a_response_not_a_failure(server: ThreadingHTTPServer) -> None:
-    client = _client(server)
-    try:
-        assert client.send(_request("/missing", b"{}")).status == 404
-    finally:
-        client.close()
+def test_an_error_status_is_a_response_not_a_failure(client: KeepAliveClient) -> None:
+    assert client.send(_request("/missing", b"{}")).status == 404
 
 
 def test_bytes_that_are_not_http_raise_a_protocol_error_and_the_client_recovers(
-    server: ThreadingHTTPServer,
+    client: KeepAliveClient,
 ) -> None:
-    client = _client(server)
-    try:
-        with pytest.raises(ProtocolError):
-            client.send(_request("/garbage", b"{}"))
-        assert client.send(_request("/fine", b"{}")).status == 200
-    finally:
-        client.close()
+    with pytest.raises(ProtocolError):
+        client.send(_request("/garbage", b"{}"))
+    assert client.send(_request("/fine", b"{}")).status == 200
 
 
 def test_a_refused_connection_raises_at_once() -> None:

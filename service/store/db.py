@@ -12,11 +12,15 @@ from alembic.config import Config
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.json_text import json_text
+
 MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
 
 
 def make_engine(url: str, *, schema: str | None = None) -> Engine:
     """Create an engine; SQLite gets WAL, foreign keys and a busy timeout on every connection.
+
+    JSON columns are written with ``json_text``: every query's trace body goes through it.
 
     ``schema`` pins PostgreSQL's search_path, so a test run (or a deployment) can keep its own
     tables apart from others in the same database.
@@ -25,13 +29,19 @@ def make_engine(url: str, *, schema: str | None = None) -> Engine:
         path = url.split("///", 1)[-1]
         if path and path != ":memory:":
             Path(path).parent.mkdir(parents=True, exist_ok=True)
-        engine = create_engine(url, connect_args={"check_same_thread": False, "timeout": 30})
+        engine = create_engine(
+            url,
+            connect_args={"check_same_thread": False, "timeout": 30},
+            json_serializer=json_text,
+        )
         event.listen(engine, "connect", _configure_sqlite)
         return engine
     connect_args: dict[str, Any] = {}
     if schema:
         connect_args["options"] = f"-csearch_path={schema}"
-    return create_engine(url, pool_pre_ping=True, connect_args=connect_args)
+    return create_engine(
+        url, pool_pre_ping=True, connect_args=connect_args, json_serializer=json_text
+    )
 
 
 def _configure_sqlite(dbapi_connection: Any, _record: Any) -> None:

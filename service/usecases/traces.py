@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from service.errors import TraceNotFound
+from service.json_text import json_text
 from service.store import repository
 from service.usecases.callers import Caller
 from service.usecases.runtime import Runtime
@@ -183,7 +184,7 @@ def _find(runtime: Runtime, trace_id: str) -> dict[str, Any] | None:
     held = runtime.traces.held(trace_id)
     if held is not None:
         # As the store would give it back: the body goes through JSON on its way in.
-        return {**held, "body": json.loads(json.dumps(held["body"]))}
+        return {**held, "body": json.loads(json_text(held["body"]))}
     with runtime.transaction() as session:
         row = repository.trace_by_id(session, trace_id)
         if row is None:

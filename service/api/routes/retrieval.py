@@ -18,6 +18,7 @@ from fastapi.responses import JSONResponse
 from service.api.deps import CallerDep, QueryPoolDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
 from service.api.query_pool import QueryPool
+from service.api.responses import QueryResponse
 from service.api.routing import StrictJsonRoute
 from service.api.schemas import (
     AnswerIn,
@@ -93,7 +94,7 @@ async def respond(
 ) -> JSONResponse:
     """Build the body and render it on the query pool, off the event loop."""
     make_body = QUERY_ROUTES[route].make_body
-    return await pool.run(lambda: JSONResponse(make_body(runtime, caller, name, body)))
+    return await pool.run(lambda: QueryResponse(make_body(runtime, caller, name, body)))
 
 
 @router.post("/search", response_model=SearchOut)

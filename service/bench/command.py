@@ -73,7 +73,12 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
         action="store_true",
         help="drive the real server over HTTP instead of the in-process run",
     )
-    parser.add_argument("--http-chunks", type=_positive, default=20_000)
+    parser.add_argument(
+        "--http-chunks",
+        type=_positive,
+        default=100_000,
+        help="chunks in the served collection; the HTTP targets are stated for 100,000",
+    )
     parser.add_argument(
         "--http-seconds", type=_positive_float, default=10.0, help="seconds per concurrency level"
     )

@@ -318,17 +318,14 @@ def search_requests(port: int, key: str, bodies: Sequence[bytes]) -> list[bytes]
     return [build_request("POST", SEARCH_PATH, headers, body) for body in bodies]
 
 
-def drive(
-    port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float
-) -> dict[str, Any]:
+def drive(port: int, requests: Sequence[bytes], *, clients: int, seconds: float) -> dict[str, Any]:
     """``clients`` threads sending requests back to back until the time is up."""
-    return _level(clients, _samples(port, key, bodies, clients=clients, seconds=seconds))
+    return _level(clients, _samples(port, requests, clients=clients, seconds=seconds))
 
 
 def _samples(
-    port: int, key: str, bodies: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
+    port: int, requests: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
 ) -> _Samples:
-    requests = search_requests(port, key, bodies)
     latencies: list[list[float]] = [[] for _ in range(clients)]
     errors: list[list[str]] = [[] for _ in range(clients)]
     start_line = threading.Barrier(clients + 1)
@@ -382,8 +379,7 @@ def _samples(
 
 def drive_alternating(
     port: int,
-    key: str,
-    bodies: Sequence[bytes],
+    requests: Sequence[bytes],
     *,
     seconds: float,
     reference: InProcessHybrid,
@@ -393,7 +389,7 @@ def drive_alternating(
     seen = _Samples()
     for _ in range(rounds):
         sent = len(seen.latencies_ms) + len(seen.errors)
-        seen.add(_samples(port, key, bodies, clients=1, seconds=seconds / rounds, first=sent))
+        seen.add(_samples(port, requests, clients=1, seconds=seconds / rounds, first=sent))
         reference.time_round()
     return _level(1, seen)
 
@@ -454,9 +450,10 @@ def run_http(
             server.start()
             server.wait_ready(READY_TIMEOUT_SECONDS)
             bodies = request_bodies(queries, top_k=top_k, depth=depth)
+            requests = search_requests(server.port, key, bodies)
             first = KeepAliveClient("127.0.0.1", server.port, FIRST_QUERY_TIMEOUT_SECONDS)
             try:
-                response = first.send(search_requests(server.port, key, bodies[:1])[0])
+                response = first.send(requests[0])
             finally:
                 first.close()
             if response.status != 200:
@@ -468,12 +465,10 @@ def run_http(
                 progress(f"driving {clients_at_once} concurrent client(s) for {seconds:g} s")
                 if clients_at_once == 1:
                     level = drive_alternating(
-                        server.port, key, bodies, seconds=seconds, reference=reference
+                        server.port, requests, seconds=seconds, reference=reference
                     )
                 else:
-                    level = drive(
-                        server.port, key, bodies, clients=clients_at_once, seconds=seconds
-                    )
+                    level = drive(server.port, requests, clients=clients_at_once, seconds=seconds)
                 levels.append(level)
         finally:
             server.stop()

@@ -31,7 +31,7 @@ class DriverQuery:
 
     def first(self, parameters: Mapping[str, Any]) -> tuple[Any, ...] | None:
         """The first row's values, or None; ``parameters`` go to the driver as given."""
-        values = self._compiled.construct_params(dict(parameters))
+        values = self._compiled.construct_params(parameters)
         bound = values if self._order is None else tuple(values[name] for name in self._order)
         connection = self._engine.raw_connection()
         try:

@@ -361,19 +361,6 @@ def store_embeddings(session: Session, embedder: str, vectors: dict[str, np.ndar
 # connection; building a statement, or going through an ORM session, costs several times as
 # much as running it.
 
-_KEY_FOR_LOOKUP = select(
-    ApiKeyRow.id,
-    ApiKeyRow.name,
-    ApiKeyRow.salt,
-    ApiKeyRow.secret_hash,
-    ApiKeyRow.role,
-    ApiKeyRow.groups,
-    ApiKeyRow.collections,
-    ApiKeyRow.last_used_at,
-    ApiKeyRow.revoked_at,
-).where(ApiKeyRow.lookup == bindparam("lookup"))
-_INSERT_TRACE = insert(TraceRow)
-
 
 class StoredKey(NamedTuple):
     id: int
@@ -385,6 +372,13 @@ class StoredKey(NamedTuple):
     collections: list[str] | None
     last_used_at: dt.datetime | None
     revoked_at: dt.datetime | None
+
+
+# The columns in ``StoredKey``'s order, so a row unpacks into it field by field.
+_KEY_FOR_LOOKUP = select(*(getattr(ApiKeyRow, name) for name in StoredKey._fields)).where(
+    ApiKeyRow.lookup == bindparam("lookup")
+)
+_INSERT_TRACE = insert(TraceRow)
 
 
 class KeyReader:

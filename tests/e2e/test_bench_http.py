@@ -18,7 +18,7 @@ import httpx
 import pytest
 
 from service.bench.command import add_bench_arguments, run_bench_command
-from service.bench.http import drive, free_port
+from service.bench.http import drive, free_port, search_requests
 from tests.conftest import need
 
 
@@ -67,7 +67,8 @@ def test_http_bench_serves_every_level_without_errors_and_stops_the_server(
 
 
 def test_clients_that_cannot_connect_are_counted_as_errors_and_the_level_still_ends() -> None:
-    level = drive(free_port(), "no-key", [b"{}"], clients=3, seconds=0.2)
+    port = free_port()
+    level = drive(port, search_requests(port, "no-key", [b"{}"]), clients=3, seconds=0.2)
     assert level["requests"] == 0
     assert level["errors"] == 3
     assert all("ConnectionRefusedError" in sample for sample in level["error_samples"])

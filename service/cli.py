@@ -60,7 +60,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
         threadpool_limits(limits=settings.blas_threads, user_api="blas")
     app = create_app(runtime)
-    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=True)
+    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=False)
     return 0
 
 

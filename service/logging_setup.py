@@ -11,6 +11,16 @@ _SECRETS = (
     re.compile(r"(?i)(bearer\s+)[^\s'\",]+"),
 )
 _extra_secrets: set[str] = set()
+# A logger's own filters do not apply to its children's records, so each is named.
+_REQUEST_LOGGERS = (
+    "uvicorn",
+    "uvicorn.access",
+    "uvicorn.error",
+    "httpx",
+    "httpcore",
+    "excerpta",
+    "excerpta.access",
+)
 
 
 def register_secret(value: str) -> None:
@@ -56,7 +66,7 @@ def install_redaction() -> None:
     root = logging.getLogger()
     for handler in root.handlers:
         handler.addFilter(redacting)
-    for name in ("uvicorn", "uvicorn.access", "uvicorn.error", "httpx", "httpcore", "excerpta"):
+    for name in _REQUEST_LOGGERS:
         logger = logging.getLogger(name)
         if not any(isinstance(f, RedactingFilter) for f in logger.filters):
             logger.addFilter(redacting)

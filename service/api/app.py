@@ -8,7 +8,9 @@ from typing import Any
 
 from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
+from starlette.types import Receive, Scope, Send
 
+from service.api.access_log import AccessLog
 from service.api.body import BodySizeLimit
 from service.api.errors import install_error_handlers
 from service.api.fast_path import QueryFastPath
@@ -16,6 +18,15 @@ from service.api.query_pool import QueryPool
 from service.api.routes import collections, documents, health, retrieval, traces
 from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
+
+
+class QueriesFirstApp(FastAPI):
+    """The application: each request is logged once answered, and queries skip the stack."""
+
+    front: AccessLog
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        await self.front(scope, receive, send)
 
 
 def create_app(runtime: Runtime) -> FastAPI:
@@ -32,7 +43,7 @@ def create_app(runtime: Runtime) -> FastAPI:
         runtime.close()
 
     docs: dict[str, Any] = {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
-    app = FastAPI(
+    app = QueriesFirstApp(
         title="excerpta",
         version="0.1.0",
         description="Retrieval with filters, access control, cited context and traces.",
@@ -47,9 +58,16 @@ def create_app(runtime: Runtime) -> FastAPI:
     # The retrieval routes come first: they are the busiest, and routes are matched in order.
     for module in (retrieval, health, collections, documents, traces):
         app.include_router(module.router)
-    # Innermost, so the body limit and CORS apply to the queries it serves; CORS is outermost,
-    # so a browser can read even a refusal of an oversized body.
-    app.add_middleware(QueryFastPath, runtime=runtime, pool=query_pool, rate_limiter=rate_limiter)
+    app.front = AccessLog(
+        QueryFastPath(
+            super(QueriesFirstApp, app).__call__,
+            runtime=runtime,
+            pool=query_pool,
+            rate_limiter=rate_limiter,
+            body_limit=settings.max_body_bytes,
+        )
+    )
+    # CORS is outermost, so a browser can read even a refusal of an oversized body.
     app.add_middleware(BodySizeLimit, limit=settings.max_body_bytes)
     if settings.cors_origins:
         app.add_middleware(

@@ -88,7 +88,9 @@ def test_a_streamed_body_over_the_limit_without_content_length_is_413(
     assert api.get("/v1/collections/bikes").json()["documents"] == 0
 
 
-async def _call_with_chunks(app: Any, chunks: list[bytes]) -> tuple[int, bytes]:
+async def _call_with_chunks(
+    app: Any, chunks: list[bytes], path: str = "/v1/collections/bikes/documents"
+) -> tuple[int, bytes]:
     """Drive the ASGI app with a body split into messages and no Content-Length header."""
     pending = [
         {"type": "http.request", "body": chunk, "more_body": index < len(chunks) - 1}
@@ -108,8 +110,8 @@ async def _call_with_chunks(app: Any, chunks: list[bytes]) -> tuple[int, bytes]:
         "http_version": "1.1",
         "method": "POST",
         "scheme": "http",
-        "path": "/v1/collections/bikes/documents",
-        "raw_path": b"/v1/collections/bikes/documents",
+        "path": path,
+        "raw_path": path.encode(),
         "query_string": b"",
         "root_path": "",
         "headers": [(b"content-type", b"application/json"), (b"host", b"testserver")],
@@ -272,6 +274,23 @@ def test_cors_and_the_body_limit_apply_to_the_query_routes(
     too_large = api.post(path, json={"query": "brakes " * 1000}, headers=origin)
     assert too_large.status_code == 413
     assert too_large.headers["access-control-allow-origin"] == "https://app.example.invalid"
+
+
+@pytest.mark.parametrize("route", ["search", "context", "answer"])
+def test_the_body_limit_applies_to_the_query_routes_declared_or_streamed(
+    client_for: Callable[..., Api], make_runtime: Callable[..., Runtime], route: str
+) -> None:
+    import anyio
+
+    path = f"/v1/collections/bikes/{route}"
+    declared = client_for(max_body_bytes=4096).post(path, json={"query": "brakes " * 1000})
+    assert declared.status_code == 413
+    assert declared.json()["error"]["code"] == "payload_too_large"
+    app = create_app(make_runtime(max_body_bytes=100))
+    query = b'{"query": "' + b"brakes " * 20 + b'"}'
+    status, body = anyio.run(_call_with_chunks, app, [query[:60], query[60:]], path)
+    assert status == 413
+    assert json.loads(body)["error"]["code"] == "payload_too_large"
 
 
 @pytest.mark.parametrize("path", ["/docs", "/redoc"])

@@ -1,7 +1,7 @@
 """No API key, authorization header or generator secret reaches any logger.
 
 The service runs under a real uvicorn server on a loopback port with the real logging setup, so
-uvicorn's access and error loggers, httpx/httpcore and the service's own loggers all see the
+the access log, uvicorn's error logger, httpx/httpcore and the service's own loggers all see the
 traffic; every record of every logger is captured at DEBUG and searched for the secrets.
 """
 
@@ -26,7 +26,7 @@ from tests.api_helpers import BIKE_SCHEMA, make_key
 CHAT_SECRET = "sk-chat-secret-7f3a9c2e51d84b60a1"
 UNKNOWN_KEY = "xk_0123456789abcdef_" + "Q" * 43
 GARBAGE_KEY = "garbage-key-5d1e8b7c"
-CAPTURED_LOGGERS = ("", "uvicorn", "uvicorn.access", "uvicorn.error", "httpx", "httpcore")
+CAPTURED_LOGGERS = ("", "uvicorn", "uvicorn.error", "excerpta.access", "httpx", "httpcore")
 
 
 def free_port() -> int:
@@ -60,7 +60,7 @@ def served(
     )
     port = free_port()
     config = uvicorn.Config(
-        create_app(runtime), host="127.0.0.1", port=port, log_config=None, access_log=True
+        create_app(runtime), host="127.0.0.1", port=port, log_config=None, access_log=False
     )
     server = uvicorn.Server(config)
     thread = threading.Thread(target=server.run, daemon=True)
@@ -127,7 +127,7 @@ def test_no_key_or_generator_secret_reaches_any_logger(
     logged = everything_logged(caplog)
     names = {record.name for record in caplog.records}
     # The capture really saw the server, the client library and the generator's retry.
-    assert "uvicorn.access" in names and "httpx" in names
+    assert "excerpta.access" in names and "httpx" in names
     assert any("retrying" in record.getMessage() for record in caplog.records)
     printed = capfd.readouterr()
     for secret in (served.admin_key, served.reader_key, UNKNOWN_KEY, GARBAGE_KEY, CHAT_SECRET):

@@ -19,11 +19,18 @@ row count that is a multiple of ``ROW_BLOCK``: the matrix keeps that many rows o
 (the padding is read and its scores dropped), and a gathered set is padded with copies of its
 first row.
 
+A full scan can be begun ahead of its use (``begin_full_scan``): it runs on a scan thread, and
+the matrix product releases the interpreter lock, so the scan proceeds beside the Python work of
+its query. The products are computed by the same expression either way, so they are equal bit
+for bit.
+
 The matrix only grows by appending, into a buffer whose capacity doubles; see ``buffers``.
 """
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Literal
 
 import numpy as np
@@ -35,6 +42,24 @@ Metric = Literal["cosine", "dot", "euclidean"]
 METRICS: tuple[Metric, ...] = ("cosine", "dot", "euclidean")
 ROW_BLOCK = 64
 GATHER_BELOW_FRACTION = 0.15
+# Scans begun ahead run on these threads, started as needed; more would only share two cores.
+SCAN_THREADS = 8
+
+
+def _scan_pool() -> ThreadPoolExecutor:
+    return ThreadPoolExecutor(SCAN_THREADS, thread_name_prefix="excerpta-scan")
+
+
+_scans = _scan_pool()
+
+
+def _fresh_scan_pool_after_fork() -> None:
+    # A forked child has none of its parent's threads, so the inherited pool would never run.
+    global _scans
+    _scans = _scan_pool()
+
+
+os.register_at_fork(after_in_child=_fresh_scan_pool_after_fork)
 
 
 class VectorMatrix:
@@ -144,10 +169,24 @@ class VectorMatrix:
             query = query / norm
         return query.astype(np.float32)
 
-    def score(self, query: np.ndarray, candidate_mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def scans_every_row(self, candidates: int) -> bool:
+        """Whether ``score`` multiplies the whole matrix for this many candidates."""
+        return candidates >= GATHER_BELOW_FRACTION * self._n_rows
+
+    def begin_full_scan(self, query: np.ndarray) -> Future[np.ndarray]:
+        """Every row's product with ``query`` (from ``prepare_query``), on a scan thread."""
+        return _scans.submit(self._full_products, query)
+
+    def score(
+        self,
+        query: np.ndarray,
+        candidate_mask: np.ndarray,
+        full_scan: Future[np.ndarray] | None = None,
+    ) -> tuple[np.ndarray, np.ndarray]:
         """Rows where ``candidate_mask`` is true (ascending) and their scores (float32).
 
-        ``query`` is what ``prepare_query`` returned.
+        ``query`` is what ``prepare_query`` returned; ``full_scan``, when given, is
+        ``begin_full_scan(query)`` and is used where every row is scanned.
         """
         n = self._n_rows
         if candidate_mask.shape != (n,) or candidate_mask.dtype != np.bool_:
@@ -156,15 +195,19 @@ class VectorMatrix:
         count = len(rows)
         if count == 0:
             return rows, np.zeros(0, dtype=np.float32)
-        if count < GATHER_BELOW_FRACTION * n:
+        if not self.scans_every_row(count):
             padded = np.full(round_up(count, ROW_BLOCK), rows[0], dtype=np.int64)
             padded[:count] = rows
             products = (np.take(self._buffer, padded, axis=0) @ query)[:count]
         else:
-            products = (self._buffer[: round_up(n, ROW_BLOCK)] @ query)[:n]
+            products = self._full_products(query) if full_scan is None else full_scan.result()
             if count < n:
                 products = products[rows]
         return rows, self._finish(products, rows, query)
+
+    def _full_products(self, query: np.ndarray) -> np.ndarray:
+        n = self._n_rows
+        return (self._buffer[: round_up(n, ROW_BLOCK)] @ query)[:n]
 
     def _finish(self, products: np.ndarray, rows: np.ndarray, query: np.ndarray) -> np.ndarray:
         if self.metric != "euclidean":

@@ -8,7 +8,9 @@ mask only decides which rows compete, so filtering never changes a row's score.
 
 from __future__ import annotations
 
+import time
 from collections.abc import Sequence
+from concurrent.futures import Future
 from dataclasses import dataclass
 
 import numpy as np
@@ -96,6 +98,26 @@ def lexical_ranking(
     return _ranking("lexical", snapshot, rows, match.scores[rows], depth)
 
 
+@dataclass(frozen=True, eq=False)
+class SemanticScan:
+    """A semantic ranking's prepared query and, where it scans every row, that scan under way."""
+
+    query: np.ndarray
+    full_scan: Future[np.ndarray] | None
+    started: float
+
+
+def begin_semantic_ranking(
+    snapshot: IndexSnapshot, query_vector: np.ndarray | Sequence[float], candidates: int
+) -> SemanticScan:
+    """Check and prepare the query; if every row will be scanned, begin that on a scan thread."""
+    started = time.perf_counter()
+    vectors = snapshot.vectors
+    query = vectors.prepare_query(np.asarray(query_vector))
+    full_scan = vectors.begin_full_scan(query) if vectors.scans_every_row(candidates) else None
+    return SemanticScan(query, full_scan, started)
+
+
 def semantic_ranking(
     snapshot: IndexSnapshot,
     query_vector: np.ndarray | Sequence[float],
@@ -103,8 +125,15 @@ def semantic_ranking(
     depth: int,
 ) -> Ranking:
     """Exact similarity ranking of all candidates, cut at ``depth``."""
-    vectors = snapshot.vectors
-    rows, scores = vectors.score(vectors.prepare_query(np.asarray(query_vector)), candidate_mask)
+    query = snapshot.vectors.prepare_query(np.asarray(query_vector))
+    scan = SemanticScan(query, None, time.perf_counter())
+    return finish_semantic_ranking(snapshot, scan, candidate_mask, depth)
+
+
+def finish_semantic_ranking(
+    snapshot: IndexSnapshot, scan: SemanticScan, candidate_mask: np.ndarray, depth: int
+) -> Ranking:
+    rows, scores = snapshot.vectors.score(scan.query, candidate_mask, scan.full_scan)
     return _ranking("semantic", snapshot, rows, scores, depth)
 
 

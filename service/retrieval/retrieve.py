@@ -14,10 +14,12 @@ from service.index.collection_index import IndexSnapshot
 from service.index.lexical import DEFAULT_EPSILON, Bm25Variant
 from service.retrieval.ranking import (
     Ranking,
+    SemanticScan,
+    begin_semantic_ranking,
     check_candidate_mask,
+    finish_semantic_ranking,
     fuse_rrf,
     lexical_ranking,
-    semantic_ranking,
 )
 
 Mode = Literal["hybrid", "lexical", "semantic"]
@@ -73,11 +75,17 @@ def retrieve(
     bm25_variant: Bm25Variant,
     epsilon: float = DEFAULT_EPSILON,
     trace_top: int = 10,
+    semantic_scan: SemanticScan | None = None,
 ) -> RetrievalResult:
     """Rank the candidates as ``mode`` asks and return the best ``top_k``.
 
     ``candidate_mask`` is filter AND time window AND access over the snapshot's rows (tombstoned
     rows are dropped here in any case). ``depth`` below ``top_k`` is raised to ``top_k``.
+
+    The semantic ranking begins first: where it scans every row, the scan runs on a scan thread
+    beside the lexical ranking, so the two stages' times overlap in hybrid mode. A caller that
+    has the candidates and the query vector earlier passes ``begin_semantic_ranking``'s result
+    as ``semantic_scan``, and the scan runs beside its own work too.
     """
     if mode not in MODES:
         raise InvalidRequest(f"mode must be one of {', '.join(MODES)}", field="mode")
@@ -89,6 +97,12 @@ def retrieve(
     stages: list[StageTrace] = []
     rankings: dict[str, Ranking] = {}
 
+    if mode == "lexical":
+        semantic_scan = None
+    elif semantic_scan is None:
+        if query_vector is None:
+            raise InvalidRequest("semantic ranking needs a query vector", field="query_vector")
+        semantic_scan = begin_semantic_ranking(snapshot, query_vector, candidates)
     if mode in ("lexical", "hybrid"):
         started = time.perf_counter()
         lexical = lexical_ranking(
@@ -96,13 +110,10 @@ def retrieve(
         )
         rankings["lexical"] = lexical
         stages.append(_stage(snapshot, lexical, started, candidates, trace_top))
-    if mode in ("semantic", "hybrid"):
-        if query_vector is None:
-            raise InvalidRequest("semantic ranking needs a query vector", field="query_vector")
-        started = time.perf_counter()
-        semantic = semantic_ranking(snapshot, query_vector, mask, depth)
+    if semantic_scan is not None:
+        semantic = finish_semantic_ranking(snapshot, semantic_scan, mask, depth)
         rankings["semantic"] = semantic
-        stages.append(_stage(snapshot, semantic, started, candidates, trace_top))
+        stages.append(_stage(snapshot, semantic, semantic_scan.started, candidates, trace_top))
 
     if mode == "hybrid":
         started = time.perf_counter()

@@ -17,6 +17,7 @@ from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
 from service.generation.base import GeneratedAnswer, Generator
 from service.packing.packer import PackCandidate, PackedContext, pack_context
+from service.retrieval.ranking import SemanticScan, begin_semantic_ranking
 from service.retrieval.retrieve import Mode, RetrievalResult, retrieve
 from service.store import repository
 from service.usecases.callers import Caller, Role
@@ -63,33 +64,34 @@ def _retrieve(
     candidate_filter = build_candidate_filter(options, view.facts.schema)
     # A trace counts only the rows its caller may see, like every other count.
     mask, visible_rows = view.candidates(candidate_filter.node, caller.visible_groups)
+    candidates = int(np.count_nonzero(mask))
     recorder.stage(
-        "filter",
-        timed(started),
-        candidates=int(np.count_nonzero(mask)),
-        rows=visible_rows,
-        **candidate_filter.trace,
+        "filter", timed(started), candidates=candidates, rows=visible_rows, **candidate_filter.trace
     )
 
-    query_tokens: list[str] = []
-    if options.mode != "semantic":
-        query_tokens = view.analyzer.tokens(options.query)
-    query_vector: np.ndarray | None = None
+    semantic_scan: SemanticScan | None = None
     if options.mode != "lexical":
         embed_started = time.perf_counter()
         if options.query_vector is not None:
             query_vector = as_query_vector(options.query_vector)
         else:
             query_vector = runtime.embedder.embed_query(options.query)
+        embed_milliseconds = timed(embed_started)
+        # Begun before the trace notes and the query's analysis, which then run beside the scan;
+        # begun later, inside retrieve, one client's median over HTTP was about 1 ms higher.
+        semantic_scan = begin_semantic_ranking(view.snapshot, query_vector, candidates)
         recorder.stage(
             "query_embedding",
-            timed(embed_started),
+            embed_milliseconds,
             source="query_vector" if options.query_vector is not None else runtime.embedder.name,
         )
+    query_tokens: list[str] = []
+    if options.mode != "semantic":
+        query_tokens = view.analyzer.tokens(options.query)
     result = retrieve(
         view.snapshot,
         query_tokens=query_tokens,
-        query_vector=query_vector,
+        query_vector=None,
         candidate_mask=mask,
         mode=cast(Mode, options.mode),
         top_k=max(options.depth, options.top_k) if whole_ranking else options.top_k,
@@ -98,6 +100,7 @@ def _retrieve(
         k1=view.k1 if options.k1 is None else options.k1,
         b=view.b if options.b is None else options.b,
         bm25_variant=view.bm25_variant,
+        semantic_scan=semantic_scan,
     )
     for stage in result.stages:
         recorder.stage(

@@ -1,3 +1,7 @@
+import os
+import threading
+import time
+
 import numpy as np
 import pytest
 
@@ -38,6 +42,56 @@ def test_gathering_and_scanning_give_bit_identical_scores(count: int, fraction: 
     _, full = matrix.score(query, np.ones(count, dtype=bool))
     rows, filtered = matrix.score(query, mask)
     assert np.array_equal(filtered, full[rows])
+
+
+@pytest.mark.parametrize("metric", ["cosine", "dot", "euclidean"])
+@pytest.mark.parametrize("fraction", [0.15, 0.5, 1.0])
+def test_a_scan_begun_on_a_scan_thread_gives_bit_identical_scores(
+    metric: str, fraction: float, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    count = 4099
+    rng = np.random.default_rng(7)
+    matrix = VectorMatrix.build(random_rows(count, 48), metric=metric, dimension=48)  # type: ignore[arg-type]
+    query = matrix.prepare_query(rng.standard_normal(48))
+    mask = np.zeros(count, dtype=bool)
+    mask[rng.permutation(count)[: int(np.ceil(fraction * count))]] = True
+    assert matrix.scans_every_row(int(mask.sum()))
+    threads: list[str] = []
+    full_products = VectorMatrix._full_products
+
+    def noting_thread(self: VectorMatrix, q: np.ndarray) -> np.ndarray:
+        threads.append(threading.current_thread().name)
+        return full_products(self, q)
+
+    monkeypatch.setattr(VectorMatrix, "_full_products", noting_thread)
+    begun = matrix.begin_full_scan(query)
+    rows, scores = matrix.score(query, mask, begun)
+    want_rows, want = matrix.score(query, mask)
+    assert np.array_equal(rows, want_rows)
+    assert np.array_equal(scores, want)
+    assert threads[0].startswith("excerpta-scan") and threads[1] == threading.current_thread().name
+
+
+def test_a_forked_child_can_still_begin_a_scan() -> None:
+    matrix = VectorMatrix.build(random_rows(300, 8), metric="dot", dimension=8)
+    query = matrix.prepare_query(np.ones(8))
+    expected = matrix.begin_full_scan(query).result()
+    time.sleep(0.2)  # lets the scan thread go idle, which an inherited pool would count on
+    child = os.fork()
+    if child == 0:
+        try:
+            same = np.array_equal(matrix.begin_full_scan(query).result(timeout=20), expected)
+            os._exit(0 if same else 1)
+        except BaseException:
+            os._exit(2)
+    _, status = os.waitpid(child, 0)
+    assert os.waitstatus_to_exitcode(status) == 0
+
+
+def test_every_row_is_scanned_exactly_from_the_gather_cut_over() -> None:
+    matrix = VectorMatrix.build(random_rows(1000, 8), metric="dot", dimension=8)
+    assert not matrix.scans_every_row(149)
+    assert matrix.scans_every_row(150)
 
 
 def test_both_paths_are_used_on_either_side_of_the_cut_over(

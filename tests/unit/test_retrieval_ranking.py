@@ -125,6 +125,8 @@ def test_hybrid_retrieval_reports_ranks_within_depth_and_raises_depth_to_top_k()
     semantic_ranks = semantic.rank_of()
     expected = fuse_rrf([lexical, semantic], 60, 15)
     assert [h.row for h in result.hits] == expected.rows[:15].tolist()
+    # The semantic scan ran on a scan thread; its scores are the same to the last bit.
+    assert [h.score for h in result.hits] == expected.scores[:15].tolist()
     for hit in result.hits:
         assert hit.ranks == {
             "lexical": lexical_ranks.get(hit.row),

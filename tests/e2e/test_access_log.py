@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import logging
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import Any
 
 import anyio
@@ -66,6 +66,30 @@ async def _call(
     await app(scope, receive, send)
 
 
+@pytest.fixture
+def bikes_app(make_runtime: Callable[..., Runtime]) -> tuple[Any, str]:
+    """An app with the bikes collection, and an admin key."""
+    runtime = make_runtime()
+    key = make_key(runtime, "admin", name="admin")
+    app = create_app(runtime)
+    anyio.run(_call, app, "PUT", "/v1/collections/bikes", key, json.dumps(BIKE_SCHEMA).encode(), [])
+    return app, key
+
+
+@pytest.fixture
+def access_events(bikes_app: tuple[Any, str]) -> Iterator[list[str]]:
+    """What the access log writes from here on, in one list with what a test's send records."""
+    events: list[str] = []
+    handler = EventsHandler(events)
+    access = logging.getLogger("excerpta.access")
+    level = access.level
+    access.addHandler(handler)
+    access.setLevel(logging.INFO)
+    yield events
+    access.removeHandler(handler)
+    access.setLevel(level)
+
+
 @pytest.mark.parametrize(
     ("method", "path", "body", "status", "target"),
     [
@@ -77,26 +101,17 @@ async def _call(
     ],
 )
 def test_each_request_is_logged_once_after_its_response(
-    make_runtime: Callable[..., Runtime],
+    bikes_app: tuple[Any, str],
+    access_events: list[str],
     method: str,
     path: str,
     body: bytes,
     status: int,
     target: str | None,
 ) -> None:
-    runtime = make_runtime()
-    key = make_key(runtime, "admin", name="admin")
-    app = create_app(runtime)
-    events: list[str] = []
-    anyio.run(_call, app, "PUT", "/v1/collections/bikes", key, json.dumps(BIKE_SCHEMA).encode(), [])
-    handler = EventsHandler(events)
-    access = logging.getLogger("excerpta.access")
-    access.addHandler(handler)
-    access.setLevel(logging.INFO)
-    try:
-        anyio.run(_call, app, method, path, key, body, events)
-    finally:
-        access.removeHandler(handler)
+    app, key = bikes_app
+    anyio.run(_call, app, method, path, key, body, access_events)
+    events = access_events
     assert events[0] == f"start {status}" and events[1].startswith("last body")
     assert len(events) == 3 and events[2].startswith("log ")
     line = events[2].removeprefix("log ")
@@ -108,30 +123,21 @@ def test_each_request_is_logged_once_after_its_response(
 
 @pytest.mark.parametrize("origin", [(), ((b"origin", b"https://app.example.invalid"),)])
 def test_an_unexpected_failure_is_a_plain_500_raised_to_the_server_and_logged(
-    make_runtime: Callable[..., Runtime],
+    bikes_app: tuple[Any, str],
+    access_events: list[str],
     monkeypatch: pytest.MonkeyPatch,
     origin: tuple[tuple[bytes, bytes], ...],
 ) -> None:
     """Alike on the query fast path (no Origin) and through the framework's stack (Origin)."""
-    runtime = make_runtime()
-    key = make_key(runtime, "admin", name="admin")
-    app = create_app(runtime)
-    anyio.run(_call, app, "PUT", "/v1/collections/bikes", key, json.dumps(BIKE_SCHEMA).encode(), [])
+    app, key = bikes_app
 
     def broken_search(*_: Any, **__: Any) -> Any:
         raise RuntimeError("the index is broken")
 
     monkeypatch.setattr("service.usecases.answering.search", broken_search)
-    events: list[str] = []
-    handler = EventsHandler(events)
-    access = logging.getLogger("excerpta.access")
-    access.addHandler(handler)
-    access.setLevel(logging.INFO)
-    try:
-        with pytest.raises(RuntimeError, match="the index is broken"):
-            path = "/v1/collections/bikes/search"
-            anyio.run(_call, app, "POST", path, key, b'{"query": "brakes"}', events, origin)
-    finally:
-        access.removeHandler(handler)
-    assert events[:2] == ["start 500", "last body Internal Server Error"]
-    assert len(events) == 3 and '"POST /v1/collections/bikes/search HTTP/1.1" 500 ' in events[2]
+    path = "/v1/collections/bikes/search"
+    with pytest.raises(RuntimeError, match="the index is broken"):
+        anyio.run(_call, app, "POST", path, key, b'{"query": "brakes"}', access_events, origin)
+    assert access_events[:2] == ["start 500", "last body Internal Server Error"]
+    assert len(access_events) == 3
+    assert '"POST /v1/collections/bikes/search HTTP/1.1" 500 ' in access_events[2]

@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable
+
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.api.errors import error_response
 from service.errors import PayloadTooLarge
 
 
-async def read_body(receive: Receive, limit: int | None = None) -> tuple[list[Message], bool]:
+async def read_body(receive: Receive, limit: int) -> tuple[list[Message], bool]:
     """The body's messages, and whether they stayed within ``limit`` bytes."""
     messages: list[Message] = []
     received = 0
@@ -18,10 +20,18 @@ async def read_body(receive: Receive, limit: int | None = None) -> tuple[list[Me
         if message["type"] != "http.request":
             return messages, True
         received += len(message.get("body", b""))
-        if limit is not None and received > limit:
+        if received > limit:
             return messages, False
         if not message.get("more_body", False):
             return messages, True
+
+
+def declares_more_than(headers: Iterable[tuple[bytes, bytes]], limit: int) -> bool:
+    """Whether a Content-Length header announces a body over ``limit`` bytes."""
+    return any(
+        name == b"content-length" and value.isdigit() and int(value) > limit
+        for name, value in headers
+    )
 
 
 def body_of(messages: list[Message]) -> bytes:
@@ -50,10 +60,9 @@ class BodySizeLimit:
             await self.app(scope, receive, send)
             return
         too_large = PayloadTooLarge(f"The request body may hold at most {self.limit} bytes.")
-        for name, value in scope.get("headers", []):
-            if name == b"content-length" and value.isdigit() and int(value) > self.limit:
-                await error_response(too_large)(scope, receive, send)
-                return
+        if declares_more_than(scope.get("headers", []), self.limit):
+            await error_response(too_large)(scope, receive, send)
+            return
         messages, within_limit = await read_body(receive, self.limit)
         if not within_limit:
             await error_response(too_large)(scope, receive, send)

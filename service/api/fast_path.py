@@ -21,7 +21,7 @@ from pydantic import ValidationError
 from starlette.responses import PlainTextResponse
 from starlette.types import ASGIApp, Receive, Scope, Send
 
-from service.api.body import body_of, read_body, replay
+from service.api.body import body_of, declares_more_than, read_body, replay
 from service.api.deps import caller_for
 from service.api.errors import error_response
 from service.api.query_pool import QueryPool
@@ -70,7 +70,7 @@ class QueryFastPath:
             return
         name, route = match.groups()
         headers = dict(reversed(scope["headers"]))  # the first of repeated headers wins
-        if b"origin" in headers or _declared_length(headers) > self.body_limit:
+        if b"origin" in headers or declares_more_than(scope["headers"], self.body_limit):
             await self.app(scope, receive, send)
             return
         messages, within_limit = await read_body(receive, self.body_limit)
@@ -90,11 +90,6 @@ class QueryFastPath:
             await _INTERNAL_ERROR(scope, receive, send)
             raise
         await response(scope, receive, send)
-
-
-def _declared_length(headers: dict[bytes, bytes]) -> int:
-    declared = headers.get(b"content-length", b"")
-    return int(declared) if declared.isdigit() else 0
 
 
 def _media_type(content_type: bytes) -> bytes:

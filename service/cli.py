@@ -276,17 +276,18 @@ def cmd_search(args: argparse.Namespace) -> int:
     finally:
         runtime.close()
     if args.json:
-        _print_json(result)
+        from service.api.render import search_json
+
+        _print_json(search_json(result))
         return 0
-    print(f"{result['candidates']} candidates; trace {result['trace_id']}")
+    print(f"{result.candidates} candidates; trace {result.trace_id}")
     print(f"{'rank':>4} {'score':>9} {'lex':>4} {'sem':>4}  {'document':<28} {'section':<24} text")
-    for rank, hit in enumerate(result["hits"], start=1):
-        ranks = hit["ranks"]
-        words = " ".join(hit["text"].split()[:10])
+    for rank, hit in enumerate(result.hits, start=1):
+        words = " ".join(hit.text.split()[:10])
         print(
-            f"{rank:>4} {hit['score']:>9.4f} {ranks.get('lexical') or '-':>4} "
-            f"{ranks.get('semantic') or '-':>4}  {hit['document_id'][:28]:<28} "
-            f"{hit['section'][:24]:<24} {words}"
+            f"{rank:>4} {hit.score:>9.4f} {hit.ranks.lexical or '-':>4} "
+            f"{hit.ranks.semantic or '-':>4}  {hit.document_id[:28]:<28} "
+            f"{hit.section[:24]:<24} {words}"
         )
     return 0
 
@@ -305,18 +306,20 @@ def cmd_ask(args: argparse.Namespace) -> int:
     finally:
         runtime.close()
     if args.json:
-        _print_json(result)
+        from service.api.render import answer_json
+
+        _print_json(answer_json(result))
         return 0
-    if result["answer"] is None:
-        print(f"No answer ({result['reason']}).")
+    if result.answer is None:
+        print(f"No answer ({result.reason}).")
     else:
-        print(result["answer"])
+        print(result.answer)
     print()
-    for citation in result["citations"]:
-        section = f" — {citation['section']}" if citation["section"] else ""
-        print(f"[{citation['marker']}] {citation['title']}{section} ({citation['document_id']})")
-    if result.get("caution"):
-        print(f"\nCaution: {result['caution']}")
+    for citation in result.citations:
+        section = f" — {citation.section}" if citation.section else ""
+        print(f"[{citation.marker}] {citation.title}{section} ({citation.document_id})")
+    if result.caution:
+        print(f"\nCaution: {result.caution}")
     return 0
 
 

@@ -145,5 +145,7 @@ class RateLimited(ServiceError):
 class GeneratorUnavailable(ServiceError):
     code = "generator_unavailable"
 
-    def __init__(self, message: str, *, context: dict[str, Any] | None = None) -> None:
-        super().__init__(message, context=context)
+    def __init__(self, message: str, *, context: object | None = None) -> None:
+        super().__init__(message)
+        # The packed context the caller can still use; the API renders it into the body.
+        self.context = context

@@ -8,25 +8,14 @@ from typing import Any
 
 from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
-from starlette.types import Receive, Scope, Send
 
 from service.api.access_log import AccessLog
 from service.api.body import BodySizeLimit
 from service.api.errors import install_error_handlers
-from service.api.fast_path import QueryFastPath
 from service.api.query_pool import QueryPool
 from service.api.routes import collections, documents, health, retrieval, traces
 from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
-
-
-class QueriesFirstApp(FastAPI):
-    """The application: each request is logged once answered, and queries skip the stack."""
-
-    front: AccessLog
-
-    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        await self.front(scope, receive, send)
 
 
 def create_app(runtime: Runtime) -> FastAPI:
@@ -43,7 +32,7 @@ def create_app(runtime: Runtime) -> FastAPI:
         runtime.close()
 
     docs: dict[str, Any] = {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
-    app = QueriesFirstApp(
+    app = FastAPI(
         title="excerpta",
         version="0.1.0",
         description="Retrieval with filters, access control, cited context and traces.",
@@ -52,22 +41,13 @@ def create_app(runtime: Runtime) -> FastAPI:
     )
     app.state.runtime = runtime
     app.state.query_pool = query_pool
-    rate_limiter = RateLimiter(settings.rate_limit_per_second, settings.rate_limit_burst)
-    app.state.rate_limiter = rate_limiter
+    app.state.rate_limiter = RateLimiter(settings.rate_limit_per_second, settings.rate_limit_burst)
     install_error_handlers(app)
     # The retrieval routes come first: they are the busiest, and routes are matched in order.
     for module in (retrieval, health, collections, documents, traces):
         app.include_router(module.router)
-    app.front = AccessLog(
-        QueryFastPath(
-            super(QueriesFirstApp, app).__call__,
-            runtime=runtime,
-            pool=query_pool,
-            rate_limiter=rate_limiter,
-            body_limit=settings.max_body_bytes,
-        )
-    )
-    # CORS is outermost, so a browser can read even a refusal of an oversized body.
+    # Each added middleware wraps the ones before it. The access log is outermost, so it sees
+    # every response; CORS wraps the body limit, so a browser can read even a 413.
     app.add_middleware(BodySizeLimit, limit=settings.max_body_bytes)
     if settings.cors_origins:
         app.add_middleware(
@@ -76,4 +56,5 @@ def create_app(runtime: Runtime) -> FastAPI:
             allow_methods=["GET", "POST", "PUT", "DELETE"],
             allow_headers=["Authorization", "Content-Type"],
         )
+    app.add_middleware(AccessLog)
     return app

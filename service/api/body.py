@@ -34,10 +34,6 @@ def declares_more_than(headers: Iterable[tuple[bytes, bytes]], limit: int) -> bo
     )
 
 
-def body_of(messages: list[Message]) -> bytes:
-    return b"".join(m.get("body", b"") for m in messages if m["type"] == "http.request")
-
-
 def replay(messages: list[Message], receive: Receive) -> Receive:
     """A ``receive`` that gives the messages already read, then whatever comes after them."""
     pending = list(messages)

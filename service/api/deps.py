@@ -31,23 +31,21 @@ async def get_query_pool(request: Request) -> QueryPool:
 QueryPoolDep = Annotated[QueryPool, Depends(get_query_pool)]
 
 
-def caller_for(runtime: Runtime, rate_limiter: RateLimiter, authorization: str) -> Caller:
-    """The caller an ``Authorization`` header names, charged one request against its rate."""
+async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
+    """The caller the ``Authorization`` header names, charged one request against its rate.
+
+    Async so the lookup (one indexed row, well under a millisecond) runs on the event loop
+    instead of paying a hop to a worker thread on every request.
+    """
     if runtime.settings.auth == "disabled":
         return LOCAL_ADMIN
-    scheme, _, presented = authorization.partition(" ")
+    scheme, _, presented = request.headers.get("authorization", "").partition(" ")
     if scheme.lower() != "bearer":
         raise Unauthenticated("A valid API key is required in the Authorization header.")
     caller = authenticate(runtime.key_reader, presented.strip())
+    rate_limiter: RateLimiter = request.app.state.rate_limiter
     rate_limiter.check(caller)
     return caller
-
-
-async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
-    """Async so the lookup (one indexed row, well under a millisecond) runs on the event loop
-    instead of paying a hop to a worker thread on every request."""
-    authorization = request.headers.get("authorization", "")
-    return caller_for(runtime, request.app.state.rate_limiter, authorization)
 
 
 CallerDep = Annotated[Caller, Depends(get_caller)]

@@ -10,7 +10,9 @@ from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import errors
+from service.api.render import context_json
 from service.api.schemas import ErrorOut
+from service.usecases.answering import ContextResult
 
 STATUS_BY_ERROR: tuple[tuple[type[errors.ServiceError], int], ...] = (
     (errors.MalformedJson, 400),
@@ -37,13 +39,25 @@ def status_for(error: errors.ServiceError) -> int:
 
 def error_response(error: errors.ServiceError) -> JSONResponse:
     headers = {}
+    body = error.body()
     if isinstance(error, errors.RateLimited):
         headers["Retry-After"] = str(error.retry_after)
-    return JSONResponse(error.body(), status_code=status_for(error), headers=headers)
+    if isinstance(error, errors.GeneratorUnavailable):
+        context = error.context
+        body["error"]["context"] = (
+            context_json(context) if isinstance(context, ContextResult) else None
+        )
+    return JSONResponse(body, status_code=status_for(error), headers=headers)
+
+
+# Where the framework found a bad value; the rest of a location is the field's path.
+_LOCATIONS = ("body", "query", "path", "header", "cookie")
 
 
 def _field_path(location: tuple[Any, ...]) -> str:
-    parts = [str(p) for p in location if p not in ("body", "query", "path", "header")]
+    parts = [str(p) for p in location]
+    if parts and parts[0] in _LOCATIONS:
+        parts = parts[1:]
     return ".".join(parts) or "body"
 
 

@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import datetime as dt
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, PlainValidator, WithJsonSchema
+from pydantic_core import PydanticCustomError
 
 
 class Strict(BaseModel):
@@ -145,19 +146,42 @@ class TimeWindowIn(Strict):
     now: str | None = None
 
 
+def _filter_value(value: Any) -> Any:
+    if value is None or isinstance(value, str | dict):
+        return value
+    raise PydanticCustomError("filter_type", "a filter is a CQL2 text string or a CQL2 JSON object")
+
+
+FilterValue = Annotated[
+    str | dict[str, Any] | None,
+    PlainValidator(_filter_value),
+    WithJsonSchema({"anyOf": [{"type": "string"}, {"type": "object"}, {"type": "null"}]}),
+]
+
+
+def _not_a_boolean(value: Any) -> Any:
+    # JSON's true and false would otherwise be read as 1 and 0.
+    if isinstance(value, bool):
+        raise PydanticCustomError("int_type", "Input should be an integer, not true or false")
+    return value
+
+
+Count = Annotated[int, BeforeValidator(_not_a_boolean)]
+
+
 class SearchIn(Strict):
     query: str = Field(min_length=1)
-    filter: str | dict[str, Any] | None = None
+    filter: FilterValue = None
     time_window: TimeWindowIn | None = None
-    top_k: int = Field(10, ge=1)
+    top_k: Count = Field(10, ge=1)
     mode: Literal["hybrid", "lexical", "semantic"] = "hybrid"
-    rrf_k: int = Field(60, ge=1, le=10_000)
-    depth: int = Field(100, ge=1)
+    rrf_k: Count = Field(60, ge=1, le=10_000)
+    depth: Count = Field(100, ge=1)
     query_vector: list[float] | None = None
 
 
 class ContextIn(SearchIn):
-    token_budget: int = Field(1000, ge=1)
+    token_budget: Count = Field(1000, ge=1)
 
 
 class AnswerIn(ContextIn):

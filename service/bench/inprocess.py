@@ -41,14 +41,15 @@ from service.filters.evaluate import evaluate
 from service.filters.parse import parse_filter
 from service.filters.syntax import Node
 from service.index.collection_index import CollectionIndex, IndexSnapshot
-from service.index.lexical import DEFAULT_B, DEFAULT_K1
+from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalScoring
 from service.packing.packer import PackCandidate, PackedContext, pack_context
+from service.retrieval.query import RetrievalQuery, RetrievalResult, retrieve
 from service.retrieval.ranking import Ranking, fuse_rrf, lexical_ranking, semantic_ranking
-from service.retrieval.retrieve import RetrievalResult, retrieve
 
 RRF_K = 60
 TOKEN_BUDGET = 1000
 RANK_BM25_MAX_CHUNKS = 100_000
+OKAPI = LexicalScoring(variant="okapi")
 
 Progress = Callable[[str], None]
 
@@ -110,19 +111,19 @@ def hybrid_query(
     depth: int,
 ) -> RetrievalResult:
     """The whole in-process hybrid query over every live row, as the search route runs it."""
-    return retrieve(
-        snapshot,
-        query_tokens=tokens,
-        query_vector=vector,
-        candidate_mask=snapshot.live.copy(),
+    query = RetrievalQuery(
         mode="hybrid",
+        tokens=tuple(tokens),
+        vector=vector,
+        filter=None,
+        groups=None,
         top_k=top_k,
         depth=depth,
         rrf_k=RRF_K,
-        k1=DEFAULT_K1,
-        b=DEFAULT_B,
-        bm25_variant="smoothed",
+        keep=top_k,
+        scoring=LexicalScoring(),
     )
+    return retrieve(snapshot, query)
 
 
 def _memory(snapshot: IndexSnapshot, size: int, dimension: int, rss_delta: int) -> dict[str, Any]:
@@ -195,13 +196,13 @@ def run_size(
     notes["filter_mask_by_type"] = by_type
 
     stages["lexical"], lexical = time_each(
-        tokens, lambda t: lexical_ranking(snapshot, t, live, top_k, variant="smoothed")
+        tokens, lambda t: lexical_ranking(snapshot, t, live, top_k)
     )
     stages["lexical okapi"], lexical_okapi = time_each(
-        tokens, lambda t: lexical_ranking(snapshot, t, live, top_k, variant="okapi")
+        tokens, lambda t: lexical_ranking(snapshot, t, live, top_k, OKAPI)
     )
     stages["lexical depth"], lexical_deep = time_each(
-        tokens, lambda t: lexical_ranking(snapshot, t, live, depth, variant="smoothed")
+        tokens, lambda t: lexical_ranking(snapshot, t, live, depth)
     )
     semantic_all: list[Ranking] = []
     for per_mille in SELECTIVITIES_PER_MILLE:

@@ -47,8 +47,16 @@ def _months_back(moment: dt.datetime, months: int) -> dt.datetime:
     return moment.replace(year=year, month=month + 1, day=day)
 
 
+class WindowTooEarly(ValueError):
+    """The window would begin before the first representable moment (year 1)."""
+
+
 def window_start(last: str, now: dt.datetime) -> dt.datetime:
-    """``now`` minus the ISO 8601 duration ``last``; raises ``ValueError`` when unreadable."""
+    """``now`` minus the ISO 8601 duration ``last``.
+
+    Raises ``ValueError`` when ``last`` is unreadable and ``WindowTooEarly`` when the start
+    would fall before year 1.
+    """
     match = _DURATION.fullmatch(last)
     if match is None or last in ("P", "PT") or last.endswith("T"):
         raise ValueError(last)
@@ -65,7 +73,7 @@ def window_start(last: str, now: dt.datetime) -> dt.datetime:
             seconds=parts["seconds"],
         )
     except (OverflowError, ValueError):
-        raise ValueError(last) from None
+        raise WindowTooEarly(last) from None
 
 
 def resolve_time_window(
@@ -89,6 +97,12 @@ def resolve_time_window(
     now = now.astimezone(dt.UTC)
     try:
         start = window_start(last, now)
+    except WindowTooEarly:
+        raise InvalidRequest(
+            f"time_window.now {now.isoformat()} is too early: {last} before it falls before "
+            "the year 1.",
+            field="time_window.now",
+        ) from None
     except ValueError:
         raise InvalidRequest(
             f"time_window.last {last!r} is not an ISO 8601 duration such as P30D, PT12H or P1Y2M",

@@ -46,6 +46,17 @@ DEFAULT_K1 = 1.2
 DEFAULT_B = 0.75
 DEFAULT_EPSILON = 0.25
 
+
+@dataclass(frozen=True, kw_only=True)
+class LexicalScoring:
+    """BM25's parameters: the collection's settings, or an evaluation's override."""
+
+    k1: float = DEFAULT_K1
+    b: float = DEFAULT_B
+    variant: Bm25Variant = "smoothed"
+    epsilon: float = DEFAULT_EPSILON
+
+
 # A new segment is merged into the one before it while that one holds fewer than this many times
 # its rows, which keeps about log_4(rows) segments.
 _SEGMENT_RATIO = 4

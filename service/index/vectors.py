@@ -35,7 +35,6 @@ from typing import Literal
 
 import numpy as np
 
-from service.errors import InvalidRequest
 from service.index.buffers import round_up, write_rows
 
 Metric = Literal["cosine", "dot", "euclidean"]
@@ -153,19 +152,13 @@ class VectorMatrix:
         """The query as float32 of the right dimension, normalised for cosine."""
         query = np.asarray(vector, dtype=np.float64).reshape(-1)
         if query.shape[0] != self.dimension:
-            raise InvalidRequest(
-                f"query_vector must have {self.dimension} numbers, not {query.shape[0]}",
-                field="query_vector",
-            )
+            raise ValueError(f"a query vector needs {self.dimension} numbers, not {query.shape[0]}")
         if not np.isfinite(query).all():
-            raise InvalidRequest("query_vector must hold finite numbers", field="query_vector")
+            raise ValueError("a query vector must hold finite numbers")
         if self.metric == "cosine":
             norm = float(np.linalg.norm(query))
             if norm == 0:
-                raise InvalidRequest(
-                    "query_vector must not be all zeros for cosine similarity",
-                    field="query_vector",
-                )
+                raise ValueError("a query vector must not be all zeros for cosine similarity")
             query = query / norm
         return query.astype(np.float32)
 

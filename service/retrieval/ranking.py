@@ -16,7 +16,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.index.collection_index import IndexSnapshot
-from service.index.lexical import DEFAULT_B, DEFAULT_EPSILON, DEFAULT_K1, Bm25Variant
+from service.index.lexical import LexicalScoring
+
+DEFAULT_SCORING = LexicalScoring()
 
 
 @dataclass(frozen=True, eq=False)
@@ -39,14 +41,6 @@ class Ranking:
     def rank_of(self) -> dict[int, int]:
         """``row -> rank`` for the rows of this ranking."""
         return {row: rank for rank, row in enumerate(self.rows.tolist(), start=1)}
-
-
-def check_candidate_mask(snapshot: IndexSnapshot, candidate_mask: np.ndarray) -> np.ndarray:
-    """The mask as a boolean array of the snapshot's length, restricted to live rows."""
-    mask = np.asarray(candidate_mask)
-    if mask.dtype != np.bool_ or mask.shape != (snapshot.n_rows,):
-        raise ValueError(f"the candidate mask must be a boolean array of {snapshot.n_rows} rows")
-    return mask & snapshot.live
 
 
 def top_positions(scores: np.ndarray, keys_of: np.ndarray, depth: int) -> np.ndarray:
@@ -86,14 +80,16 @@ def lexical_ranking(
     query_tokens: Sequence[str],
     candidate_mask: np.ndarray,
     depth: int,
-    *,
-    k1: float = DEFAULT_K1,
-    b: float = DEFAULT_B,
-    variant: Bm25Variant = "smoothed",
-    epsilon: float = DEFAULT_EPSILON,
+    scoring: LexicalScoring = DEFAULT_SCORING,
 ) -> Ranking:
     """BM25 ranking of the candidates containing at least one query term, cut at ``depth``."""
-    match = snapshot.lexical.match(query_tokens, k1=k1, b=b, variant=variant, epsilon=epsilon)
+    match = snapshot.lexical.match(
+        query_tokens,
+        k1=scoring.k1,
+        b=scoring.b,
+        variant=scoring.variant,
+        epsilon=scoring.epsilon,
+    )
     rows = np.flatnonzero(match.present & candidate_mask)
     return _ranking("lexical", snapshot, rows, match.scores[rows], depth)
 

@@ -28,6 +28,7 @@ from service.embedding.base import text_hash
 from service.errors import DocumentNotFound, InvalidDocuments, InvalidRequest, LimitExceeded
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
+from service.index.records import chunk_id
 from service.ingest.chunking import chunk_document
 from service.ingest.embedding_text import embedding_input
 from service.ingest.parsing import parse_document
@@ -36,7 +37,6 @@ from service.store.attribute_rows import attribute_value_rows
 from service.store.filter_sql import compile_filter
 from service.store.tables import CollectionRow, DocumentRow
 from service.usecases.callers import Caller, Role
-from service.usecases.chunk_ids import chunk_id
 from service.usecases.collections import attribute_schema, load_collection
 from service.usecases.runtime import Runtime
 

@@ -5,8 +5,9 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Callable, Collection, Mapping
+from dataclasses import replace
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import httpx
 
@@ -15,6 +16,8 @@ from service.evaluation.report import write_report
 from service.evaluation.runner import evaluate, systems_from_options
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
+from service.index.lexical import LexicalScoring
+from service.retrieval.query import Mode
 from service.store import repository
 from service.store.filter_sql import compile_filter
 from service.usecases import answering
@@ -26,29 +29,35 @@ from service.usecases.search import SearchOptions
 MAX_CHUNKS = 20_000
 
 
-def documents_from_hits(hits: list[dict[str, Any]], depth: int) -> list[tuple[str, float]]:
+ChunkHits = list[tuple[str, float]]
+
+
+def documents_from_hits(hits: ChunkHits, depth: int) -> list[tuple[str, float]]:
     """Documents in the order of their best chunk, with that chunk's score."""
     ranked: dict[str, float] = {}
-    for hit in hits:
-        ranked.setdefault(hit["document_id"], float(hit["score"]))
+    for document_id, score in hits:
+        ranked.setdefault(document_id, float(score))
         if len(ranked) >= depth:
             break
     return list(ranked.items())
 
 
 class _DocumentRanking:
-    """Asks for more chunks until ``depth`` distinct documents are ranked or none are left."""
+    """Asks for more chunks until ``depth`` distinct documents are ranked or none are left.
 
-    def __init__(self, search: Callable[[int], dict[str, Any]], chunk_limit: int) -> None:
+    ``search`` returns the best chunks as ``(document id, score)``, best first.
+    """
+
+    def __init__(self, search: Callable[[int], ChunkHits], chunk_limit: int) -> None:
         self._search = search
         self._chunk_limit = chunk_limit
 
     def rank(self, depth: int) -> list[tuple[str, float]]:
         chunks = min(depth * 2, self._chunk_limit)
         while True:
-            body = self._search(chunks)
-            documents = documents_from_hits(body["hits"], depth)
-            exhausted = len(body["hits"]) < chunks or chunks >= self._chunk_limit
+            hits = self._search(chunks)
+            documents = documents_from_hits(hits, depth)
+            exhausted = len(hits) < chunks or chunks >= self._chunk_limit
             if len(documents) >= depth or exhausted:
                 return documents
             chunks = min(chunks * 2, self._chunk_limit)
@@ -68,22 +77,33 @@ class StoreBackend:
         depth: int,
         settings: Mapping[str, object],
     ) -> list[tuple[str, float]]:
-        def run(chunks: int) -> dict[str, Any]:
+        def run(chunks: int) -> ChunkHits:
             options = SearchOptions(
                 query=text,
                 filter=filter,
-                mode=mode,
+                mode=cast(Mode, mode),
                 top_k=chunks,
                 depth=chunks,
                 rrf_k=int(settings.get("rrf_k", 60)),  # type: ignore[call-overload]
-                k1=_optional_float(settings.get("k1")),
-                b=_optional_float(settings.get("b")),
+                scoring=self._scoring(settings),
             )
-            return answering.search(
+            result = answering.search(
                 self.runtime, LOCAL_ADMIN, self.collection, options, keep_trace=False
             )
+            return [(hit.document_id, hit.score) for hit in result.hits]
 
         return _DocumentRanking(run, MAX_CHUNKS).rank(depth)
+
+    def _scoring(self, settings: Mapping[str, object]) -> LexicalScoring | None:
+        """BM25 settings varied by the evaluation, over the collection's own for the rest."""
+        if "k1" not in settings and "b" not in settings:
+            return None
+        scoring = self.runtime.indexes.view(self.collection).scoring
+        return replace(
+            scoring,
+            k1=float(settings.get("k1", scoring.k1)),  # type: ignore[arg-type]
+            b=float(settings.get("b", scoring.b)),  # type: ignore[arg-type]
+        )
 
     def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
         with self.runtime.transaction() as session:
@@ -104,10 +124,6 @@ class StoreBackend:
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
         view = get_collection(self.runtime, LOCAL_ADMIN, self.collection)
         return _describe(view, settings)
-
-
-def _optional_float(value: object) -> float | None:
-    return None if value is None else float(value)  # type: ignore[arg-type]
 
 
 def _describe(view: Mapping[str, Any], settings: Mapping[str, object]) -> dict[str, object]:
@@ -150,7 +166,7 @@ class HttpBackend:
         if "k1" in settings or "b" in settings:
             raise ValueError("--set k1/b works only on the store directly, not with --url")
 
-        def run(chunks: int) -> dict[str, Any]:
+        def run(chunks: int) -> ChunkHits:
             body: dict[str, Any] = {
                 "query": text,
                 "mode": mode,
@@ -162,8 +178,8 @@ class HttpBackend:
                 body["filter"] = filter
             response = self.client.post(f"/v1/collections/{self.collection}/search", json=body)
             response.raise_for_status()
-            result: dict[str, Any] = response.json()
-            return result
+            hits = response.json()["hits"]
+            return [(hit["document_id"], float(hit["score"])) for hit in hits]
 
         return _DocumentRanking(run, 1000).rank(depth)
 

@@ -19,24 +19,17 @@ import numpy as np
 
 from service.attributes import AttributeValue, Schema, normalize_value, parse_schema
 from service.errors import CollectionNotFound
-from service.filters.evaluate import evaluate
-from service.filters.syntax import Node
 from service.index.analyzer import Analyzer, english_stopwords
-from service.index.collection_index import (
-    ChunkRecord,
-    CollectionIndex,
-    IndexedChunk,
-    IndexSnapshot,
-)
-from service.index.lexical import Bm25Variant
+from service.index.collection_index import ChunkRecord, CollectionIndex
+from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
+from service.index.records import chunk_record
 from service.index.vectors import Metric
-from service.retrieval.access import access_mask
+from service.index.view import CollectionFacts, IndexView
 from service.store import repository
 from service.store.tables import ChunkRow, DocumentRow
-from service.usecases.chunk_ids import chunk_id
 
 if TYPE_CHECKING:
-    from service.usecases.documents import ChunkDraft, MaterialisedDocument
+    from service.usecases.documents import MaterialisedDocument
     from service.usecases.runtime import Runtime
 
 log = logging.getLogger("excerpta.index")
@@ -49,76 +42,16 @@ def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
     )
 
 
-@dataclass(frozen=True)
-class CollectionFacts:
-    """What a query needs of its collection besides the index, kept beside the index so that
-    a query reads nothing from the store."""
-
-    collection_id: int
-    schema: Schema
-    cite_attributes: tuple[str, ...]
-    answer_caution: str | None
-
-
 @dataclass
 class _Entry:
     facts: CollectionFacts
     generation: int
-    retrieval: dict[str, Any]
+    scoring: LexicalScoring
     analyzer: Analyzer
     index: CollectionIndex
     revision: int
     checked_at: float
     lock: threading.Lock
-
-
-@dataclass(frozen=True)
-class IndexView:
-    """What one query reads: a consistent snapshot and the collection's scoring settings."""
-
-    facts: CollectionFacts
-    snapshot: IndexSnapshot
-    analyzer: Analyzer
-    k1: float
-    b: float
-    bm25_variant: Bm25Variant
-
-    @property
-    def live_rows(self) -> int:
-        return int(self.snapshot.live_rows)
-
-    def candidates(
-        self, node: Node | None, groups: frozenset[str] | None
-    ) -> tuple[np.ndarray, int]:
-        """The candidate mask (live AND access AND filter) and how many rows the caller sees."""
-        mask = self.snapshot.live.copy()
-        if groups is None:
-            visible = self.live_rows
-        else:
-            mask &= access_mask(self.snapshot, groups)
-            visible = int(np.count_nonzero(mask))
-        if node is not None:
-            columns = self.snapshot.columns
-            if columns is None:
-                # A checked filter names attributes, so this collection has some; an index
-                # without columns can only mean no row has been indexed yet.
-                return np.zeros_like(mask), visible
-            mask &= evaluate(node, columns)
-        return mask, visible
-
-    def row(self, row: int) -> IndexedChunk:
-        return self.snapshot.record(row)
-
-    def vector(self, row: int) -> np.ndarray:
-        return self.snapshot.vector(row)
-
-    def describe_entry(self, entry: Any) -> dict[str, Any]:
-        return {
-            "chunk_id": entry.chunk_id,
-            "score": float(entry.score),
-            "rank": int(entry.rank),
-            "ranks": None if entry.ranks is None else dict(entry.ranks),
-        }
 
 
 class IndexRegistry:
@@ -139,14 +72,11 @@ class IndexRegistry:
                 if time.monotonic() - entry.checked_at >= poll:
                     self._catch_up(name, entry)
         entry = self._entry(name)
-        retrieval = entry.retrieval
         return IndexView(
             facts=entry.facts,
             snapshot=entry.index.snapshot(),
             analyzer=entry.analyzer,
-            k1=float(retrieval["k1"]),
-            b=float(retrieval["b"]),
-            bm25_variant=cast(Bm25Variant, retrieval["bm25"]),
+            scoring=entry.scoring,
         )
 
     def _entry(self, name: str) -> _Entry:
@@ -175,6 +105,11 @@ class IndexRegistry:
             schema = parse_schema(row.attributes)
             retrieval = dict(row.settings.get("retrieval", {}))
             analyzer = analyzer_for(retrieval)
+            scoring = LexicalScoring(
+                k1=float(retrieval.get("k1", DEFAULT_K1)),
+                b=float(retrieval.get("b", DEFAULT_B)),
+                variant=cast(Bm25Variant, retrieval.get("bm25", "smoothed")),
+            )
             rows = repository.index_rows(session, row.id, row.chunk_generation, None)
             records = [self._record(analyzer, schema, d, c, v) for d, c, v in rows]
             index = CollectionIndex.build(
@@ -183,8 +118,8 @@ class IndexRegistry:
                 metric=cast(Metric, retrieval.get("metric", "cosine")),
                 dimension=self._runtime.embedder.dimensions,
                 revision=row.revision,
-                bm25_k1=float(retrieval.get("k1", 1.2)),
-                bm25_b=float(retrieval.get("b", 0.75)),
+                bm25_k1=scoring.k1,
+                bm25_b=scoring.b,
             )
             return _Entry(
                 facts=CollectionFacts(
@@ -194,7 +129,7 @@ class IndexRegistry:
                     answer_caution=row.answer_caution,
                 ),
                 generation=row.chunk_generation,
-                retrieval=retrieval,
+                scoring=scoring,
                 analyzer=analyzer,
                 index=index,
                 revision=row.revision,
@@ -279,7 +214,7 @@ class IndexRegistry:
         chunk: ChunkRow,
         vector: bytes,
     ) -> ChunkRecord:
-        return _chunk_record(
+        return chunk_record(
             analyzer,
             document_id=document.external_id,
             title=document.title,
@@ -294,7 +229,7 @@ class IndexRegistry:
     ) -> list[ChunkRecord]:
         doc = material.prepared
         return [
-            _chunk_record(
+            chunk_record(
                 entry.analyzer,
                 document_id=doc.external_id,
                 title=doc.title,
@@ -329,39 +264,6 @@ class IndexRegistry:
         self._stopping.set()
         if self._compactor is not None:
             self._compactor.join(timeout=5)
-
-
-def _chunk_record(
-    analyzer: Analyzer,
-    *,
-    document_id: str,
-    title: str,
-    attributes: dict[str, AttributeValue],
-    access: tuple[str, ...],
-    chunk: ChunkRow | ChunkDraft,
-    vector: np.ndarray,
-) -> ChunkRecord:
-    """One index row, from a stored chunk or one just written; both carry the same fields."""
-    return ChunkRecord(
-        chunk_id=chunk_id(document_id, chunk.ordinal),
-        document_id=document_id,
-        ordinal=chunk.ordinal,
-        title=title,
-        section=chunk.section,
-        text=chunk.text,
-        char_start=chunk.char_start,
-        char_end=chunk.char_end,
-        tokens=chunk.tokens,
-        lexical_tokens=analyzer.tokens(_indexed_text(title, chunk.section, chunk.text)),
-        vector=vector,
-        attributes=attributes,
-        access=access,
-    )
-
-
-def _indexed_text(title: str, section: str, text: str) -> str:
-    """What both retrievers index for a chunk: its title, its section path and its text."""
-    return "\n".join(part for part in (title, section, text) if part)
 
 
 def _attributes_from_json(schema: Schema, stored: Mapping[str, Any]) -> dict[str, AttributeValue]:

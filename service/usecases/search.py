@@ -1,24 +1,34 @@
-"""Search options, their checks, and the candidate set: filter AND time window AND access."""
+"""A retrieval request, its one check, and the query the retrieval core takes from it.
+
+The HTTP API and the CLI both build a ``SearchOptions``; ``prepare_query`` checks it against
+the limits and the collection once and turns it into a ``RetrievalQuery``, so nothing below
+checks a request again.
+"""
 
 from __future__ import annotations
 
 import datetime as dt
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from service.attributes import Schema
 from service.config import Settings
+from service.embedding.base import Embedder
 from service.errors import InvalidRequest, LimitExceeded
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
 from service.filters.render import to_text
 from service.filters.syntax import Node, conjunction
 from service.filters.time_window import resolve_time_window
+from service.index.lexical import LexicalScoring
+from service.index.view import IndexView
+from service.retrieval.query import Mode, RetrievalQuery
 
-MODES = ("hybrid", "lexical", "semantic")
+FilterSpec = str | dict[str, Any] | None
+TRACE_TOP_ENTRIES = 20
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -30,21 +40,25 @@ class TimeWindow:
 
 @dataclass(frozen=True, kw_only=True)
 class SearchOptions:
-    """One request's retrieval options, checked once at the edge by ``check_options``."""
+    """One request's retrieval options as the caller sent them.
+
+    ``scoring`` replaces the collection's BM25 settings; evaluation sets it to compare
+    parameters, the HTTP API never does.
+    """
 
     query: str
-    filter: str | dict[str, Any] | None = None
+    filter: FilterSpec = None
     time_window: TimeWindow | None = None
     top_k: int = 10
-    mode: str = "hybrid"
+    mode: Mode = "hybrid"
     rrf_k: int = 60
     depth: int = 100
-    query_vector: list[float] | None = None
-    # Evaluation may vary BM25's parameters per run; the HTTP API never sets these.
-    k1: float | None = None
-    b: float | None = None
+    query_vector: Sequence[float] | None = None
+    scoring: LexicalScoring | None = None
 
     def as_request(self) -> dict[str, Any]:
+        """What the trace records of the request; ``depth_used`` is the depth after raising it
+        to ``top_k``."""
         return {
             "query": self.query,
             "filter": self.filter,
@@ -52,52 +66,59 @@ class SearchOptions:
             "top_k": self.top_k,
             "mode": self.mode,
             "rrf_k": self.rrf_k,
-            "depth": max(self.depth, self.top_k),
+            "depth": self.depth,
+            "depth_used": max(self.depth, self.top_k),
             "query_vector": None
             if self.query_vector is None
             else f"{len(self.query_vector)} floats",
         }
 
 
-def check_options(options: SearchOptions, limits: Settings, dimensions: int) -> None:
+@dataclass(frozen=True)
+class PreparedQuery:
+    """The core's query, and what the trace says of how it was made."""
+
+    retrieval: RetrievalQuery
+    filter_notes: dict[str, Any]
+    embedding_milliseconds: float | None
+    embedding_source: str
+
+
+def check_limits(options: SearchOptions, limits: Settings, dimensions: int) -> None:
+    """The request's own checks, before its collection is read."""
     if not options.query.strip() and options.query_vector is None:
-        raise InvalidRequest("The query must not be empty.", field="query")
+        raise InvalidRequest("Field 'query' must not be empty.", field="query")
     if len(options.query) > limits.max_query_chars:
         raise LimitExceeded(
             f"The query may hold at most {limits.max_query_chars} characters.", limit="query_chars"
         )
-    if options.mode not in MODES:
-        raise InvalidRequest("mode must be hybrid, lexical or semantic.", field="mode")
-    if options.top_k < 1:
-        raise InvalidRequest("top_k must be at least 1.", field="top_k")
+    for name, value in (("top_k", options.top_k), ("depth", options.depth)):
+        if value < 1:
+            raise InvalidRequest(f"{name} must be at least 1.", field=name)
     if options.top_k > limits.max_top_k:
         raise LimitExceeded(f"top_k may be at most {limits.max_top_k}.", limit="top_k")
-    if options.depth < 1:
-        raise InvalidRequest("depth must be at least 1.", field="depth")
     if options.depth > limits.max_depth:
         raise LimitExceeded(f"depth may be at most {limits.max_depth}.", limit="depth")
     if options.rrf_k < 1:
         raise InvalidRequest("rrf_k must be at least 1.", field="rrf_k")
     if options.query_vector is not None:
-        if len(options.query_vector) != dimensions:
-            raise InvalidRequest(
-                f"query_vector must hold {dimensions} numbers for this embedder.",
-                field="query_vector",
-            )
-        try:
-            values = np.asarray(options.query_vector, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise InvalidRequest("query_vector must hold numbers.", field="query_vector") from None
-        if values.ndim != 1 or not np.isfinite(values).all():
-            raise InvalidRequest("query_vector must hold finite numbers.", field="query_vector")
+        _check_query_vector(options.query_vector, dimensions)
 
 
-@dataclass(frozen=True)
-class CandidateFilter:
-    """The checked filter tree (None when there is none) and what the trace says of it."""
-
-    node: Node | None
-    trace: dict[str, Any]
+def _check_query_vector(vector: Sequence[float], dimensions: int) -> None:
+    if len(vector) != dimensions:
+        raise InvalidRequest(
+            f"query_vector must hold {dimensions} numbers for this embedder.",
+            field="query_vector",
+        )
+    try:
+        values = np.asarray(vector, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidRequest("query_vector must hold numbers.", field="query_vector") from None
+    if values.ndim != 1 or not np.isfinite(values).all():
+        raise InvalidRequest("query_vector must hold finite numbers.", field="query_vector")
+    if not values.any():
+        raise InvalidRequest("query_vector must not be all zeros.", field="query_vector")
 
 
 def _parse_now(value: str | None) -> dt.datetime | None:
@@ -118,33 +139,67 @@ def _parse_now(value: str | None) -> dt.datetime | None:
     return parsed.astimezone(dt.UTC)
 
 
-def build_candidate_filter(options: SearchOptions, schema: Schema) -> CandidateFilter:
-    trace: dict[str, Any] = {}
+def candidate_filter(options: SearchOptions, view: IndexView) -> tuple[Node | None, dict[str, Any]]:
+    """The checked filter AND the time window, and what the trace says of them."""
+    notes: dict[str, Any] = {}
     nodes: list[Node] = []
+    schema = view.facts.schema
     if options.filter is not None and options.filter != "":
         node = check_filter(parse_filter(options.filter), schema)
         nodes.append(node)
-        trace["filter"] = to_text(node)
+        notes["filter"] = to_text(node)
     if options.time_window is not None:
         window = options.time_window
         node, resolved = resolve_time_window(
             window.attribute, window.last, _parse_now(window.now), schema
         )
         nodes.append(node)
-        trace["time_window"] = {
+        notes["time_window"] = {
             "attribute": window.attribute,
             "last": window.last,
-            "start": resolved.start.isoformat() if resolved.start else None,
-            "end": resolved.end.isoformat() if resolved.end else None,
+            "start": resolved.start.isoformat(),
+            "end": resolved.end.isoformat(),
         }
-    if not nodes:
-        return CandidateFilter(None, trace)
-    return CandidateFilter(conjunction(nodes), trace)
+    return (conjunction(nodes) if nodes else None), notes
 
 
-def timed(start: float) -> float:
-    return (time.perf_counter() - start) * 1000.0
+def prepare_query(
+    options: SearchOptions,
+    view: IndexView,
+    embedder: Embedder,
+    groups: frozenset[str] | None,
+    *,
+    whole_ranking: bool,
+) -> PreparedQuery:
+    """The checked request as the core's query: filter, query terms and query vector.
 
-
-def as_query_vector(values: list[float]) -> np.ndarray:
-    return np.asarray(values, dtype=np.float32)
+    ``whole_ranking`` keeps every fused hit up to depth (for packing) instead of ``top_k``.
+    ``check_limits`` must have passed.
+    """
+    node, notes = candidate_filter(options, view)
+    depth = max(options.depth, options.top_k)
+    vector = None
+    milliseconds = None
+    source = "query_vector" if options.query_vector is not None else embedder.name
+    if options.mode != "lexical":
+        started = time.perf_counter()
+        if options.query_vector is not None:
+            vector = np.asarray(options.query_vector, dtype=np.float32)
+        else:
+            vector = embedder.embed_query(options.query)
+        milliseconds = (time.perf_counter() - started) * 1000.0
+    tokens = () if options.mode == "semantic" else tuple(view.analyzer.tokens(options.query))
+    query = RetrievalQuery(
+        mode=options.mode,
+        tokens=tokens,
+        vector=vector,
+        filter=node,
+        groups=groups,
+        top_k=options.top_k,
+        depth=depth,
+        rrf_k=options.rrf_k,
+        keep=depth if whole_ranking else options.top_k,
+        scoring=options.scoring or view.scoring,
+        trace_top=TRACE_TOP_ENTRIES,
+    )
+    return PreparedQuery(query, notes, milliseconds, source)

@@ -22,6 +22,7 @@ from typing import Any
 
 from service.errors import TraceNotFound
 from service.json_text import json_text
+from service.retrieval.query import StageTrace
 from service.store import repository
 from service.usecases.callers import Caller
 from service.usecases.runtime import Runtime
@@ -46,14 +47,32 @@ class TraceRecorder:
     def stage(self, name: str, milliseconds: float, **details: Any) -> None:
         self.stages.append({"stage": name, "milliseconds": round(milliseconds, 3), **details})
 
-    def save(self, runtime: Runtime, caller: Caller, **summary: Any) -> None:
+    def retrieval_stage(self, stage: StageTrace, **details: Any) -> None:
+        """A stage of the retrieval core, with its counts and its top entries."""
+        self.stage(
+            stage.name,
+            stage.milliseconds,
+            counts=dict(stage.counts),
+            top=[
+                {
+                    "chunk_id": entry.chunk_id,
+                    "score": entry.score,
+                    "rank": entry.rank,
+                    "ranks": None if entry.ranks is None else dict(entry.ranks),
+                }
+                for entry in stage.top
+            ],
+            **details,
+        )
+
+    def save(self, writer: TraceWriter, caller: Caller, **summary: Any) -> None:
         body = {
             "request": self.request,
             "stages": self.stages,
             "total_milliseconds": round((time.perf_counter() - self.started) * 1000, 3),
             **summary,
         }
-        runtime.traces.submit(
+        writer.submit(
             {
                 "id": self.trace_id,
                 "key_id": caller.key_id,

@@ -40,9 +40,9 @@ Observation = frozenset[tuple[str, str]]
 
 def searched(runtime: Runtime, mode: str) -> tuple[Observation, bool]:
     options = SearchOptions(query="marker term", mode=mode, top_k=50)
-    hits = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False)["hits"]
-    mine = frozenset((h["chunk_id"], h["text"]) for h in hits if h["document_id"] == "swapped")
-    return mine, any(h["document_id"] == "stable" for h in hits)
+    hits = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False).hits
+    mine = frozenset((h.chunk_id, h.text) for h in hits if h.document_id == "swapped")
+    return mine, any(h.document_id == "stable" for h in hits)
 
 
 def stored(runtime: Runtime) -> Observation:

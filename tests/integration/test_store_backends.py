@@ -169,7 +169,7 @@ def test_a_search_builds_its_index_from_the_store_and_finds_the_document(
     documents.upsert_documents(runtime, LOCAL_ADMIN, NAME, DOCUMENTS)
     options = SearchOptions(query="chain wax", mode="lexical", top_k=1)
     result = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False)
-    assert [hit["document_id"] for hit in result["hits"]] == ["cote-2023"]
+    assert [hit.document_id for hit in result.hits] == ["cote-2023"]
 
 
 def test_a_key_authenticates_with_its_groups_and_collections_until_revoked(

@@ -32,7 +32,7 @@ def stored_traces(runtime: Runtime) -> int:
 
 def search(runtime: Runtime, caller: Caller = LOCAL_ADMIN) -> str:
     result = answering.search(runtime, caller, "bikes", SearchOptions(query="tyres pressure"))
-    return str(result["trace_id"])
+    return result.trace_id
 
 
 @pytest.fixture

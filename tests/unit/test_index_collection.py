@@ -3,7 +3,8 @@ import threading
 import numpy as np
 
 from service.index.collection_index import ChunkRecord, CollectionIndex
-from service.retrieval import access_mask, lexical_ranking
+from service.retrieval.query import candidate_mask
+from service.retrieval.ranking import lexical_ranking
 
 DIMENSION = 8
 
@@ -85,7 +86,7 @@ def test_compaction_keeps_rows_metadata_vectors_and_access_aligned() -> None:
     assert remap.tolist() == [-1, 0, 1]
     assert list(after.chunk_ids) == ["b#0000", "c#0000"]
     assert np.array_equal(after.vectors.rows, before.vectors.rows[1:])
-    assert access_mask(after, frozenset({"ops"})).tolist() == [False, True]
+    assert candidate_mask(after, None, frozenset({"ops"}))[0].tolist() == [False, True]
     assert after.rows_of("c").tolist() == [1]
 
 
@@ -101,14 +102,14 @@ def test_access_mask_shows_public_rows_and_rows_sharing_a_group() -> None:
         dimension=DIMENSION,
     )
     snapshot = index.snapshot()
-    assert access_mask(snapshot, frozenset()).tolist() == [True, False, False, False]
-    assert access_mask(snapshot, frozenset({"ops", "unknown"})).tolist() == [
+    assert candidate_mask(snapshot, None, frozenset())[0].tolist() == [True, False, False, False]
+    assert candidate_mask(snapshot, None, frozenset({"ops", "unknown"}))[0].tolist() == [
         True,
         False,
         True,
         True,
     ]
-    assert access_mask(snapshot, None).tolist() == [True] * 4
+    assert candidate_mask(snapshot, None, None)[0].tolist() == [True] * 4
 
 
 def test_a_query_during_a_replace_sees_exactly_the_old_or_the_new_chunks() -> None:

@@ -2,13 +2,16 @@ import numpy as np
 import pytest
 
 from service.index.collection_index import ChunkRecord, CollectionIndex
-from service.retrieval import fuse_rrf, lexical_ranking, retrieve, semantic_ranking
-from service.retrieval.ranking import Ranking
+from service.index.lexical import LexicalScoring
+from service.retrieval.query import RetrievalQuery, retrieve
+from service.retrieval.ranking import Ranking, fuse_rrf, lexical_ranking, semantic_ranking
 
 DIMENSION = 6
 
 
-def record(chunk_id: str, words: list[str], vector: np.ndarray) -> ChunkRecord:
+def record(
+    chunk_id: str, words: list[str], vector: np.ndarray, access: tuple[str, ...] = ()
+) -> ChunkRecord:
     document_id = chunk_id.split("#")[0]
     return ChunkRecord(
         chunk_id=chunk_id,
@@ -22,10 +25,14 @@ def record(chunk_id: str, words: list[str], vector: np.ndarray) -> ChunkRecord:
         tokens=len(words),
         lexical_tokens=words,
         vector=vector.astype(np.float32),
+        access=access,
     )
 
 
-def random_index(rows: int = 400, seed: int = 0) -> CollectionIndex:
+def random_index(
+    rows: int = 400, seed: int = 0, groups: np.ndarray | None = None
+) -> CollectionIndex:
+    """Random rows; where ``groups`` is given, a row is in group "in" exactly where it is true."""
     rng = np.random.default_rng(seed)
     vocabulary = [f"t{i}" for i in range(30)]
     records = [
@@ -33,6 +40,7 @@ def random_index(rows: int = 400, seed: int = 0) -> CollectionIndex:
             f"d{rng.integers(0, 10**6):06d}#{i:04d}",
             list(rng.choice(vocabulary, size=rng.integers(1, 10))),
             rng.standard_normal(DIMENSION),
+            () if groups is None else ("in",) if groups[i] else ("out",),
         )
         for i in range(rows)
     ]
@@ -101,22 +109,27 @@ def test_filtered_rankings_equal_the_full_ranking_restricted_to_the_candidates(
         assert np.array_equal(filtered.scores, full.scores[keep][:20])
 
 
-def test_hybrid_retrieval_reports_ranks_within_depth_and_raises_depth_to_top_k() -> None:
-    index = random_index(rows=200, seed=4)
+def test_hybrid_retrieval_reports_ranks_within_depth() -> None:
+    mask = np.random.default_rng(8).random(200) < 0.6
+    index = random_index(rows=200, seed=4, groups=mask)
     snapshot = index.snapshot()
-    mask = np.random.default_rng(8).random(snapshot.n_rows) < 0.6
     query_vector = np.arange(DIMENSION, dtype=np.float64)
-    arguments = dict(
-        query_tokens=["t3", "t4"],
-        query_vector=query_vector,
-        candidate_mask=mask,
-        top_k=15,
-        rrf_k=60,
-        k1=1.2,
-        b=0.75,
-        bm25_variant="smoothed",
-    )
-    result = retrieve(snapshot, mode="hybrid", depth=5, **arguments)  # type: ignore[arg-type]
+
+    def query(mode: str, depth: int) -> RetrievalQuery:
+        return RetrievalQuery(
+            mode=mode,  # type: ignore[arg-type]
+            tokens=("t3", "t4"),
+            vector=query_vector,
+            filter=None,
+            groups=frozenset({"in"}),
+            top_k=15,
+            depth=max(depth, 15),
+            rrf_k=60,
+            keep=15,
+            scoring=LexicalScoring(k1=1.2, b=0.75, variant="smoothed"),
+        )
+
+    result = retrieve(snapshot, query("hybrid", 5))
     lexical = lexical_ranking(snapshot, ["t3", "t4"], mask, 15)
     semantic = semantic_ranking(snapshot, query_vector, mask, 15)
     assert result.candidates == int(mask.sum())
@@ -133,7 +146,51 @@ def test_hybrid_retrieval_reports_ranks_within_depth_and_raises_depth_to_top_k()
             "semantic": semantic_ranks.get(hit.row),
         }
         assert mask[hit.row]
-    assert [stage.name for stage in result.stages] == ["lexical", "semantic", "fusion"]
-    single = retrieve(snapshot, mode="lexical", depth=100, **arguments)  # type: ignore[arg-type]
+    assert [stage.name for stage in result.stages] == ["filter", "lexical", "semantic", "fusion"]
+    single = retrieve(snapshot, query("lexical", 100))
     assert [h.ranks for h in single.hits] == [{"lexical": r} for r in range(1, 16)]
     assert [h.score for h in single.hits] == lexical.scores.tolist()
+
+
+def test_the_core_refuses_a_query_it_was_not_meant_to_see() -> None:
+    scoring = LexicalScoring()
+
+    def query(**changes: object) -> RetrievalQuery:
+        fields: dict[str, object] = {
+            "mode": "hybrid",
+            "tokens": ("t1",),
+            "vector": np.ones(DIMENSION),
+            "filter": None,
+            "groups": None,
+            "top_k": 5,
+            "depth": 10,
+            "rrf_k": 60,
+            "keep": 5,
+            "scoring": scoring,
+        }
+        return RetrievalQuery(**{**fields, **changes})  # type: ignore[arg-type]
+
+    query()
+    for changes in ({"depth": 4}, {"top_k": 0}, {"keep": 0}, {"vector": None}):
+        with pytest.raises(ValueError):
+            query(**changes)
+    query(mode="lexical", vector=None)
+
+
+def test_a_search_keeps_top_k_and_packing_keeps_the_whole_ranking() -> None:
+    snapshot = random_index(rows=300, seed=2).snapshot()
+    base = dict(
+        tokens=("t1", "t2"),
+        vector=np.ones(DIMENSION),
+        filter=None,
+        groups=None,
+        top_k=5,
+        depth=40,
+        rrf_k=60,
+        scoring=LexicalScoring(),
+    )
+    search = retrieve(snapshot, RetrievalQuery(mode="hybrid", keep=5, **base))  # type: ignore[arg-type]
+    packing = retrieve(snapshot, RetrievalQuery(mode="hybrid", keep=40, **base))  # type: ignore[arg-type]
+    assert len(search.hits) == 5
+    assert len(packing.hits) == 40
+    assert packing.hits[:5] == search.hits

@@ -1,0 +1,27 @@
+"""What one query reads of a collection: a snapshot, its analyzer, its scoring settings and
+the facts it needs beside the index, so that a query reads nothing from the store."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from service.attributes import Schema
+from service.index.analyzer import Analyzer
+from service.index.collection_index import IndexSnapshot
+from service.index.lexical import LexicalScoring
+
+
+@dataclass(frozen=True)
+class CollectionFacts:
+    collection_id: int
+    schema: Schema
+    cite_attributes: tuple[str, ...]
+    answer_caution: str | None
+
+
+@dataclass(frozen=True)
+class IndexView:
+    facts: CollectionFacts
+    snapshot: IndexSnapshot
+    analyzer: Analyzer
+    scoring: LexicalScoring

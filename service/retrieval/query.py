@@ -1,0 +1,200 @@
+"""The one retrieval entry: a snapshot and a checked query in, ranked hits and stage notes out.
+
+Everything a query needs arrives in ``RetrievalQuery``, checked once by the caller (the use
+case), so nothing here reads the store, the settings or the request. The candidate mask (live
+AND access AND filter) is built here, once; every ranking then works inside it.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+
+from service.filters.evaluate import evaluate
+from service.filters.syntax import Node
+from service.index.collection_index import IndexSnapshot
+from service.index.lexical import LexicalScoring
+from service.retrieval.ranking import (
+    Ranking,
+    begin_semantic_ranking,
+    finish_semantic_ranking,
+    fuse_rrf,
+    lexical_ranking,
+)
+
+Mode = Literal["hybrid", "lexical", "semantic"]
+MODES: tuple[Mode, ...] = ("hybrid", "lexical", "semantic")
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class RetrievalQuery:
+    """A query as the core takes it.
+
+    ``tokens`` are the analysed query terms (used by the lexical ranking), ``vector`` the query
+    vector (used by the semantic one), ``filter`` the checked filter tree with any time window
+    already joined in, ``groups`` the caller's access groups (None sees every row). Each ranking
+    is cut at ``depth``; ``keep`` fused hits are returned (``top_k`` for a search, the whole
+    ranking for packing).
+    """
+
+    mode: Mode
+    tokens: tuple[str, ...]
+    vector: np.ndarray | None
+    filter: Node | None
+    groups: frozenset[str] | None
+    top_k: int
+    depth: int
+    rrf_k: int
+    keep: int
+    scoring: LexicalScoring
+    trace_top: int = 20
+
+    def __post_init__(self) -> None:
+        if not 1 <= self.top_k <= self.depth:
+            raise ValueError("a query needs 1 <= top_k <= depth")
+        if self.keep < 1 or self.rrf_k < 0:
+            raise ValueError("a query needs keep >= 1 and rrf_k >= 0")
+        if self.mode != "lexical" and self.vector is None:
+            raise ValueError(f"a {self.mode} query needs a query vector")
+
+
+@dataclass(frozen=True)
+class Hit:
+    """A returned chunk; ``ranks`` maps each ranking the mode uses to the chunk's rank there
+    (None when it is absent or beyond depth)."""
+
+    row: int
+    chunk_id: str
+    score: float
+    ranks: Mapping[str, int | None]
+
+
+@dataclass(frozen=True)
+class TraceEntry:
+    chunk_id: str
+    score: float
+    rank: int
+    ranks: Mapping[str, int | None] | None = None
+
+
+@dataclass(frozen=True)
+class StageTrace:
+    name: str
+    milliseconds: float
+    counts: Mapping[str, int]
+    top: tuple[TraceEntry, ...] = ()
+
+
+@dataclass(frozen=True)
+class RetrievalResult:
+    """``candidates`` passed the mask; ``visible_rows`` are the live rows the caller may see."""
+
+    hits: tuple[Hit, ...]
+    candidates: int
+    visible_rows: int
+    stages: tuple[StageTrace, ...]
+
+
+def candidate_mask(
+    snapshot: IndexSnapshot, filter: Node | None, groups: frozenset[str] | None
+) -> tuple[np.ndarray, int]:
+    """Live AND visible to ``groups`` AND matching ``filter``, and how many rows are visible.
+
+    A row without groups is visible to everyone; otherwise the caller must share one group.
+    """
+    mask = snapshot.live.copy()
+    if groups is None:
+        visible = snapshot.live_rows
+    else:
+        mask &= snapshot.access.visible(groups)
+        visible = int(np.count_nonzero(mask))
+    if filter is not None:
+        if snapshot.columns is None:
+            # A checked filter names attributes, so the collection declares some; an index
+            # without columns has no row yet.
+            return np.zeros_like(mask), visible
+        mask &= evaluate(filter, snapshot.columns)
+    return mask, visible
+
+
+def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
+    """Rank the candidates as ``query.mode`` asks and return the best ``query.keep``.
+
+    Where the semantic ranking scans every row, the scan begins on a scan thread as soon as the
+    mask is known and runs beside the lexical ranking, so in hybrid mode the two stages' times
+    overlap.
+    """
+    started = time.perf_counter()
+    mask, visible = candidate_mask(snapshot, query.filter, query.groups)
+    candidates = int(np.count_nonzero(mask))
+    stages = [StageTrace("filter", _since(started), {"candidates": candidates, "rows": visible})]
+    scan = None
+    if query.vector is not None and query.mode != "lexical":
+        scan = begin_semantic_ranking(snapshot, query.vector, candidates)
+    rankings: dict[str, Ranking] = {}
+    if query.mode != "semantic":
+        started = time.perf_counter()
+        lexical = lexical_ranking(
+            snapshot,
+            query.tokens,
+            mask,
+            query.depth,
+            query.scoring,
+        )
+        rankings["lexical"] = lexical
+        stages.append(_stage(snapshot, lexical, started, candidates, query.trace_top))
+    if scan is not None:
+        semantic = finish_semantic_ranking(snapshot, scan, mask, query.depth)
+        rankings["semantic"] = semantic
+        stages.append(_stage(snapshot, semantic, scan.started, candidates, query.trace_top))
+
+    started = time.perf_counter()
+    if query.mode == "hybrid":
+        final = fuse_rrf([rankings["lexical"], rankings["semantic"]], query.rrf_k, query.depth)
+    else:
+        final = rankings[query.mode]
+    rank_maps = {name: ranking.rank_of() for name, ranking in rankings.items()}
+
+    def ranks_of(row: int) -> dict[str, int | None]:
+        return {name: ranks.get(row) for name, ranks in rank_maps.items()}
+
+    keep = query.keep
+    hits = tuple(
+        Hit(row, snapshot.chunk_ids[row], score, ranks_of(row))
+        for row, score in zip(final.rows[:keep].tolist(), final.scores[:keep].tolist(), strict=True)
+    )
+    if query.mode == "hybrid":
+        top = _entries(snapshot, final, query.trace_top, ranks_of)
+        counts = {"fused": len(final), "returned": len(hits)}
+        stages.append(StageTrace("fusion", _since(started), counts, top))
+    return RetrievalResult(hits, candidates, visible, tuple(stages))
+
+
+def _since(started: float) -> float:
+    return (time.perf_counter() - started) * 1000.0
+
+
+def _stage(
+    snapshot: IndexSnapshot, ranking: Ranking, started: float, candidates: int, trace_top: int
+) -> StageTrace:
+    top = _entries(snapshot, ranking, trace_top, None)
+    counts = {"candidates": candidates, "matched": ranking.matched, "ranked": len(ranking)}
+    return StageTrace(ranking.name, _since(started), counts, top)
+
+
+def _entries(
+    snapshot: IndexSnapshot,
+    ranking: Ranking,
+    limit: int,
+    ranks_of: Callable[[int], dict[str, int | None]] | None,
+) -> tuple[TraceEntry, ...]:
+    rows = ranking.rows[:limit].tolist()
+    scores = ranking.scores[:limit].tolist()
+    return tuple(
+        TraceEntry(snapshot.chunk_ids[row], score, rank, ranks_of(row) if ranks_of else None)
+        for rank, (row, score) in enumerate(zip(rows, scores, strict=True), start=1)
+    )

@@ -18,7 +18,8 @@ from service.bench.timing import time_each
 from service.config import Settings
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.collections import CollectionSpec, put_collection
-from service.usecases.documents import materialise, prepare_document, upsert_documents
+from service.usecases.documents import prepare_document, upsert_documents
+from service.usecases.drafts import materialise
 from service.usecases.runtime import Runtime
 
 COLLECTION = "bench"
@@ -58,7 +59,9 @@ def run_model(*, queries: QuerySet, documents: int, seed: int) -> dict[str, Any]
             embedded = [
                 chunk.embedded_text
                 for index, raw in enumerate(batch)
-                for chunk in materialise(runtime, prepare_document(raw, index, {}), chunking).chunks
+                for chunk in materialise(
+                    embedder, prepare_document(raw, index, {}), chunking
+                ).chunks
             ]
         finally:
             runtime.close()

@@ -19,17 +19,15 @@ import threading
 from bisect import bisect_right
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, SupportsIndex, TypeVar, overload
+from typing import Any, SupportsIndex, TypeVar, overload
 
 import numpy as np
 
 from service.attributes import AttributeValue, Schema
+from service.filters.columns import AttributeColumns
 from service.index.buffers import write_rows
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalIndex
 from service.index.vectors import Metric, VectorMatrix
-
-if TYPE_CHECKING:
-    from service.filters.columns import AttributeColumns
 
 T = TypeVar("T")
 
@@ -500,6 +498,4 @@ def _build_columns(
 ) -> AttributeColumns | None:
     if schema is None:
         return None
-    from service.filters.columns import AttributeColumns
-
     return AttributeColumns.build(schema, rows)

@@ -7,14 +7,10 @@ so a reader sees the old version or the new one and a rejected batch leaves the 
 
 from __future__ import annotations
 
-import hashlib
-import json
 import re
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from collections.abc import Sequence
 from typing import Any
 
-import numpy as np
 from sqlalchemy.orm import Session
 
 from service.attributes import (
@@ -24,20 +20,24 @@ from service.attributes import (
     normalize_value,
     to_json_value,
 )
-from service.embedding.base import text_hash
 from service.errors import DocumentNotFound, InvalidDocuments, InvalidRequest, LimitExceeded
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
 from service.index.records import chunk_id
-from service.ingest.chunking import chunk_document
-from service.ingest.embedding_text import embedding_input
-from service.ingest.parsing import parse_document
 from service.store import repository
 from service.store.attribute_rows import attribute_value_rows
 from service.store.filter_sql import compile_filter
 from service.store.tables import CollectionRow, DocumentRow
 from service.usecases.callers import Caller, Role
 from service.usecases.collections import attribute_schema, load_collection
+from service.usecases.drafts import (
+    MaterialisedDocument,
+    PreparedDocument,
+    chunk_rows,
+    content_hash,
+    embed_drafts,
+    materialise,
+)
 from service.usecases.runtime import Runtime
 
 DOCUMENT_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
@@ -52,42 +52,6 @@ class DocumentProblem(ValueError):
         super().__init__(message)
         self.reason = reason
         self.message = message
-
-
-@dataclass(frozen=True)
-class PreparedDocument:
-    """A validated document: normalised values plus the hash that makes re-sends no-ops."""
-
-    index: int
-    external_id: str
-    title: str
-    media_type: str
-    source_url: str | None
-    source_text: str
-    attributes: dict[str, AttributeValue]
-    attributes_json: dict[str, Any]
-    access: tuple[str, ...]
-    content_hash: str
-
-
-@dataclass(frozen=True)
-class ChunkDraft:
-    ordinal: int
-    text: str
-    char_start: int
-    char_end: int
-    tokens: int
-    section: str
-    embedded_text: str
-    embedded_text_hash: str
-
-
-@dataclass(frozen=True)
-class MaterialisedDocument:
-    prepared: PreparedDocument
-    text: str
-    sections: list[list[Any]]
-    chunks: tuple[ChunkDraft, ...]
 
 
 def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
@@ -153,11 +117,6 @@ def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
         )
     access = tuple(sorted(set(access_raw)))
     attributes_json = {name: to_json_value(attributes[name]) for name in sorted(attributes)}
-    canonical = json.dumps(
-        [title, text, media_type, source_url, attributes_json, access],
-        ensure_ascii=False,
-        sort_keys=True,
-    )
     return PreparedDocument(
         index=index,
         external_id=external_id,
@@ -168,7 +127,14 @@ def prepare_document(raw: Any, index: int, schema: Schema) -> PreparedDocument:
         attributes=attributes,
         attributes_json=attributes_json,
         access=access,
-        content_hash=hashlib.sha256(canonical.encode("utf-8")).hexdigest(),
+        content_hash=content_hash(
+            title=title,
+            text=text,
+            media_type=media_type,
+            source_url=source_url,
+            attributes_json=attributes_json,
+            access=access,
+        ),
     )
 
 
@@ -179,62 +145,6 @@ def _check_text(value: str, field: str) -> None:
         value.encode("utf-8")
     except UnicodeEncodeError:
         raise DocumentProblem("invalid_text", f"The {field} is not valid Unicode text.") from None
-
-
-def materialise(
-    runtime: Runtime, prepared: PreparedDocument, chunking: Mapping[str, int]
-) -> MaterialisedDocument:
-    """Parse and chunk a document and compute the text each chunk is embedded as."""
-    parsed = parse_document(prepared.source_text, prepared.media_type)
-    counter = runtime.embedder.tokens
-    spans = chunk_document(
-        parsed,
-        counter,
-        max_tokens=chunking["max_tokens"],
-        overlap_tokens=chunking["overlap_tokens"],
-    )
-    drafts = []
-    for span in spans:
-        embedded = embedding_input(
-            prepared.title,
-            span.section,
-            span.text,
-            counter,
-            runtime.embedder.window - runtime.embedder.special_tokens,
-        )
-        drafts.append(
-            ChunkDraft(
-                ordinal=span.ordinal,
-                text=span.text,
-                char_start=span.char_start,
-                char_end=span.char_end,
-                tokens=span.tokens,
-                section=span.section,
-                embedded_text=embedded,
-                embedded_text_hash=text_hash(embedded),
-            )
-        )
-    sections = [[s.start, s.end, list(s.path)] for s in parsed.sections]
-    return MaterialisedDocument(prepared, parsed.text, sections, tuple(drafts))
-
-
-def embed_drafts(
-    runtime: Runtime, session: Session, drafts: Sequence[ChunkDraft]
-) -> dict[str, np.ndarray]:
-    """Vectors for every draft: from the cache where the text was seen, else from the model."""
-    name = runtime.embedder.name
-    hashes = [d.embedded_text_hash for d in drafts]
-    vectors = repository.cached_embeddings(session, name, hashes)
-    missing: dict[str, str] = {}
-    for draft in drafts:
-        if draft.embedded_text_hash not in vectors:
-            missing.setdefault(draft.embedded_text_hash, draft.embedded_text)
-    if missing:
-        fresh = runtime.embedder.embed_documents(list(missing.values()))
-        new_vectors = dict(zip(missing, fresh, strict=True))
-        repository.store_embeddings(session, name, new_vectors)
-        vectors.update(new_vectors)
-    return vectors
 
 
 def _check_limits(runtime: Runtime, documents: Sequence[Any]) -> None:
@@ -318,13 +228,17 @@ def upsert_documents(
         if existing.get(d.external_id) is None
         or existing[d.external_id].content_hash != d.content_hash
     ]
-    built = {d.external_id: materialise(runtime, d, chunking) for d in changed}
-    rebuilt = {d.external_id: materialise(runtime, d, pending) for d in changed} if pending else {}
+    built = {d.external_id: materialise(runtime.embedder, d, chunking) for d in changed}
+    rebuilt = (
+        {d.external_id: materialise(runtime.embedder, d, pending) for d in changed}
+        if pending
+        else {}
+    )
     results: list[dict[str, Any]] = []
     with runtime.transaction() as session:
         row = load_collection(session, caller, collection)
         all_drafts = [c for m in (*built.values(), *rebuilt.values()) for c in m.chunks]
-        vectors = embed_drafts(runtime, session, all_drafts)
+        vectors = embed_drafts(runtime.embedder, session, all_drafts)
         current = repository.documents_by_external_id(
             session, row.id, [d.external_id for d in changed]
         )
@@ -386,22 +300,6 @@ def upsert_documents(
     return results
 
 
-def prepared_from_row(row: DocumentRow) -> PreparedDocument:
-    """The stored form of a document, for re-chunking without the caller."""
-    return PreparedDocument(
-        index=0,
-        external_id=row.external_id,
-        title=row.title,
-        media_type=row.media_type,
-        source_url=row.source_url,
-        source_text=row.source_text,
-        attributes={},
-        attributes_json=dict(row.attributes),
-        access=tuple(row.access),
-        content_hash=row.content_hash,
-    )
-
-
 def _problem(raw_id: Any, index: int, reason: str, message: str) -> dict[str, Any]:
     return {
         "id": raw_id if isinstance(raw_id, str) else None,
@@ -423,21 +321,6 @@ def _fill_document(row: DocumentRow, material: MaterialisedDocument, now: Any) -
     row.attributes = doc.attributes_json
     row.access = list(doc.access)
     row.updated_at = now
-
-
-def chunk_rows(material: MaterialisedDocument) -> list[dict[str, Any]]:
-    return [
-        {
-            "ordinal": c.ordinal,
-            "text": c.text,
-            "char_start": c.char_start,
-            "char_end": c.char_end,
-            "tokens": c.tokens,
-            "section": c.section,
-            "embedded_text_hash": c.embedded_text_hash,
-        }
-        for c in material.chunks
-    ]
 
 
 def document_view(session: Session, row: DocumentRow, collection: CollectionRow) -> dict[str, Any]:

@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import threading
-from typing import TYPE_CHECKING
 
+from service.config import Settings
+from service.embedding.base import Embedder
 from service.errors import InvalidRequest
 from service.generation.base import Generator
 from service.generation.chat_http import ChatHttpGenerator
@@ -12,20 +13,20 @@ from service.generation.extractive import ExtractiveGenerator
 from service.index.analyzer import Analyzer
 from service.logging_setup import register_secret
 
-if TYPE_CHECKING:
-    from service.usecases.runtime import Runtime
-
 GENERATOR_NAMES = ("extractive", "chat-http")
 
 
 class GeneratorRegistry:
-    def __init__(self, runtime: Runtime) -> None:
-        self._runtime = runtime
+    """Builds each generator once, on first use, from the settings and the embedder."""
+
+    def __init__(self, settings: Settings, embedder: Embedder) -> None:
+        self._settings = settings
+        self._embedder = embedder
         self._built: dict[str, Generator] = {}
         self._lock = threading.Lock()
 
     def get(self, name: str | None) -> Generator:
-        chosen = name or self._runtime.settings.generator
+        chosen = name or self._settings.generator
         if chosen not in GENERATOR_NAMES:
             raise InvalidRequest(
                 f"Unknown generator {chosen!r}; choose extractive or chat-http.", field="generator"
@@ -36,8 +37,8 @@ class GeneratorRegistry:
             return self._built[chosen]
 
     def _build(self, name: str) -> Generator:
-        settings = self._runtime.settings
-        embedder = self._runtime.embedder
+        settings = self._settings
+        embedder = self._embedder
         if name == "extractive":
             return ExtractiveGenerator(
                 embed_query=embedder.embed_query,

@@ -2,8 +2,11 @@
 
 Writes through this process are applied directly; writes made elsewhere (the CLI, another
 replica) are found through the collection's revision and change log, checked at most every
-``index_poll_ms`` before a query. No query reads chunks or the collection row from the
+``poll_seconds`` before a query. No query reads chunks or the collection row from the
 database: the collection's facts are kept beside its index and refreshed by the same check.
+
+The registry reads the store through an ``IndexSource`` (``StoreIndexSource`` in a running
+process), so what it does with what it reads can be tested without a store.
 """
 
 from __future__ import annotations
@@ -12,10 +15,11 @@ import logging
 import threading
 import time
 from collections.abc import Mapping
-from dataclasses import dataclass, replace
-from typing import TYPE_CHECKING, Any, cast
+from dataclasses import dataclass, field, replace
+from typing import Any, Protocol, cast
 
 import numpy as np
+from sqlalchemy.orm import Session, sessionmaker
 
 from service.attributes import AttributeValue, Schema, normalize_value, parse_schema
 from service.errors import CollectionNotFound
@@ -26,11 +30,9 @@ from service.index.records import chunk_record
 from service.index.vectors import Metric
 from service.index.view import CollectionFacts, IndexView
 from service.store import repository
+from service.store.db import unit_of_work
 from service.store.tables import ChunkRow, DocumentRow
-
-if TYPE_CHECKING:
-    from service.usecases.documents import MaterialisedDocument
-    from service.usecases.runtime import Runtime
+from service.usecases.drafts import MaterialisedDocument
 
 log = logging.getLogger("excerpta.index")
 
@@ -40,6 +42,55 @@ def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
         english_stopwords() if retrieval.get("stopwords", True) else None,
         "english" if retrieval.get("stemming", True) else None,
     )
+
+
+@dataclass(frozen=True)
+class LoadedCollection:
+    """A collection as the store holds it, analysed and ready to index."""
+
+    facts: CollectionFacts
+    generation: int
+    revision: int
+    scoring: LexicalScoring
+    metric: Metric
+    analyzer: Analyzer
+    records: list[ChunkRecord]
+
+
+@dataclass(frozen=True)
+class CollectionUpdate:
+    """What the store says of a collection an index holds at some revision.
+
+    ``reset``: the index must be built afresh (a schema, scoring or chunking change); otherwise
+    ``documents`` gives every changed document's rows now (an empty list: it is gone) and
+    ``revision`` the revision they bring the index to.
+    """
+
+    cite_attributes: tuple[str, ...]
+    answer_caution: str | None
+    revision: int
+    reset: bool = False
+    documents: dict[str, list[ChunkRecord]] = field(default_factory=dict)
+
+
+class IndexSource(Protocol):
+    """Where the registry reads collections from: the store (``StoreIndexSource``)."""
+
+    def load(self, name: str) -> LoadedCollection:
+        """The named collection whole; raises ``CollectionNotFound``."""
+        ...
+
+    def update(
+        self,
+        collection_id: int,
+        *,
+        revision: int,
+        generation: int,
+        analyzer: Analyzer,
+        schema: Schema,
+    ) -> CollectionUpdate | None:
+        """What changed since ``revision``, or None when the collection is gone."""
+        ...
 
 
 @dataclass
@@ -55,8 +106,27 @@ class _Entry:
 
 
 class IndexRegistry:
-    def __init__(self, runtime: Runtime) -> None:
-        self._runtime = runtime
+    """One index per collection, built on first use and kept current.
+
+    ``poll_seconds`` bounds how stale a query's view of writes made elsewhere may be;
+    ``compact_after`` tombstoned rows make the background thread (``start_background``)
+    rebuild an index without them.
+    """
+
+    def __init__(
+        self,
+        source: IndexSource,
+        *,
+        dimensions: int,
+        poll_seconds: float,
+        compact_after: int,
+        compact_every_seconds: float = 2.0,
+    ) -> None:
+        self._source = source
+        self._dimensions = dimensions
+        self._poll_seconds = poll_seconds
+        self._compact_after = compact_after
+        self._compact_every_seconds = compact_every_seconds
         self._entries: dict[str, _Entry] = {}
         self._lock = threading.Lock()
         self._stopping = threading.Event()
@@ -66,7 +136,7 @@ class IndexRegistry:
 
     def view(self, name: str) -> IndexView:
         entry = self._entry(name)
-        poll = self._runtime.settings.index_poll_ms / 1000.0
+        poll = self._poll_seconds
         if time.monotonic() - entry.checked_at >= poll:
             with entry.lock:
                 if time.monotonic() - entry.checked_at >= poll:
@@ -98,83 +168,53 @@ class IndexRegistry:
     # building and catching up --------------------------------------------------------------
 
     def _load(self, name: str) -> _Entry:
-        with self._runtime.transaction() as session:
-            row = repository.collection_by_name(session, name)
-            if row is None:
-                raise CollectionNotFound(f"Collection {name!r} does not exist.")
-            schema = parse_schema(row.attributes)
-            retrieval = dict(row.settings.get("retrieval", {}))
-            analyzer = analyzer_for(retrieval)
-            scoring = LexicalScoring(
-                k1=float(retrieval.get("k1", DEFAULT_K1)),
-                b=float(retrieval.get("b", DEFAULT_B)),
-                variant=cast(Bm25Variant, retrieval.get("bm25", "smoothed")),
-            )
-            rows = repository.index_rows(session, row.id, row.chunk_generation, None)
-            records = [self._record(analyzer, schema, d, c, v) for d, c, v in rows]
-            index = CollectionIndex.build(
-                records,
-                schema=schema,
-                metric=cast(Metric, retrieval.get("metric", "cosine")),
-                dimension=self._runtime.embedder.dimensions,
-                revision=row.revision,
-                bm25_k1=scoring.k1,
-                bm25_b=scoring.b,
-            )
-            return _Entry(
-                facts=CollectionFacts(
-                    collection_id=row.id,
-                    schema=schema,
-                    cite_attributes=tuple(row.cite_attributes),
-                    answer_caution=row.answer_caution,
-                ),
-                generation=row.chunk_generation,
-                scoring=scoring,
-                analyzer=analyzer,
-                index=index,
-                revision=row.revision,
-                checked_at=time.monotonic(),
-                lock=threading.Lock(),
-            )
+        loaded = self._source.load(name)
+        index = CollectionIndex.build(
+            loaded.records,
+            schema=loaded.facts.schema,
+            metric=loaded.metric,
+            dimension=self._dimensions,
+            revision=loaded.revision,
+            bm25_k1=loaded.scoring.k1,
+            bm25_b=loaded.scoring.b,
+        )
+        return _Entry(
+            facts=loaded.facts,
+            generation=loaded.generation,
+            scoring=loaded.scoring,
+            analyzer=loaded.analyzer,
+            index=index,
+            revision=loaded.revision,
+            checked_at=time.monotonic(),
+            lock=threading.Lock(),
+        )
 
     def _catch_up(self, name: str, entry: _Entry) -> None:
-        collection_id = entry.facts.collection_id
-        with self._runtime.transaction() as session:
-            state = repository.collection_state(session, collection_id)
-            if state is None:
-                # Deleted, perhaps made again under the same name: the next lookup loads afresh.
-                self.forget(name)
-                return
-            entry.facts = replace(
-                entry.facts,
-                cite_attributes=tuple(state.cite_attributes),
-                answer_caution=state.answer_caution,
-            )
-            entry.checked_at = time.monotonic()
-            if state.revision == entry.revision:
-                return
-            changes = repository.changes_since(session, collection_id, entry.revision)
-            if any(change.operation == "reset" for change in changes):
-                reset = True
-            else:
-                reset = False
-                document_ids = sorted({c.document_id for c in changes if c.document_id})
-                found = repository.documents_by_external_id(session, collection_id, document_ids)
-                rows = repository.index_rows(
-                    session, collection_id, entry.generation, [d.id for d in found.values()]
-                )
-                grouped: dict[str, list[ChunkRecord]] = {doc: [] for doc in document_ids}
-                for document, chunk, vector in rows:
-                    grouped[document.external_id].append(
-                        self._record(entry.analyzer, entry.facts.schema, document, chunk, vector)
-                    )
-        if reset:
+        update = self._source.update(
+            entry.facts.collection_id,
+            revision=entry.revision,
+            generation=entry.generation,
+            analyzer=entry.analyzer,
+            schema=entry.facts.schema,
+        )
+        if update is None:
+            # Deleted, perhaps made again under the same name: the next lookup loads afresh.
+            self.forget(name)
+            return
+        entry.facts = replace(
+            entry.facts,
+            cite_attributes=update.cite_attributes,
+            answer_caution=update.answer_caution,
+        )
+        entry.checked_at = time.monotonic()
+        if update.reset:
             replacement = self._load(name)
             with self._lock:
                 self._entries[name] = replacement
             return
-        entry.revision = max([entry.revision, *(c.revision for c in changes)])
-        entry.index.replace_documents(grouped, revision=entry.revision)
+        if update.revision != entry.revision or update.documents:
+            entry.revision = update.revision
+            entry.index.replace_documents(update.documents, revision=entry.revision)
 
     def after_write(
         self,
@@ -193,7 +233,7 @@ class IndexRegistry:
                 return
             grouped = {
                 document_id: (
-                    [] if item is None else self._records_from_material(entry, item[0], item[1])
+                    [] if item is None else _records_from_material(entry, item[0], item[1])
                 )
                 for document_id, item in changed.items()
             }
@@ -203,43 +243,6 @@ class IndexRegistry:
     def forget(self, name: str) -> None:
         with self._lock:
             self._entries.pop(name, None)
-
-    # records --------------------------------------------------------------------------------
-
-    def _record(
-        self,
-        analyzer: Analyzer,
-        schema: Schema,
-        document: DocumentRow,
-        chunk: ChunkRow,
-        vector: bytes,
-    ) -> ChunkRecord:
-        return chunk_record(
-            analyzer,
-            document_id=document.external_id,
-            title=document.title,
-            attributes=_attributes_from_json(schema, document.attributes),
-            access=tuple(document.access),
-            chunk=chunk,
-            vector=np.frombuffer(vector, dtype=np.float32),
-        )
-
-    def _records_from_material(
-        self, entry: _Entry, material: MaterialisedDocument, vectors: Mapping[str, np.ndarray]
-    ) -> list[ChunkRecord]:
-        doc = material.prepared
-        return [
-            chunk_record(
-                entry.analyzer,
-                document_id=doc.external_id,
-                title=doc.title,
-                attributes=dict(doc.attributes),
-                access=doc.access,
-                chunk=c,
-                vector=np.asarray(vectors[c.embedded_text_hash], dtype=np.float32),
-            )
-            for c in material.chunks
-        ]
 
     # background compaction ------------------------------------------------------------------
 
@@ -251,12 +254,11 @@ class IndexRegistry:
             self._compactor.start()
 
     def _compact_loop(self) -> None:
-        threshold = self._runtime.settings.compact_after_deleted_rows
-        while not self._stopping.wait(2.0):
+        while not self._stopping.wait(self._compact_every_seconds):
             with self._lock:
                 entries = list(self._entries.values())
             for entry in entries:
-                if entry.index.tombstoned_rows() >= threshold:
+                if entry.index.tombstoned_rows() >= self._compact_after:
                     with entry.lock:
                         entry.index.compact()
 
@@ -264,6 +266,115 @@ class IndexRegistry:
         self._stopping.set()
         if self._compactor is not None:
             self._compactor.join(timeout=5)
+
+
+class StoreIndexSource:
+    """Reads collections for the registry from the store, one transaction per read."""
+
+    def __init__(self, sessions: sessionmaker[Session]) -> None:
+        self._sessions = sessions
+
+    def load(self, name: str) -> LoadedCollection:
+        with unit_of_work(self._sessions) as session:
+            row = repository.collection_by_name(session, name)
+            if row is None:
+                raise CollectionNotFound(f"Collection {name!r} does not exist.")
+            schema = parse_schema(row.attributes)
+            retrieval = dict(row.settings.get("retrieval", {}))
+            analyzer = analyzer_for(retrieval)
+            rows = repository.index_rows(session, row.id, row.chunk_generation, None)
+            return LoadedCollection(
+                facts=CollectionFacts(
+                    collection_id=row.id,
+                    schema=schema,
+                    cite_attributes=tuple(row.cite_attributes),
+                    answer_caution=row.answer_caution,
+                ),
+                generation=row.chunk_generation,
+                revision=row.revision,
+                scoring=LexicalScoring(
+                    k1=float(retrieval.get("k1", DEFAULT_K1)),
+                    b=float(retrieval.get("b", DEFAULT_B)),
+                    variant=cast(Bm25Variant, retrieval.get("bm25", "smoothed")),
+                ),
+                metric=cast(Metric, retrieval.get("metric", "cosine")),
+                analyzer=analyzer,
+                records=[_stored_record(analyzer, schema, d, c, v) for d, c, v in rows],
+            )
+
+    def update(
+        self,
+        collection_id: int,
+        *,
+        revision: int,
+        generation: int,
+        analyzer: Analyzer,
+        schema: Schema,
+    ) -> CollectionUpdate | None:
+        with unit_of_work(self._sessions) as session:
+            state = repository.collection_state(session, collection_id)
+            if state is None:
+                return None
+            unchanged = CollectionUpdate(
+                cite_attributes=tuple(state.cite_attributes),
+                answer_caution=state.answer_caution,
+                revision=revision,
+            )
+            if state.revision == revision:
+                return unchanged
+            changes = repository.changes_since(session, collection_id, revision)
+            if any(change.operation == "reset" for change in changes):
+                return replace(unchanged, reset=True)
+            document_ids = sorted({c.document_id for c in changes if c.document_id})
+            found = repository.documents_by_external_id(session, collection_id, document_ids)
+            rows = repository.index_rows(
+                session, collection_id, generation, [d.id for d in found.values()]
+            )
+            grouped: dict[str, list[ChunkRecord]] = {doc: [] for doc in document_ids}
+            for document, chunk, vector in rows:
+                grouped[document.external_id].append(
+                    _stored_record(analyzer, schema, document, chunk, vector)
+                )
+        return replace(
+            unchanged,
+            revision=max([revision, *(c.revision for c in changes)]),
+            documents=grouped,
+        )
+
+
+# records ------------------------------------------------------------------------------------
+
+
+def _stored_record(
+    analyzer: Analyzer, schema: Schema, document: DocumentRow, chunk: ChunkRow, vector: bytes
+) -> ChunkRecord:
+    return chunk_record(
+        analyzer,
+        document_id=document.external_id,
+        title=document.title,
+        attributes=_attributes_from_json(schema, document.attributes),
+        access=tuple(document.access),
+        chunk=chunk,
+        vector=np.frombuffer(vector, dtype=np.float32),
+    )
+
+
+def _records_from_material(
+    entry: _Entry, material: MaterialisedDocument, vectors: Mapping[str, np.ndarray]
+) -> list[ChunkRecord]:
+    doc = material.prepared
+    return [
+        chunk_record(
+            entry.analyzer,
+            document_id=doc.external_id,
+            title=doc.title,
+            attributes=dict(doc.attributes),
+            access=doc.access,
+            chunk=c,
+            vector=np.asarray(vectors[c.embedded_text_hash], dtype=np.float32),
+        )
+        for c in material.chunks
+    ]
 
 
 def _attributes_from_json(schema: Schema, stored: Mapping[str, Any]) -> dict[str, AttributeValue]:

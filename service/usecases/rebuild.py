@@ -3,30 +3,50 @@
 New chunks are written as the next generation while queries keep reading the current one;
 when every document has them, one transaction switches the generation and drops the old
 chunks, and the change log tells every index to reload.
+
+``RebuildWorker`` is the thread that schedules the work; it is handed the step it runs
+(``rebuild_batch``, bound to the store and the embedder by the runtime) and the way to find
+unfinished rebuilds, so its scheduling can be tested without a store.
 """
 
 from __future__ import annotations
 
 import logging
 import threading
-from typing import TYPE_CHECKING
+from collections.abc import Callable
 
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.embedding.base import Embedder
 from service.store import repository
+from service.store.db import unit_of_work
 from service.store.tables import DocumentRow
-
-if TYPE_CHECKING:
-    from service.usecases.runtime import Runtime
+from service.usecases.drafts import chunk_rows, embed_drafts, materialise, prepared_from_row
 
 log = logging.getLogger("excerpta.rebuild")
 BATCH = 16
+RETRY_SECONDS = 1.0
 
 
 class RebuildWorker:
-    def __init__(self, runtime: Runtime) -> None:
-        self._runtime = runtime
+    """Runs ``step(collection)`` until it answers True, one collection at a time.
+
+    A step that raises is logged and retried after ``retry_seconds``; ``pending`` names the
+    collections a previous process left half rebuilt.
+    """
+
+    def __init__(
+        self,
+        step: Callable[[str], bool],
+        pending: Callable[[], list[str]],
+        *,
+        retry_seconds: float = RETRY_SECONDS,
+    ) -> None:
+        self._step = step
+        self._pending = pending
+        self._retry_seconds = retry_seconds
         self._wanted: set[str] = set()
         self._lock = threading.Lock()
-        self._wake = threading.Event()
         self._stopping = threading.Event()
         self._thread: threading.Thread | None = None
 
@@ -38,17 +58,10 @@ class RebuildWorker:
                     target=self._run, name="excerpta-rebuild", daemon=True
                 )
                 self._thread.start()
-        self._wake.set()
 
     def resume(self) -> None:
         """Pick up rebuilds a previous process left unfinished."""
-        with self._runtime.transaction() as session:
-            names = [
-                row.name
-                for row in repository.all_collections(session)
-                if row.settings.get("pending_chunking")
-            ]
-        for name in names:
+        for name in self._pending():
             self.start(name)
 
     def wait(self, timeout: float | None = None) -> bool:
@@ -60,7 +73,6 @@ class RebuildWorker:
 
     def stop(self) -> None:
         self._stopping.set()
-        self._wake.set()
         if self._thread is not None:
             self._thread.join(timeout=10)
 
@@ -72,49 +84,51 @@ class RebuildWorker:
                     return
                 name = sorted(self._wanted)[0]
             try:
-                finished = self.step(name)
+                finished = self._step(name)
             except Exception:
                 log.exception("rebuild of collection %r failed; it will be retried", name)
                 finished = False
-                self._stopping.wait(1.0)
+                self._stopping.wait(self._retry_seconds)
             if finished:
                 with self._lock:
                     self._wanted.discard(name)
 
-    def step(self, name: str) -> bool:
-        """Re-chunk one batch of documents; True when the collection has switched over."""
-        from service.usecases.documents import (
-            chunk_rows,
-            embed_drafts,
-            materialise,
-            prepared_from_row,
-        )
 
-        runtime = self._runtime
-        with runtime.transaction() as session:
-            row = repository.collection_by_name(session, name)
-            if row is None or not row.settings.get("pending_chunking"):
-                return True
-            pending = dict(row.settings["pending_chunking"])
-            target = row.chunk_generation + 1
-            documents: list[DocumentRow] = repository.documents_without_generation(
-                session, row.id, target, BATCH
-            )
-            if not documents:
-                settings = dict(row.settings)
-                settings.pop("pending_chunking", None)
-                row.settings = settings
-                row.chunking = pending
-                row.chunk_generation = target
-                row.rebuild_done = None
-                row.rebuild_total = None
-                repository.drop_generations_except(session, row.id, target)
-                repository.bump_revision(session, row, [(None, "reset")])
-                return True
-            materials = [materialise(runtime, prepared_from_row(d), pending) for d in documents]
-            embed_drafts(runtime, session, [c for m in materials for c in m.chunks])
-            for document, material in zip(documents, materials, strict=True):
-                repository.replace_chunks(session, document.id, target, chunk_rows(material))
-            row.rebuild_done = (row.rebuild_done or 0) + len(documents)
-            row.rebuild_total = max(row.rebuild_total or 0, row.rebuild_done)
-        return False
+def pending_rebuilds(sessions: sessionmaker[Session]) -> list[str]:
+    with unit_of_work(sessions) as session:
+        return [
+            row.name
+            for row in repository.all_collections(session)
+            if row.settings.get("pending_chunking")
+        ]
+
+
+def rebuild_batch(sessions: sessionmaker[Session], embedder: Embedder, name: str) -> bool:
+    """Re-chunk one batch of documents; True when the collection has switched over."""
+    with unit_of_work(sessions) as session:
+        row = repository.collection_by_name(session, name)
+        if row is None or not row.settings.get("pending_chunking"):
+            return True
+        pending = dict(row.settings["pending_chunking"])
+        target = row.chunk_generation + 1
+        documents: list[DocumentRow] = repository.documents_without_generation(
+            session, row.id, target, BATCH
+        )
+        if not documents:
+            settings = dict(row.settings)
+            settings.pop("pending_chunking", None)
+            row.settings = settings
+            row.chunking = pending
+            row.chunk_generation = target
+            row.rebuild_done = None
+            row.rebuild_total = None
+            repository.drop_generations_except(session, row.id, target)
+            repository.bump_revision(session, row, [(None, "reset")])
+            return True
+        materials = [materialise(embedder, prepared_from_row(d), pending) for d in documents]
+        embed_drafts(embedder, session, [c for m in materials for c in m.chunks])
+        for document, material in zip(documents, materials, strict=True):
+            repository.replace_chunks(session, document.id, target, chunk_rows(material))
+        row.rebuild_done = (row.rebuild_done or 0) + len(documents)
+        row.rebuild_total = max(row.rebuild_total or 0, row.rebuild_done)
+    return False

@@ -1,14 +1,16 @@
 """The long-lived pieces one process shares: settings, store, embedder, indexes, workers.
 
 The API and the CLI each build one ``Runtime`` and hand it to every use case, so tests can build
-one with a scratch store and a test embedder.
+one with a scratch store and a test embedder. The runtime only assembles: each worker is given
+the few things it uses (the session factory, the embedder, settings values, store operations
+bound to this store) and none of them knows the runtime.
 """
 
 from __future__ import annotations
 
 from collections.abc import Iterator
 from contextlib import contextmanager
-from typing import TYPE_CHECKING
+from functools import partial
 
 from sqlalchemy import Connection, Engine
 from sqlalchemy.orm import Session, sessionmaker
@@ -17,12 +19,10 @@ from service.config import Settings
 from service.embedding.base import Embedder
 from service.store.db import make_engine, migrate, session_factory, unit_of_work
 from service.store.repository import KeyReader
-
-if TYPE_CHECKING:
-    from service.usecases.generators import GeneratorRegistry
-    from service.usecases.indexes import IndexRegistry
-    from service.usecases.rebuild import RebuildWorker
-    from service.usecases.traces import TraceWriter
+from service.usecases.generators import GeneratorRegistry
+from service.usecases.indexes import IndexRegistry, StoreIndexSource
+from service.usecases.rebuild import RebuildWorker, pending_rebuilds, rebuild_batch
+from service.usecases.trace_writer import TraceWriter, prune_traces, write_traces
 
 
 class Runtime:
@@ -34,11 +34,6 @@ class Runtime:
         engine: Engine | None = None,
         run_migrations: bool = True,
     ) -> None:
-        from service.usecases.generators import GeneratorRegistry
-        from service.usecases.indexes import IndexRegistry
-        from service.usecases.rebuild import RebuildWorker
-        from service.usecases.traces import TraceWriter
-
         self.settings = settings
         self.embedder = embedder
         self.engine = engine or make_engine(settings.resolved_database_url())
@@ -46,10 +41,26 @@ class Runtime:
             migrate(self.engine)
         self.sessions: sessionmaker[Session] = session_factory(self.engine)
         self.key_reader = KeyReader(self.engine)
-        self.indexes: IndexRegistry = IndexRegistry(self)
-        self.rebuilds: RebuildWorker = RebuildWorker(self)
-        self.generators: GeneratorRegistry = GeneratorRegistry(self)
-        self.traces: TraceWriter = TraceWriter(self)
+        self.indexes = IndexRegistry(
+            StoreIndexSource(self.sessions),
+            dimensions=embedder.dimensions,
+            poll_seconds=settings.index_poll_ms / 1000.0,
+            compact_after=settings.compact_after_deleted_rows,
+        )
+        self.rebuilds = RebuildWorker(
+            step=partial(rebuild_batch, self.sessions, embedder),
+            pending=partial(pending_rebuilds, self.sessions),
+        )
+        self.generators = GeneratorRegistry(settings, embedder)
+        self.traces = TraceWriter(
+            write=partial(write_traces, self.engine),
+            prune=partial(
+                prune_traces,
+                self.sessions,
+                retention_days=settings.trace_retention_days,
+                retention_count=settings.trace_retention_count,
+            ),
+        )
 
     @contextmanager
     def transaction(self) -> Iterator[Session]:

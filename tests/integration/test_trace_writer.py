@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
+from functools import partial
 from typing import Any
 
 import pytest
@@ -16,7 +17,7 @@ from sqlalchemy import Engine, func, select
 from service.errors import TraceNotFound
 from service.store import repository
 from service.store.tables import TraceRow
-from service.usecases import answering, documents, traces
+from service.usecases import answering, documents, trace_writer, traces
 from service.usecases.callers import LOCAL_ADMIN, Caller, Role
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions
@@ -47,7 +48,7 @@ def test_a_trace_is_readable_at_once_and_stored_within_a_batch(replica: Runtime)
     assert traces.get_trace(replica, LOCAL_ADMIN, trace_id)["trace_id"] == trace_id
     deadline = time.monotonic() + 5
     while stored_traces(replica) == 0 and time.monotonic() < deadline:
-        time.sleep(traces.BATCH_SECONDS / 5)
+        time.sleep(trace_writer.BATCH_SECONDS / 5)
     assert stored_traces(replica) == 1
 
 
@@ -81,7 +82,9 @@ def test_stopping_writes_every_held_trace_in_one_batch(
         insert(connection, rows)
 
     monkeypatch.setattr(repository, "insert_traces", counting)
-    replica.traces = traces.TraceWriter(replica, batch_seconds=60.0)  # nothing until stopped
+    replica.traces = trace_writer.TraceWriter(  # nothing until stopped
+        partial(trace_writer.write_traces, replica.engine), lambda: None, batch_seconds=60.0
+    )
     ids = [search(replica) for _ in range(5)]
     assert stored_traces(replica) == 0
     replica.traces.stop()
@@ -107,7 +110,7 @@ def test_a_trace_the_store_refused_is_kept_and_written_on_the_next_try(
     deadline = time.monotonic() + 5
     while len(attempts) < 2 and time.monotonic() < deadline:
         assert traces.get_trace(replica, LOCAL_ADMIN, trace_id)["trace_id"] == trace_id
-        time.sleep(traces.BATCH_SECONDS / 5)
+        time.sleep(trace_writer.BATCH_SECONDS / 5)
     replica.traces.stop()
     assert len(attempts) >= 2
     assert stored_traces(replica) == 1

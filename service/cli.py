@@ -22,8 +22,8 @@ from service.errors import InvalidDocuments, ServiceError
 DEMO_COLLECTION = "bikes"
 
 
-def _settings(args: argparse.Namespace) -> Settings:
-    overrides: dict[str, Any] = {}
+def _settings(args: argparse.Namespace, **fixed: Any) -> Settings:
+    overrides: dict[str, Any] = dict(fixed)
     for name in ("data_dir", "database_url", "host", "port"):
         value = getattr(args, name, None)
         if value is not None:
@@ -31,10 +31,10 @@ def _settings(args: argparse.Namespace) -> Settings:
     return Settings(**overrides)
 
 
-def _runtime(args: argparse.Namespace) -> Any:
+def _runtime(args: argparse.Namespace, **fixed: Any) -> Any:
     from service.usecases.runtime import Runtime, load_embedder
 
-    settings = _settings(args)
+    settings = _settings(args, **fixed)
     settings.data_dir.mkdir(parents=True, exist_ok=True)
     return Runtime(settings, load_embedder(settings))
 
@@ -368,10 +368,62 @@ def cmd_demo(args: argparse.Namespace) -> int:
 # eval / bench ------------------------------------------------------------------------------------
 
 
-def cmd_eval(args: argparse.Namespace) -> int:
-    from service.usecases.evaluate import run_eval_command
+def _set_options(values: list[str]) -> dict[str, list[str]]:
+    options: dict[str, list[str]] = {}
+    for value in values:
+        name, sep, raw = value.partition("=")
+        if not sep or not raw:
+            raise ValueError(f"--set takes NAME=V1,V2, not {value!r}")
+        options[name.strip()] = [v.strip() for v in raw.split(",") if v.strip()]
+    return options
 
-    return run_eval_command(args, _runtime)
+
+def cmd_eval(args: argparse.Namespace) -> int:
+    from service.evaluation.http_backend import SERVER_ONLY_SETTINGS, HttpBackend, ServerRefused
+    from service.evaluation.inputs import read_qrels, read_queries
+    from service.evaluation.report import write_report
+    from service.evaluation.runner import EvaluationBackend, evaluate, systems_from_options
+    from service.usecases.evaluate import MAX_CHUNKS, StoreBackend
+
+    try:
+        queries = read_queries(args.queries)
+        qrels = read_qrels(args.qrels)
+        set_options = _set_options(args.set)
+        systems = systems_from_options(args.modes.split(","), set_options)
+        if args.url and any(name in set_options for name in SERVER_ONLY_SETTINGS):
+            raise ValueError("--set k1 and b work only on the store directly, not with --url")
+    except ValueError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    backend: EvaluationBackend
+    if args.url:
+        http = HttpBackend(args.url, args.key or os.environ.get("EXCERPTA_KEY"), args.collection)
+        backend, close = http, http.close
+    else:
+        runtime = _runtime(args, max_top_k=MAX_CHUNKS, max_depth=MAX_CHUNKS)
+        backend, close = StoreBackend(runtime, args.collection), runtime.close
+    try:
+        result = evaluate(
+            backend,
+            queries,
+            qrels,
+            systems=systems,
+            k=args.k,
+            depth=args.depth,
+            global_filter=args.filter,
+            progress=not args.no_progress,
+        )
+    except (ServerRefused, ValueError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    finally:
+        close()
+    files = write_report(result, Path(args.out), title=f"Retrieval evaluation: {args.collection}")
+    print(f"report written to {files.report}")
+    for system in result.systems:
+        cells = ", ".join(f"{name} {system.summary[name].mean:.4f}" for name in result.measures)
+        print(f"  {system.system.label}: {cells}")
+    return 0
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
@@ -451,11 +503,22 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--corpus", default="corpus_example")
     demo.set_defaults(handler=cmd_demo)
 
-    from service.usecases.evaluate import add_eval_arguments
-
     evaluate = commands.add_parser("eval", help="measure retrieval quality on labeled queries")
     _common(evaluate)
-    add_eval_arguments(evaluate)
+    evaluate.add_argument("collection")
+    evaluate.add_argument("--queries", required=True, help="TSV (qid<TAB>text) or JSONL")
+    evaluate.add_argument("--qrels", required=True, help="TREC qrels: qid 0 docid grade")
+    evaluate.add_argument("--modes", default="lexical,semantic,hybrid")
+    evaluate.add_argument("--k", type=int, default=10)
+    evaluate.add_argument("--depth", type=int, default=100)
+    evaluate.add_argument("--filter", help="a CQL2 filter applied to every query")
+    evaluate.add_argument(
+        "--set", action="append", default=[], metavar="NAME=V1,V2", help="vary rrf_k, k1 or b"
+    )
+    evaluate.add_argument("--out", default="eval-report", help="directory for the report")
+    evaluate.add_argument("--url", help="evaluate through a running server instead of the store")
+    evaluate.add_argument("--key", help="API key for --url (or EXCERPTA_KEY)")
+    evaluate.add_argument("--no-progress", action="store_true")
     evaluate.set_defaults(handler=cmd_eval)
 
     from service.bench.command import add_bench_arguments

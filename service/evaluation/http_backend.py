@@ -1,0 +1,116 @@
+"""The evaluation backend that asks a running server, through its HTTP API.
+
+It answers the same three questions as the store backend (``service.usecases.evaluate``), so the
+numbers of the two agree for the same collection; per-query BM25 settings are not part of the
+API, so only ``rrf_k`` may vary here.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Collection, Mapping
+from typing import Any
+
+import httpx
+
+from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
+from service.evaluation.inputs import FilterSpec
+
+# The server's own limit on top_k and depth, by default.
+CHUNK_LIMIT = 1000
+PAGE = 1000
+SERVER_ONLY_SETTINGS = ("k1", "b")
+
+
+class ServerRefused(Exception):
+    """The server could not be reached or refused a request; the message says which and why."""
+
+
+class HttpBackend:
+    def __init__(
+        self,
+        url: str,
+        key: str | None,
+        collection: str,
+        *,
+        transport: httpx.BaseTransport | None = None,
+    ) -> None:
+        headers = {"Authorization": f"Bearer {key}"} if key else {}
+        self.client = httpx.Client(
+            base_url=url.rstrip("/"), headers=headers, timeout=60.0, transport=transport
+        )
+        self.collection = collection
+
+    def close(self) -> None:
+        self.client.close()
+
+    def _send(self, method: str, path: str, **options: Any) -> dict[str, Any]:
+        try:
+            response = self.client.request(method, path, **options)
+        except httpx.TransportError as exc:
+            raise ServerRefused(f"cannot reach {self.client.base_url}: {exc}") from exc
+        if response.is_error:
+            raise ServerRefused(_refusal(response))
+        body: dict[str, Any] = response.json()
+        return body
+
+    def rank_documents(
+        self,
+        text: str,
+        *,
+        mode: str,
+        filter: FilterSpec,
+        depth: int,
+        settings: Mapping[str, object],
+    ) -> list[tuple[str, float]]:
+        unsupported = [name for name in SERVER_ONLY_SETTINGS if name in settings]
+        if unsupported:
+            raise ValueError(
+                f"--set {unsupported[0]} works only on the store directly, not through a server"
+            )
+
+        def run(chunks: int) -> ChunkHits:
+            request: dict[str, Any] = {
+                "query": text,
+                "mode": mode,
+                "top_k": chunks,
+                "depth": chunks,
+                "rrf_k": settings.get("rrf_k", 60),
+            }
+            if filter is not None:
+                request["filter"] = filter
+            body = self._send("POST", f"/v1/collections/{self.collection}/search", json=request)
+            return [(hit["document_id"], float(hit["score"])) for hit in body["hits"]]
+
+        return DocumentRanking(run, CHUNK_LIMIT).rank(depth)
+
+    def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
+        passing: set[str] = set()
+        after: str | None = None
+        while True:
+            params: dict[str, Any] = {"limit": PAGE}
+            if filter is not None:
+                params["filter"] = filter if isinstance(filter, str) else json.dumps(filter)
+            if after is not None:
+                params["after"] = after
+            page = self._send("GET", f"/v1/collections/{self.collection}/documents", params=params)
+            passing.update(d["id"] for d in page["documents"])
+            after = page["next_after"]
+            if after is None:
+                break
+        return {doc for doc in doc_ids if doc not in passing}
+
+    def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
+        return settings_in_effect(self._send("GET", f"/v1/collections/{self.collection}"), settings)
+
+
+def _refusal(response: httpx.Response) -> str:
+    """The server's own error message where it sent one in the service's error shape."""
+    request = response.request
+    where = f"{request.method} {request.url.path}"
+    try:
+        error = response.json()["error"]
+        detail = f"{error['code']}: {error['message']}"
+    except (ValueError, KeyError, TypeError):
+        detail = response.reason_phrase or "no reason given"
+    return f"the server answered {response.status_code} to {where} ({detail})"

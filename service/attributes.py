@@ -169,14 +169,6 @@ def epoch_micros(value: dt.datetime) -> int:
     return (delta.days * 86_400 + delta.seconds) * 1_000_000 + delta.microseconds
 
 
-def from_epoch_days(days: int) -> dt.date:
-    return EPOCH_DATE + dt.timedelta(days=days)
-
-
-def from_epoch_micros(micros: int) -> dt.datetime:
-    return EPOCH_DATETIME + dt.timedelta(microseconds=micros)
-
-
 def fold_case(text: str) -> str:
     """Full Unicode case folding (``'Straße'`` folds to ``'strasse'``), as CASEI requires."""
     return text.casefold()

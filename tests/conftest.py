@@ -16,9 +16,9 @@ import pytest
 from sqlalchemy import Engine, text
 
 from service.config import Settings
-from service.embedding.hashing import HashingTestEmbedder
 from service.store.db import make_engine
 from service.usecases.runtime import Runtime
+from tests.hashing_embedder import HashingTestEmbedder
 
 REPO = Path(__file__).resolve().parents[1]
 CRANFIELD_DIR = REPO.parent / "shared" / "data" / "cranfield"

@@ -12,7 +12,7 @@ from collections.abc import Collection, Sequence
 from dataclasses import dataclass
 from typing import Protocol
 
-from service.packing import Passage
+from service.packing.packer import Passage
 
 INSUFFICIENT_EVIDENCE = "insufficient_evidence"
 

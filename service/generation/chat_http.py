@@ -18,8 +18,7 @@ import httpx
 
 from service.errors import GeneratorUnavailable
 from service.generation.base import INSUFFICIENT_EVIDENCE, GeneratedAnswer, settle_markers
-from service.packing import Passage
-from service.packing.packer import PASSAGE_SEPARATOR, render_passage
+from service.packing.packer import PASSAGE_SEPARATOR, Passage, render_passage
 
 logger = logging.getLogger(__name__)
 

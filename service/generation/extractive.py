@@ -21,7 +21,7 @@ from service.generation.base import (
     strip_marker_like,
 )
 from service.ingest.chunking import SECTION_SEPARATOR
-from service.packing import Passage
+from service.packing.packer import Passage
 
 # Measured on the demo corpus (33 questions, 8 invented unanswerable ones; semantic top 8,
 # budget 1000): with term_weight 0.1 the best sentence scored 0.485-0.83 (median 0.65) for the

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from pathlib import Path
 
 from tokenizers import Tokenizer
@@ -26,11 +25,6 @@ class ModelTokenCounter:
 
     def count(self, text: str) -> int:
         return len(self._tokenizer.encode(text, add_special_tokens=False).ids)
-
-    def count_many(self, texts: Sequence[str]) -> list[int]:
-        """Counts for many texts in one call; the tokenizer spreads a batch over its threads."""
-        encodings = self._tokenizer.encode_batch(list(texts), add_special_tokens=False)
-        return [len(encoding.ids) for encoding in encodings]
 
     def offsets(self, text: str) -> list[tuple[int, int]]:
         return list(self._tokenizer.encode(text, add_special_tokens=False).offsets)

@@ -27,11 +27,11 @@ from schemathesis.specs.openapi.checks import (
 
 from service.api.app import create_app
 from service.config import Settings
-from service.embedding.hashing import HashingTestEmbedder
 from service.usecases import collections, documents
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.runtime import Runtime
 from tests.api_helpers import BIKE_SCHEMA, make_key
+from tests.hashing_embedder import HashingTestEmbedder
 
 EXAMPLES_PER_OPERATION = 25
 CHECKS = [

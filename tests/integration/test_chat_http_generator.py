@@ -16,9 +16,9 @@ from typing import Any
 import pytest
 
 from service.errors import GeneratorUnavailable
-from service.generation import INSUFFICIENT_EVIDENCE
+from service.generation.base import INSUFFICIENT_EVIDENCE
 from service.generation.chat_http import SYSTEM_PROMPT, ChatHttpGenerator
-from service.packing import Passage
+from service.packing.packer import Passage
 
 API_KEY = "sk-test-0123456789abcdef"
 PASSAGES = [

@@ -85,12 +85,6 @@ def test_counts_and_offsets_leave_out_special_tokens_and_are_not_truncated(
     assert counter.count("") == 0
 
 
-def test_batch_counts_equal_single_counts(counter: ModelTokenCounter) -> None:
-    texts = ["", "one", "Ridge 2023 owner's manual", MANUAL]
-
-    assert counter.count_many(texts) == [counter.count(text) for text in texts]
-
-
 @pytest.mark.parametrize(("max_tokens", "overlap"), [(224, 40), (48, 12), (12, 4), (3, 1), (1, 0)])
 def test_a_manual_is_chunked_within_the_bound_under_the_model_tokenizer(
     counter: ModelTokenCounter, max_tokens: int, overlap: int

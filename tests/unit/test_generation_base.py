@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from service.generation import GeneratedAnswer, clean_markers, markers_in, settle_markers
+from service.generation.base import GeneratedAnswer, clean_markers, markers_in, settle_markers
 
 
 def test_markers_matching_no_passage_are_removed_and_reported():

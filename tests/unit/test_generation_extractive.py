@@ -8,9 +8,9 @@ from collections.abc import Sequence
 import numpy as np
 import pytest
 
-from service.generation import INSUFFICIENT_EVIDENCE, markers_in
+from service.generation.base import INSUFFICIENT_EVIDENCE, markers_in
 from service.generation.extractive import ExtractiveGenerator, split_sentences
-from service.packing import Passage
+from service.packing.packer import Passage
 
 # Words sharing a concept share an embedding axis, so related wording scores as similar.
 CONCEPTS = {

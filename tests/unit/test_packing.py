@@ -10,8 +10,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.packing import PackCandidate, PackedContext, pack_context
-from service.packing.packer import normalize_for_duplicates, render_passage
+from service.packing.packer import (
+    PackCandidate,
+    PackedContext,
+    normalize_for_duplicates,
+    pack_context,
+    render_passage,
+)
 
 _TOKEN = re.compile(r"\w+|[^\w\s]")
 

@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from tokenizers import Tokenizer
 
-from service.packing import PackCandidate, pack_context
+from service.packing.packer import PackCandidate, pack_context
 
 DOCUMENT = (
     "The frame is covered for five years from the date of purchase. Paint and decals are "

@@ -1,7 +1,7 @@
-"""TEST-ONLY deterministic embedder: hashed word features, no model, no meaning.
+"""A deterministic embedder for tests: hashed word features, no model, no meaning.
 
-It exists so unit tests run in milliseconds. No setting selects it; only code that constructs it
-explicitly (the tests) can use it, so a server can never fall back to it by accident.
+It exists so tests run in milliseconds. It lives with the tests, outside the installed package,
+so no setting can select it and a server can never fall back to it by accident.
 """
 
 from __future__ import annotations

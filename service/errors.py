@@ -18,8 +18,9 @@ a 500.
     │   ├── CollectionNotFound
     │   ├── DocumentNotFound
     │   └── TraceNotFound
-    ├── Conflict                      an attribute's type changed, a name taken
+    ├── Conflict                      an attribute's type changed or left out, a name taken
     ├── PayloadTooLarge               the body exceeds the size limit
+    ├── UnsupportedMediaType          a body sent as something other than JSON
     ├── InvalidDocuments              a batch with invalid documents (``documents``)
     ├── LimitExceeded                 a configured limit (``limit``)
     ├── RateLimited                   the key's rate limit (``retry_after`` seconds)
@@ -28,7 +29,16 @@ a 500.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
+
+
+def quoted_names(names: Sequence[str]) -> str:
+    """Names as a message lists them: ``'a'``, ``'a' and 'b'``, ``'a', 'b' and 'c'``."""
+    quoted = [repr(name) for name in names]
+    if len(quoted) <= 1:
+        return "".join(quoted)
+    return f"{', '.join(quoted[:-1])} and {quoted[-1]}"
 
 
 class ServiceError(Exception):
@@ -116,6 +126,10 @@ class Conflict(ServiceError):
 
 class PayloadTooLarge(ServiceError):
     code = "payload_too_large"
+
+
+class UnsupportedMediaType(ServiceError):
+    code = "unsupported_media_type"
 
 
 class InvalidDocuments(ServiceError):

@@ -22,6 +22,7 @@ STATUS_BY_ERROR: tuple[tuple[type[errors.ServiceError], int], ...] = (
     (errors.NotFound, 404),
     (errors.Conflict, 409),
     (errors.PayloadTooLarge, 413),
+    (errors.UnsupportedMediaType, 415),
     (errors.InvalidRequest, 422),
     (errors.InvalidDocuments, 422),
     (errors.LimitExceeded, 422),
@@ -85,6 +86,7 @@ ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
         (404, "Missing or hidden"),
         (409, "Conflict"),
         (413, "Body too large"),
+        (415, "The body is not sent as application/json"),
         (422, "Invalid request, documents or a limit exceeded"),
         (429, "Rate limited"),
     )

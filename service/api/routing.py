@@ -1,4 +1,11 @@
-"""A route class whose bodies are parsed as strict JSON.
+"""A route class whose bodies are JSON, sent as JSON and parsed strictly.
+
+A route that takes a body refuses one declared as any other media type (``Content-Type``
+other than ``application/json``, parameters such as ``charset`` aside) with 415, before reading
+it: a form-encoded or text body would otherwise reach validation and be refused field by field,
+which tells the caller nothing about the real mistake. A body sent without a ``Content-Type``
+(or with an empty one) is read as JSON, since nothing says it is anything else; it must then be
+JSON.
 
 Python's parser accepts ``NaN`` and ``Infinity``, which are not JSON, and fails with a
 ``RecursionError`` or ``UnicodeDecodeError`` on deep nesting or bad UTF-8, which the framework
@@ -14,6 +21,10 @@ from typing import Any
 
 from fastapi import Request, Response
 from fastapi.routing import APIRoute
+
+from service.errors import UnsupportedMediaType
+
+JSON_MEDIA_TYPE = "application/json"
 
 
 def _reject_constant(name: str) -> Any:
@@ -39,11 +50,29 @@ class StrictJsonRequest(Request):
         return self._json
 
 
+def check_json_media_type(content_type: str | None) -> None:
+    """Refuse a body declared as anything but JSON; no declaration (or an empty one) is taken
+    as JSON."""
+    media_type = (content_type or "").partition(";")[0].strip().lower()
+    if media_type and media_type != JSON_MEDIA_TYPE:
+        raise UnsupportedMediaType(
+            f"The request body must be JSON sent with Content-Type: {JSON_MEDIA_TYPE}, "
+            f"not {media_type}."
+        )
+
+
 class StrictJsonRoute(APIRoute):
+    def __init__(self, path: str, endpoint: Callable[..., Any], **options: Any) -> None:
+        # Without a Content-Type the framework would not read the body as JSON at all.
+        super().__init__(path, endpoint, **{**options, "strict_content_type": False})
+
     def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
         handler = super().get_route_handler()
+        takes_body = self.body_field is not None
 
         async def strict_handler(request: Request) -> Response:
+            if takes_body:
+                check_json_media_type(request.headers.get("content-type"))
             return await handler(StrictJsonRequest(request.scope, request.receive))
 
         return strict_handler

@@ -107,6 +107,7 @@ def ingest_path(
         spec = collections_usecase.CollectionSpec(
             description=raw.get("description"),
             attributes=raw.get("attributes"),
+            remove_attributes=raw.get("remove_attributes"),
             chunking=raw.get("chunking"),
             cite_attributes=raw.get("cite_attributes"),
             answer_caution=raw.get("answer_caution"),

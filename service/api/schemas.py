@@ -43,7 +43,17 @@ class RetrievalSettingsIn(Strict):
 
 class CollectionIn(Strict):
     description: str | None = Field(None, max_length=10_000)
-    attributes: dict[str, AttributeSpec] | None = None
+    attributes: dict[str, AttributeSpec] | None = Field(
+        None,
+        description="The whole schema: an existing attribute left out is a 409 conflict unless "
+        "remove_attributes names it. Leave the field out to keep the schema as it is.",
+    )
+    remove_attributes: list[str] | None = Field(
+        None,
+        max_length=1000,
+        description="Attributes to remove from the schema, from every document and from "
+        "cite_attributes.",
+    )
     chunking: ChunkingIn | None = None
     cite_attributes: list[str] | None = None
     answer_caution: str | None = Field(None, max_length=10_000)

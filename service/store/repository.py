@@ -220,6 +220,33 @@ def delete_documents(session: Session, document_pks: Sequence[int]) -> None:
         session.execute(delete(DocumentRow).where(DocumentRow.id.in_(part)))
 
 
+def documents_with_attributes(
+    session: Session, collection_id: int, names: Sequence[str]
+) -> list[DocumentRow]:
+    """The collection's documents holding a value for any of the named attributes."""
+    holders = (
+        select(AttributeValueRow.document_id)
+        .where(AttributeValueRow.name.in_(sorted(names)))
+        .distinct()
+    )
+    query = select(DocumentRow).where(
+        DocumentRow.collection_id == collection_id, DocumentRow.id.in_(holders)
+    )
+    return list(session.scalars(query.order_by(DocumentRow.id)))
+
+
+def delete_attribute_values(
+    session: Session, document_pks: Sequence[int], names: Sequence[str]
+) -> None:
+    for start in range(0, len(document_pks), 500):
+        part = list(document_pks[start : start + 500])
+        session.execute(
+            delete(AttributeValueRow).where(
+                AttributeValueRow.document_id.in_(part), AttributeValueRow.name.in_(sorted(names))
+            )
+        )
+
+
 def replace_document_children(
     session: Session,
     document: DocumentRow,

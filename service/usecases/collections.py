@@ -2,17 +2,25 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import re
 from dataclasses import dataclass, field
 from typing import Any
 
 from sqlalchemy.orm import Session
 
-from service.attributes import AttributeType, AttributeValueError, parse_schema
-from service.errors import CollectionNotFound, Conflict, InvalidRequest
+from service.attributes import (
+    ATTRIBUTE_NAME,
+    AttributeType,
+    AttributeValueError,
+    Schema,
+    parse_schema,
+)
+from service.errors import CollectionNotFound, Conflict, InvalidRequest, quoted_names
 from service.store import repository
 from service.store.tables import CollectionRow
 from service.usecases.callers import Caller, Role
+from service.usecases.drafts import content_hash
 from service.usecases.runtime import Runtime
 
 COLLECTION_NAME = re.compile(r"[a-z][a-z0-9_-]{0,62}")
@@ -30,10 +38,16 @@ DEFAULT_RETRIEVAL: dict[str, Any] = {
 
 @dataclass(frozen=True)
 class CollectionSpec:
-    """What a PUT may say; fields left None keep the collection's current value."""
+    """What a PUT may say; fields left None keep the collection's current value.
+
+    ``attributes``, when given, is the whole schema: an existing attribute it leaves out is a
+    conflict unless ``remove_attributes`` names it, which removes it from the collection and
+    from every document.
+    """
 
     description: str | None = None
     attributes: dict[str, Any] | None = None
+    remove_attributes: list[str] | None = None
     chunking: dict[str, Any] | None = None
     cite_attributes: list[str] | None = None
     answer_caution: str | None = None
@@ -128,6 +142,7 @@ def put_collection(
         new_schema = parse_schema(spec.attributes or {})
     except AttributeValueError as exc:
         raise InvalidRequest(f"{exc}.", field="attributes") from None
+    removals = _checked_removals(spec.remove_attributes or [], new_schema)
     window = runtime.embedder.window
     with runtime.transaction() as session:
         row = repository.collection_by_name(session, name)
@@ -138,7 +153,14 @@ def put_collection(
                 raise Conflict(
                     f"Attribute {attr!r} is {old_schema[attr].value}; its type cannot change."
                 )
-        schema = {**old_schema, **new_schema}
+        if spec.attributes is not None:
+            _check_nothing_left_out(old_schema, new_schema, removals)
+        removed = sorted(set(removals) & set(old_schema))
+        schema = {
+            attr: type_
+            for attr, type_ in {**old_schema, **new_schema}.items()
+            if attr not in removed
+        }
         chunking = _checked_chunking(
             spec.chunking if spec.chunking is not None else (row.chunking if row else {}), window
         )
@@ -147,7 +169,7 @@ def put_collection(
         cite = (
             spec.cite_attributes
             if spec.cite_attributes is not None
-            else (row.cite_attributes if row else [])
+            else [attr for attr in (row.cite_attributes if row else []) if attr not in removed]
         )
         for attr in cite:
             if attr not in schema:
@@ -200,13 +222,70 @@ def put_collection(
                     row.rebuild_total = repository.count_documents(session, row.id, None)[0]
             row.settings = settings
             row.updated_at = now
-            if retrieval_changed or set(new_schema) - set(old_schema):
+            if removed:
+                _remove_from_documents(session, row.id, removed, now)
+            if retrieval_changed or removed or set(new_schema) - set(old_schema):
                 repository.bump_revision(session, row, [(None, "reset")])
         view = collection_view(session, row, caller, runtime.embedder.tokenizer_name)
     runtime.indexes.expire(name)
     if rebuild_needed:
         runtime.rebuilds.start(name)
     return created, view
+
+
+def _checked_removals(names: list[str], new_schema: Schema) -> list[str]:
+    for attr in names:
+        if not isinstance(attr, str) or not ATTRIBUTE_NAME.fullmatch(attr):
+            raise InvalidRequest(
+                f"remove_attributes names {attr!r}, which is not an attribute name.",
+                field="remove_attributes",
+            )
+        if attr in new_schema:
+            raise InvalidRequest(
+                f"Attribute {attr!r} is both declared in attributes and listed in "
+                "remove_attributes.",
+                field="remove_attributes",
+            )
+    return sorted(set(names))
+
+
+def _check_nothing_left_out(old_schema: Schema, new_schema: Schema, removals: list[str]) -> None:
+    """A schema sent whole that leaves out an attribute would otherwise drop it silently."""
+    left_out = sorted(set(old_schema) - set(new_schema) - set(removals))
+    if len(left_out) == 1:
+        raise Conflict(
+            f"Attribute {left_out[0]!r} is missing from attributes; send it again to keep it, "
+            "or list it in remove_attributes to remove it from the collection and its documents.",
+            attributes=left_out,
+        )
+    if left_out:
+        raise Conflict(
+            f"Attributes {quoted_names(left_out)} are missing from attributes; send them again "
+            "to keep them, or list them in remove_attributes to remove them from the collection "
+            "and its documents.",
+            attributes=left_out,
+        )
+
+
+def _remove_from_documents(
+    session: Session, collection_id: int, removed: list[str], now: dt.datetime
+) -> None:
+    """Drop the attributes' values from every document, as if each had been sent without them
+    (so re-sending it so is a no-op)."""
+    documents = repository.documents_with_attributes(session, collection_id, removed)
+    for document in documents:
+        kept = {k: v for k, v in document.attributes.items() if k not in removed}
+        document.attributes = kept
+        document.content_hash = content_hash(
+            title=document.title,
+            text=document.source_text,
+            media_type=document.media_type,
+            source_url=document.source_url,
+            attributes_json=kept,
+            access=document.access,
+        )
+        document.updated_at = now
+    repository.delete_attribute_values(session, [d.id for d in documents], removed)
 
 
 def collection_view(

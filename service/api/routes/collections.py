@@ -29,6 +29,7 @@ def put_collection(
             if body.attributes is None
             else {k: v.model_dump() for k, v in body.attributes.items()}
         ),
+        remove_attributes=body.remove_attributes,
         chunking=None if body.chunking is None else body.chunking.model_dump(),
         cite_attributes=body.cite_attributes,
         answer_caution=body.answer_caution,

@@ -13,6 +13,7 @@ import os
 import sys
 import time
 from collections.abc import Callable, Sequence
+from importlib.metadata import version
 from pathlib import Path
 from typing import Any
 
@@ -443,6 +444,7 @@ def _common(parser: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="excerpta", description=__doc__.splitlines()[0])
+    parser.add_argument("--version", action="version", version=f"excerpta {version('excerpta')}")
     commands = parser.add_subparsers(dest="command", required=True)
 
     serve = commands.add_parser("serve", help="run the HTTP API")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from importlib.metadata import version
 from typing import Any
 
 from fastapi import FastAPI
@@ -34,7 +35,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     docs: dict[str, Any] = {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
     app = FastAPI(
         title="excerpta",
-        version="0.1.0",
+        version=version("excerpta"),
         description="Retrieval with filters, access control, cited context and traces.",
         lifespan=lifespan,
         **docs,

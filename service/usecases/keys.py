@@ -11,7 +11,14 @@ from dataclasses import dataclass
 
 from sqlalchemy.orm import Session
 
-from service.errors import Conflict, InvalidRequest, NotFound, Unauthenticated
+from service.errors import (
+    CollectionNotFound,
+    Conflict,
+    InvalidRequest,
+    NotFound,
+    Unauthenticated,
+    quoted_names,
+)
 from service.store import repository
 from service.store.tables import ApiKeyRow
 from service.usecases.callers import Caller, Role
@@ -67,7 +74,11 @@ def create_key(
     collections: list[str] | None,
     name: str | None,
 ) -> tuple[str, KeyInfo]:
-    """Store a new key and return it in clear text: the only time it is ever shown."""
+    """Store a new key and return it in clear text: the only time it is ever shown.
+
+    ``collections`` limits the key to collections that exist now: a misspelt name would give
+    a key that can reach nothing, and nothing would say why.
+    """
     try:
         parsed_role = Role.parse(role)
     except KeyError:
@@ -79,6 +90,9 @@ def create_key(
         raise InvalidRequest(f"key name {key_name!r} is not valid.", field="name")
     if repository.key_by_name(session, key_name) is not None:
         raise Conflict(f"A key named {key_name!r} already exists.")
+    allowed = None if collections is None else _names(collections, "collection")
+    if allowed is not None:
+        _check_collections_exist(session, allowed)
     salt = secrets.token_bytes(16)
     row = ApiKeyRow(
         name=key_name,
@@ -87,12 +101,25 @@ def create_key(
         secret_hash=_digest(salt, secret),
         role=parsed_role.name.lower(),
         groups=_names(groups, "group"),
-        collections=None if collections is None else _names(collections, "collection"),
+        collections=allowed,
         created_at=repository.utcnow(),
     )
     session.add(row)
     session.flush()
     return f"{KEY_PREFIX}_{lookup}_{secret}", _info(row)
+
+
+def _check_collections_exist(session: Session, names: list[str]) -> None:
+    missing = [name for name in names if repository.collection_by_name(session, name) is None]
+    if len(missing) == 1:
+        raise CollectionNotFound(
+            f"Collection {missing[0]!r} does not exist; create it before giving a key access to it."
+        )
+    if missing:
+        raise CollectionNotFound(
+            f"Collections {quoted_names(missing)} do not exist; create them before giving a "
+            "key access to them."
+        )
 
 
 def revoke_key(session: Session, name: str) -> None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import re
 from collections.abc import Callable, Iterator
+from importlib.metadata import version
 from pathlib import Path
 
 import pytest
@@ -13,6 +14,8 @@ from fastapi.testclient import TestClient
 from service.api.app import create_app
 from service.cli import main
 from service.store.tables import ApiKeyRow
+from service.usecases.callers import LOCAL_ADMIN
+from service.usecases.collections import CollectionSpec, put_collection
 from service.usecases.runtime import Runtime
 
 KEY_SHAPE = re.compile(r"xk_[0-9a-f]{16}_[A-Za-z0-9_-]{43}")
@@ -51,6 +54,11 @@ def bearer(key: str) -> dict[str, str]:
     return {"Authorization": f"Bearer {key}"}
 
 
+def make_collection(client: TestClient, name: str) -> None:
+    runtime: Runtime = client.app.state.runtime  # type: ignore[attr-defined]
+    put_collection(runtime, LOCAL_ADMIN, name, CollectionSpec())
+
+
 def test_a_created_key_is_printed_once_and_works_in_the_api(
     client: TestClient, data_dir: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -62,6 +70,7 @@ def test_a_created_key_is_printed_once_and_works_in_the_api(
 def test_listing_shows_the_key_details_but_never_the_key(
     client: TestClient, data_dir: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
+    make_collection(client, "bikes")
     key = create(
         capsys,
         data_dir,
@@ -147,3 +156,53 @@ def test_a_bad_role_is_bad_usage(data_dir: Path, capsys: pytest.CaptureFixture[s
     with pytest.raises(SystemExit) as exit_info:
         main(["keys", "create", "--data-dir", str(data_dir), "--role", "owner"])
     assert exit_info.value.code == 2
+
+
+def test_a_key_for_a_collection_that_does_not_exist_is_refused(
+    client: TestClient, data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    make_collection(client, "bikes")
+    code, out, err = run(
+        capsys,
+        "keys",
+        "create",
+        "--data-dir",
+        str(data_dir),
+        "--role",
+        "reader",
+        "--collections",
+        "bikes,bikez",
+        "--name",
+        "typo",
+    )
+    assert (code, out) == (1, "")
+    assert err == (
+        "error: Collection 'bikez' does not exist; create it before giving a key access to it.\n"
+    )
+    code, out, err = run(
+        capsys,
+        "keys",
+        "create",
+        "--data-dir",
+        str(data_dir),
+        "--role",
+        "reader",
+        "--collections",
+        "parts,archive",
+    )
+    assert (code, out) == (1, "")
+    assert err == (
+        "error: Collections 'archive' and 'parts' do not exist; create them before giving a key "
+        "access to them.\n"
+    )
+    _, listing, _ = run(capsys, "keys", "list", "--data-dir", str(data_dir), "--json")
+    assert json.loads(listing) == []
+
+
+def test_version_prints_the_installed_packages_version(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    with pytest.raises(SystemExit) as exit_info:
+        main(["--version"])
+    assert exit_info.value.code == 0
+    assert capsys.readouterr().out == f"excerpta {version('excerpta')}\n"

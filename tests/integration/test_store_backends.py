@@ -175,6 +175,7 @@ def test_a_search_builds_its_index_from_the_store_and_finds_the_document(
 def test_a_key_authenticates_with_its_groups_and_collections_until_revoked(
     runtime: Runtime,
 ) -> None:
+    create_collection(runtime)
     with runtime.transaction() as session:
         secret, _ = keys.create_key(
             session, role="writer", groups=["staff", "field"], collections=["bikes"], name="w"
@@ -193,9 +194,10 @@ def test_a_key_authenticates_with_its_groups_and_collections_until_revoked(
 def test_the_driver_lookup_returns_what_core_returns_for_the_same_statement(
     runtime: Runtime,
 ) -> None:
+    create_collection(runtime)
     with runtime.transaction() as session:
         keys.create_key(session, role="reader", groups=[], collections=None, name="plain")
-        keys.create_key(session, role="admin", groups=["a", "b"], collections=["x"], name="full")
+        keys.create_key(session, role="admin", groups=["a", "b"], collections=[NAME], name="full")
         keys.revoke_key(session, "full")
     with runtime.transaction() as session:
         session.execute(

@@ -7,13 +7,13 @@ import pytest
 
 from service.attributes import AttributeType
 from service.config import Settings
-from service.embedding.hashing import HashingTestEmbedder
 from service.errors import InvalidRequest, LimitExceeded
 from service.index.analyzer import Analyzer
 from service.index.collection_index import CollectionIndex
 from service.index.lexical import LexicalScoring
 from service.index.view import CollectionFacts, IndexView
 from service.usecases.search import SearchOptions, TimeWindow, check_limits, prepare_query
+from tests.hashing_embedder import HashingTestEmbedder
 
 EMBEDDER = HashingTestEmbedder()
 SCHEMA = {"published": AttributeType.DATETIME, "model": AttributeType.KEYWORD}

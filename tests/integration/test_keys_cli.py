@@ -158,8 +158,26 @@ def test_a_bad_role_is_bad_usage(data_dir: Path, capsys: pytest.CaptureFixture[s
     assert exit_info.value.code == 2
 
 
+@pytest.mark.parametrize(
+    ("collections", "message"),
+    [
+        (
+            "bikes,bikez",
+            "Collection 'bikez' does not exist; create it before giving a key access to it.",
+        ),
+        (
+            "parts,archive",
+            "Collections 'archive' and 'parts' do not exist; create them before giving a key "
+            "access to them.",
+        ),
+    ],
+)
 def test_a_key_for_a_collection_that_does_not_exist_is_refused(
-    client: TestClient, data_dir: Path, capsys: pytest.CaptureFixture[str]
+    client: TestClient,
+    data_dir: Path,
+    capsys: pytest.CaptureFixture[str],
+    collections: str,
+    message: str,
 ) -> None:
     make_collection(client, "bikes")
     code, out, err = run(
@@ -171,30 +189,9 @@ def test_a_key_for_a_collection_that_does_not_exist_is_refused(
         "--role",
         "reader",
         "--collections",
-        "bikes,bikez",
-        "--name",
-        "typo",
+        collections,
     )
-    assert (code, out) == (1, "")
-    assert err == (
-        "error: Collection 'bikez' does not exist; create it before giving a key access to it.\n"
-    )
-    code, out, err = run(
-        capsys,
-        "keys",
-        "create",
-        "--data-dir",
-        str(data_dir),
-        "--role",
-        "reader",
-        "--collections",
-        "parts,archive",
-    )
-    assert (code, out) == (1, "")
-    assert err == (
-        "error: Collections 'archive' and 'parts' do not exist; create them before giving a key "
-        "access to them.\n"
-    )
+    assert (code, out, err) == (1, "", f"error: {message}\n")
     _, listing, _ = run(capsys, "keys", "list", "--data-dir", str(data_dir), "--json")
     assert json.loads(listing) == []
 

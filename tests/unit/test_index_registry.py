@@ -21,27 +21,9 @@ from service.index.lexical import LexicalScoring
 from service.index.view import CollectionFacts, IndexView
 from service.usecases.drafts import ChunkDraft, MaterialisedDocument, PreparedDocument
 from service.usecases.indexes import CollectionUpdate, IndexRegistry, LoadedCollection
+from tests.unit.test_index_collection import DIMENSION, chunk
 
-DIMENSIONS = 4
 SCHEMA = {"model": AttributeType.KEYWORD}
-
-
-def record(document_id: str, ordinal: int, text: str) -> ChunkRecord:
-    vector = np.zeros(DIMENSIONS, dtype=np.float32)
-    vector[ordinal % DIMENSIONS] = 1.0
-    return ChunkRecord(
-        chunk_id=f"{document_id}#{ordinal:04d}",
-        document_id=document_id,
-        ordinal=ordinal,
-        title=document_id,
-        section="",
-        text=text,
-        char_start=0,
-        char_end=len(text),
-        tokens=len(text.split()),
-        lexical_tokens=text.split(),
-        vector=vector,
-    )
 
 
 class FakeSource:
@@ -97,14 +79,14 @@ def live_chunks(view: IndexView) -> list[str]:
 @pytest.fixture
 def source() -> FakeSource:
     source = FakeSource()
-    source.add("bikes", 7, [record("ridge", 0, "brake pads"), record("ridge", 1, "tyre")])
+    source.add("bikes", 7, [chunk("ridge", 0, "brake pads"), chunk("ridge", 1, "tyre")])
     return source
 
 
 def registry(source: FakeSource, poll_seconds: float = 0.0, **options: float) -> IndexRegistry:
     return IndexRegistry(
         source,
-        dimensions=DIMENSIONS,
+        dimensions=DIMENSION,
         poll_seconds=poll_seconds,
         compact_after=int(options.pop("compact_after", 1024)),
         **options,
@@ -136,7 +118,7 @@ def test_each_view_past_the_poll_interval_asks_the_source_what_changed(
         cite_attributes=("model",),
         answer_caution="Check the torque table.",
         revision=3,
-        documents={"ridge": [record("ridge", 0, "new pads")], "haul": [record("haul", 0, "x")]},
+        documents={"ridge": [chunk("ridge", 0, "new pads")], "haul": [chunk("haul", 0, "x")]},
     )
     view = indexes.view("bikes")
     assert source.checks == [1, 1]
@@ -155,7 +137,7 @@ def test_a_reset_builds_the_index_afresh(source: FakeSource) -> None:
     indexes = registry(source)
     indexes.view("bikes")
     source.collections["bikes"] = replace(
-        source.collections["bikes"], revision=5, records=[record("parts", 0, "chain")]
+        source.collections["bikes"], revision=5, records=[chunk("parts", 0, "chain")]
     )
     source.updates[7] = CollectionUpdate(
         cite_attributes=(), answer_caution=None, revision=1, reset=True
@@ -209,7 +191,7 @@ def material(document_id: str, texts: list[str]) -> tuple[MaterialisedDocument, 
         )
         for ordinal, text in enumerate(texts)
     )
-    vectors = {d.embedded_text_hash: np.ones(DIMENSIONS, dtype=np.float32) for d in drafts}
+    vectors = {d.embedded_text_hash: np.ones(DIMENSION, dtype=np.float32) for d in drafts}
     return MaterialisedDocument(prepared, prepared.source_text, [], drafts), vectors
 
 
@@ -239,7 +221,7 @@ def test_a_write_after_someone_elses_catches_up_through_the_source(source: FakeS
         cite_attributes=(),
         answer_caution=None,
         revision=3,
-        documents={"haul": [record("haul", 0, "rack")]},
+        documents={"haul": [chunk("haul", 0, "rack")]},
     )
     indexes.after_write("bikes", 3, {"haul": material("haul", ["ignored"])})
     assert source.checks == [1]

@@ -12,7 +12,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from functools import partial
 
-from sqlalchemy import Connection, Engine
+from sqlalchemy import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.config import Settings
@@ -66,12 +66,6 @@ class Runtime:
     def transaction(self) -> Iterator[Session]:
         with unit_of_work(self.sessions) as session:
             yield session
-
-    @contextmanager
-    def connection(self) -> Iterator[Connection]:
-        """A transaction without a session, for the few statements every query runs."""
-        with self.engine.begin() as connection:
-            yield connection
 
     def close(self) -> None:
         self.rebuilds.stop()

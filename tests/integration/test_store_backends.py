@@ -213,7 +213,7 @@ def test_the_driver_lookup_returns_what_core_returns_for_the_same_statement(
     ).where(ApiKeyRow.name == bindparam("name"))
     lookup = DriverQuery(runtime.engine, statement)
     for name in ("plain", "full"):
-        with runtime.connection() as connection:
+        with runtime.engine.begin() as connection:
             expected = tuple(connection.execute(statement, {"name": name}).one())
         assert lookup.first({"name": name}) == expected
         assert [type(value) for value in lookup.first({"name": name}) or ()] == [

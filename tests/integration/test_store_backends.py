@@ -93,7 +93,9 @@ def test_a_collection_is_created_then_updated_with_its_schema_kept(runtime: Runt
         runtime,
         LOCAL_ADMIN,
         NAME,
-        collections.CollectionSpec(attributes={"colour": {"type": "keyword"}}),
+        collections.CollectionSpec(
+            attributes={**BIKE_SCHEMA["attributes"], "colour": {"type": "keyword"}}
+        ),
     )
 
     assert not created

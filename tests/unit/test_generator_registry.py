@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import pytest
-from tests.hashing_embedder import HashingTestEmbedder
 
 from service.config import Settings
 from service.errors import InvalidRequest
@@ -11,6 +10,7 @@ from service.generation.chat_http import ChatHttpGenerator
 from service.generation.extractive import ExtractiveGenerator
 from service.logging_setup import redact
 from service.usecases.generators import GeneratorRegistry
+from tests.hashing_embedder import HashingTestEmbedder
 
 
 def registry(**settings: object) -> GeneratorRegistry:

@@ -36,8 +36,9 @@ def _runtime(args: argparse.Namespace, **fixed: Any) -> Any:
     from service.usecases.runtime import Runtime, load_embedder
 
     settings = _settings(args, **fixed)
-    settings.data_dir.mkdir(parents=True, exist_ok=True)
-    return Runtime(settings, load_embedder(settings))
+    # The store first: an unusable one is reported before the model takes seconds to load.
+    engine = _migrated_engine(args)
+    return Runtime(settings, load_embedder(settings), engine=engine)
 
 
 def _print_json(value: Any) -> None:
@@ -48,9 +49,7 @@ def _print_json(value: Any) -> None:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
-    import uvicorn
-
-    from service.api.app import create_app
+    from service.api.server import serve
     from service.logging_setup import configure_logging
 
     configure_logging()
@@ -60,20 +59,16 @@ def cmd_serve(args: argparse.Namespace) -> int:
         from threadpoolctl import threadpool_limits
 
         threadpool_limits(limits=settings.blas_threads, user_api="blas")
-    app = create_app(runtime)
-    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=False)
+    serve(runtime)
     return 0
 
 
 def _migrated_engine(args: argparse.Namespace) -> Any:
     """The store's engine with its schema brought up to date; no model is loaded."""
-    from service.store.db import make_engine, migrate
+    from service.store.opening import open_store
 
     settings = _settings(args)
-    settings.data_dir.mkdir(parents=True, exist_ok=True)
-    engine = make_engine(settings.resolved_database_url())
-    migrate(engine)
-    return engine
+    return open_store(settings.resolved_database_url(), settings.data_dir)
 
 
 def cmd_migrate(args: argparse.Namespace) -> int:
@@ -434,6 +429,58 @@ def cmd_bench(args: argparse.Namespace) -> int:
     return run_bench_command(args)
 
 
+# backup / restore --------------------------------------------------------------------------------
+
+
+def cmd_backup(args: argparse.Namespace) -> int:
+    """A consistent copy of the store, taken while a server may be writing to it."""
+    from service.store.backup import write_backup
+
+    copied = _copy_store(args, lambda engine: write_backup(engine, Path(args.path)))
+    if copied is None:
+        return 1
+    print(f"backed up {copied} to {args.path}")
+    return 0
+
+
+def cmd_restore(args: argparse.Namespace) -> int:
+    """A backup loaded into the store, which must be empty (just migrated, or new)."""
+    from service.store.backup import restore_backup
+
+    copied = _copy_store(args, lambda engine: restore_backup(engine, Path(args.path)))
+    if copied is None:
+        return 1
+    print(f"restored {copied} from {args.path}")
+    return 0
+
+
+def _copy_store(args: argparse.Namespace, copy: Callable[[Any], Any]) -> str | None:
+    """Run ``copy`` on the store: what it copied, in words, or None once the failure is told."""
+    import sqlite3
+
+    from sqlalchemy.exc import SQLAlchemyError
+
+    from service.store.backup import BackupError
+    from service.store.opening import cause
+
+    engine = _migrated_engine(args)
+    try:
+        copied = copy(engine)
+    except BackupError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return None
+    except (SQLAlchemyError, OSError, sqlite3.Error) as exc:
+        print(
+            f"error: The copy between the store and {args.path} failed: {cause(exc)}.",
+            file=sys.stderr,
+        )
+        return None
+    finally:
+        engine.dispose()
+    tables = ", ".join(f"{count} {name}" for name, count in copied.rows.items())
+    return f"{copied.total} rows ({tables})"
+
+
 # parser ------------------------------------------------------------------------------------------
 
 
@@ -523,6 +570,16 @@ def build_parser() -> argparse.ArgumentParser:
     evaluate.add_argument("--key", help="API key for --url (or EXCERPTA_KEY)")
     evaluate.add_argument("--no-progress", action="store_true")
     evaluate.set_defaults(handler=cmd_eval)
+
+    backup = commands.add_parser("backup", help="copy the store to a new file, even while serving")
+    _common(backup)
+    backup.add_argument("path", help="the new file to write")
+    backup.set_defaults(handler=cmd_backup)
+
+    restore = commands.add_parser("restore", help="load a backup into an empty store")
+    _common(restore)
+    restore.add_argument("path", help="a file written by excerpta backup")
+    restore.set_defaults(handler=cmd_restore)
 
     from service.bench.command import add_bench_arguments
 

@@ -25,6 +25,13 @@ class Settings(BaseSettings):
     blas_threads: int = Field(1, ge=0, description="0 keeps the BLAS library's own default")
     compact_after_deleted_rows: int = Field(1024, ge=1)
 
+    # A write that loses a race against another writer is tried this many times in all, after
+    # random pauses of up to write_retry_pause_seconds, doubling; then it is answered ``busy``.
+    write_attempts: int = Field(5, ge=1, le=20)
+    write_retry_pause_seconds: float = Field(0.05, ge=0.0, le=5.0)
+    # On SIGTERM the server stops accepting and gives requests in flight this long to finish.
+    shutdown_grace_seconds: int = Field(30, ge=0)
+
     max_body_bytes: int = 10 * 1024 * 1024
     max_batch_documents: int = 1000
     max_document_text_bytes: int = 2 * 1024 * 1024

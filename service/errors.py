@@ -24,7 +24,10 @@ a 500.
     ├── InvalidDocuments              a batch with invalid documents (``documents``)
     ├── LimitExceeded                 a configured limit (``limit``)
     ├── RateLimited                   the key's rate limit (``retry_after`` seconds)
-    └── GeneratorUnavailable          the generator failed (``context`` attached)
+    ├── GeneratorUnavailable          the generator failed (``context`` attached)
+    ├── Busy                          a write lost every retry against other writers
+    │                                 (``retry_after`` seconds)
+    └── StorageUnavailable            the store is gone, replaced, full, read-only or failing
 """
 
 from __future__ import annotations
@@ -163,3 +166,22 @@ class GeneratorUnavailable(ServiceError):
         super().__init__(message)
         # The packed context the caller can still use; the API renders it into the body.
         self.context = context
+
+
+class Busy(ServiceError):
+    """A write lost a bounded number of retries against other writers; try again shortly."""
+
+    code = "busy"
+
+    def __init__(self, message: str, *, retry_after: int = 1) -> None:
+        super().__init__(message)
+        self.retry_after = retry_after
+
+
+class StorageUnavailable(ServiceError):
+    """The store cannot serve: it vanished, was replaced, is full, read-only or failing.
+
+    The message says which, in words a caller can act on; the log names the path or URL.
+    """
+
+    code = "storage_unavailable"

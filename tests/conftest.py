@@ -9,6 +9,7 @@ from __future__ import annotations
 import os
 import uuid
 from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -41,16 +42,22 @@ def postgres_url() -> str:
     return url
 
 
-def _postgres_engine(url: str) -> Iterator[Engine]:
+def postgres_url_for_schema(url: str, schema: str) -> str:
+    """The URL of one schema of a PostgreSQL database, as another process can be handed it."""
+    separator = "&" if "?" in url else "?"
+    return f"{url}{separator}options=-csearch_path%3D{schema}"
+
+
+@contextmanager
+def postgres_schema(url: str) -> Iterator[str]:
+    """A schema of its own in the test database, dropped with everything in it afterwards."""
     schema = f"excerpta_test_{uuid.uuid4().hex[:12]}"
     admin = make_engine(url)
     with admin.begin() as connection:
         connection.execute(text(f'CREATE SCHEMA "{schema}"'))
-    engine = make_engine(url, schema=schema)
     try:
-        yield engine
+        yield schema
     finally:
-        engine.dispose()
         with admin.begin() as connection:
             connection.execute(text(f'DROP SCHEMA "{schema}" CASCADE'))
         admin.dispose()
@@ -65,7 +72,21 @@ def store_engine(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Eng
         engine.dispose()
     else:
         url = request.getfixturevalue("postgres_url")
-        yield from _postgres_engine(url)
+        with postgres_schema(url) as schema:
+            engine = make_engine(url, schema=schema)
+            yield engine
+            engine.dispose()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """An empty store on each backend, as a URL another process can open too."""
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'store.db'}"
+        return
+    url = request.getfixturevalue("postgres_url")
+    with postgres_schema(url) as schema:
+        yield postgres_url_for_schema(url, schema)
 
 
 @pytest.fixture

@@ -28,6 +28,8 @@ STATUS_BY_ERROR: tuple[tuple[type[errors.ServiceError], int], ...] = (
     (errors.LimitExceeded, 422),
     (errors.RateLimited, 429),
     (errors.GeneratorUnavailable, 502),
+    (errors.Busy, 503),
+    (errors.StorageUnavailable, 503),
 )
 
 
@@ -41,7 +43,7 @@ def status_for(error: errors.ServiceError) -> int:
 def error_response(error: errors.ServiceError) -> JSONResponse:
     headers = {}
     body = error.body()
-    if isinstance(error, errors.RateLimited):
+    if isinstance(error, errors.RateLimited | errors.Busy):
         headers["Retry-After"] = str(error.retry_after)
     if isinstance(error, errors.GeneratorUnavailable):
         context = error.context
@@ -89,6 +91,7 @@ ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
         (415, "The body is not sent as application/json"),
         (422, "Invalid request, documents or a limit exceeded"),
         (429, "Rate limited"),
+        (503, "Busy with other writes, or the store is unavailable"),
     )
 }
 

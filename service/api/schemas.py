@@ -272,3 +272,5 @@ class TraceOut(BaseModel):
 
 class HealthOut(BaseModel):
     status: str
+    # Why the server is not ready, in one sentence; absent when it is.
+    reason: str | None = None

@@ -26,6 +26,7 @@ import numpy as np
 from service.attributes import AttributeValue, Schema
 from service.filters.columns import AttributeColumns
 from service.index.buffers import write_rows
+from service.index.document_text import rebuild_span
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalIndex
 from service.index.vectors import Metric, VectorMatrix
 
@@ -49,6 +50,18 @@ class ChunkRecord:
     vector: np.ndarray
     attributes: dict[str, AttributeValue] = field(default_factory=dict)
     access: tuple[str, ...] = ()
+    source_url: str | None = None
+    # The document's text between this chunk's end and the next chunk's start (see
+    # ``document_text``); empty when they overlap or touch.
+    gap_after: str = ""
+
+
+@dataclass(frozen=True)
+class IndexedDocument:
+    """What the index keeps once per document: its live rows in ordinal order, its source."""
+
+    rows: np.ndarray
+    source_url: str | None
 
 
 @dataclass(frozen=True)
@@ -174,6 +187,7 @@ class IndexSnapshot:
     texts: RowPrefix[str]
     attributes: RowPrefix[dict[str, AttributeValue]]
     access_lists: RowPrefix[tuple[str, ...]]
+    gaps: RowPrefix[str]
     ordinals: np.ndarray
     char_starts: np.ndarray
     char_ends: np.ndarray
@@ -183,7 +197,7 @@ class IndexSnapshot:
     vectors: VectorMatrix
     columns: AttributeColumns | None
     access: AccessGroups
-    rows_by_document: Mapping[str, np.ndarray]
+    documents: Mapping[str, IndexedDocument]
     sorted_chunk_ids: list[str] = field(repr=False)
     numeric_buffers: dict[str, np.ndarray] = field(repr=False)
 
@@ -221,7 +235,26 @@ class IndexSnapshot:
 
     def rows_of(self, document_id: str) -> np.ndarray:
         """Live rows of a document in ordinal order (empty when it is not indexed)."""
-        return self.rows_by_document.get(document_id, np.zeros(0, dtype=np.int64))
+        found = self.documents.get(document_id)
+        return np.zeros(0, dtype=np.int64) if found is None else found.rows
+
+    def source_url(self, document_id: str) -> str | None:
+        found = self.documents.get(document_id)
+        return None if found is None else found.source_url
+
+    def document_span(self, document_id: str, start: int, end: int) -> str | None:
+        """The document's text over ``[start, end)`` as of this snapshot, rebuilt from its
+        chunks (see ``document_text``); None when its chunks here do not cover the span."""
+        rows = self.rows_of(document_id).tolist()
+        return rebuild_span(
+            (
+                (int(self.char_starts[row]), int(self.char_ends[row]), self.texts[row], gap)
+                for row in rows
+                for gap in (self.gaps[row],)
+            ),
+            start,
+            end,
+        )
 
 
 class _RowLists:
@@ -235,6 +268,7 @@ class _RowLists:
         "texts",
         "attributes",
         "access_lists",
+        "gaps",
     )
 
     def __init__(self, lists: dict[str, list[Any]]) -> None:
@@ -253,6 +287,7 @@ class _RowLists:
             "texts": [r.text for r in records],
             "attributes": [r.attributes for r in records],
             "access_lists": [tuple(r.access) for r in records],
+            "gaps": [r.gap_after for r in records],
         }
         for name, items in self.lists.items():
             # Items past ``length`` were left by a write that failed before publishing.
@@ -300,6 +335,7 @@ class CollectionIndex:
             texts=RowPrefix([], 0),
             attributes=RowPrefix([], 0),
             access_lists=RowPrefix([], 0),
+            gaps=RowPrefix([], 0),
             ordinals=np.zeros(0, np.int32),
             char_starts=np.zeros(0, np.int64),
             char_ends=np.zeros(0, np.int64),
@@ -309,7 +345,7 @@ class CollectionIndex:
             vectors=VectorMatrix.empty(metric=metric, dimension=dimension),
             columns=_build_columns(schema, []),
             access=AccessGroups.empty(),
-            rows_by_document={},
+            documents={},
             sorted_chunk_ids=[],
             numeric_buffers={name: np.zeros(0, dtype) for name, _, dtype in _NUMERIC_FIELDS},
         )
@@ -393,7 +429,10 @@ class CollectionIndex:
                 vectors=current.vectors.take(kept),
                 columns=columns,
                 access=current.access.take(remap, kept),
-                rows_by_document={d: remap[r] for d, r in current.rows_by_document.items()},
+                documents={
+                    d: IndexedDocument(remap[entry.rows], entry.source_url)
+                    for d, entry in current.documents.items()
+                },
                 sorted_chunk_ids=[current.sorted_chunk_ids[k] for k in key_order.tolist()],
                 numeric_buffers={name: numeric[name] for name, _, _ in _NUMERIC_FIELDS},
             )
@@ -421,12 +460,13 @@ class CollectionIndex:
         row_lists.extend(n_old, records)
         sort_keys, sorted_ids = _merged_sort_keys(current, [r.chunk_id for r in records])
 
-        rows_by_document = dict(current.rows_by_document)
+        documents = dict(current.documents)
         position = n_old
         for document_id, chunks in records_by_document.items():
-            rows_by_document.pop(document_id, None)
+            documents.pop(document_id, None)
             if chunks:
-                rows_by_document[document_id] = np.arange(position, position + len(chunks))
+                rows = np.arange(position, position + len(chunks))
+                documents[document_id] = IndexedDocument(rows, chunks[0].source_url)
                 position += len(chunks)
 
         buffers = {
@@ -448,7 +488,7 @@ class CollectionIndex:
             vectors=vectors,
             columns=columns,
             access=current.access.appended([r.access for r in records]),
-            rows_by_document=rows_by_document,
+            documents=documents,
             sorted_chunk_ids=sorted_ids,
             numeric_buffers=buffers,
         )

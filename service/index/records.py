@@ -52,6 +52,8 @@ def chunk_record(
     access: tuple[str, ...],
     chunk: ChunkFields,
     vector: np.ndarray,
+    source_url: str | None = None,
+    gap_after: str = "",
 ) -> ChunkRecord:
     return ChunkRecord(
         chunk_id=chunk_id(document_id, chunk.ordinal),
@@ -67,4 +69,6 @@ def chunk_record(
         vector=vector,
         attributes=attributes,
         access=access,
+        source_url=source_url,
+        gap_after=gap_after,
     )

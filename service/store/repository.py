@@ -21,9 +21,11 @@ from sqlalchemy import (
     select,
     update,
 )
+from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from service.store.driver_query import DriverQuery
+from service.store.identity import StoreGuard
 from service.store.tables import (
     ApiKeyRow,
     AttributeValueRow,
@@ -33,6 +35,7 @@ from service.store.tables import (
     DocumentGroupRow,
     DocumentRow,
     EmbeddingRow,
+    StoreIdentityRow,
     TraceRow,
 )
 
@@ -46,6 +49,25 @@ def utcnow() -> dt.datetime:
 
 def collection_by_name(session: Session, name: str) -> CollectionRow | None:
     return session.scalars(select(CollectionRow).where(CollectionRow.name == name)).first()
+
+
+def lock_collection(session: Session, name: str) -> CollectionRow | None:
+    """The named collection, read under its row lock (PostgreSQL's ``FOR UPDATE``).
+
+    Every write to a collection's documents, and every change of the collection itself, takes
+    this lock before it reads anything else, so writers of one collection run one at a time and
+    always lock in the same order: the collection, then its rows. (SQLite has no row locks and
+    needs none: a write transaction holds the database's write lock from its start.)
+    """
+    return session.scalars(
+        select(CollectionRow).where(CollectionRow.name == name).with_for_update()
+    ).first()
+
+
+def lock_collection_names(session: Session) -> None:
+    """The lock a collection's creation takes (the store's identity row), so that two
+    creations of one name run one after the other instead of one failing on the unique name."""
+    session.execute(select(StoreIdentityRow.store_id).with_for_update())
 
 
 def all_collections(session: Session) -> list[CollectionRow]:
@@ -321,9 +343,15 @@ def drop_generations_except(session: Session, collection_id: int, generation: in
 
 
 def index_rows(
-    session: Session, collection_id: int, generation: int, document_pks: Sequence[int] | None
+    session: Session, collection_id: int, generation: int, external_ids: Sequence[str] | None
 ) -> list[tuple[DocumentRow, ChunkRow, bytes]]:
-    """Every chunk of the generation with its document and vector, for building an index."""
+    """Every chunk of the generation with its document and vector, for building an index;
+    ``external_ids`` narrows it to those documents.
+
+    One statement, so each document and its chunks come from one snapshot even under
+    PostgreSQL's READ COMMITTED; and documents are re-read even when the session already holds
+    them, since an object from an earlier statement may be of an older version.
+    """
     query = (
         select(DocumentRow, ChunkRow, EmbeddingRow.vector)
         .join(ChunkRow, ChunkRow.document_id == DocumentRow.id)
@@ -337,9 +365,10 @@ def index_rows(
         )
         .where(DocumentRow.collection_id == collection_id, ChunkRow.generation == generation)
         .order_by(DocumentRow.id, ChunkRow.ordinal)
+        .execution_options(populate_existing=True)
     )
-    if document_pks is not None:
-        query = query.where(DocumentRow.id.in_(list(document_pks)))
+    if external_ids is not None:
+        query = query.where(DocumentRow.external_id.in_(list(external_ids)))
     return [(row[0], row[1], row[2]) for row in session.execute(query)]
 
 
@@ -364,20 +393,29 @@ def cached_embeddings(
 
 
 def store_embeddings(session: Session, embedder: str, vectors: dict[str, np.ndarray]) -> None:
-    """Insert embeddings not yet stored; another writer may have stored the same text meanwhile."""
+    """Insert each embedding, or keep the row already there: another writer may store the same
+    text at the same moment, and the first one stored is the one every index uses.
+
+    Rows go in hash order, so two writers storing overlapping sets lock the same keys in the
+    same order and can never deadlock each other.
+    """
     if not vectors:
         return
-    present = cached_embeddings(session, embedder, list(vectors))
-    session.add_all(
-        EmbeddingRow(
-            embedder=embedder,
-            text_hash=text_hash,
-            dimensions=int(vector.shape[0]),
-            vector=np.asarray(vector, dtype=np.float32).tobytes(),
+    dialect = postgresql if session.get_bind().dialect.name == "postgresql" else sqlite
+    rows = [
+        {
+            "embedder": embedder,
+            "text_hash": text_hash,
+            "dimensions": int(vectors[text_hash].shape[0]),
+            "vector": np.asarray(vectors[text_hash], dtype=np.float32).tobytes(),
+        }
+        for text_hash in sorted(vectors)
+    ]
+    for start in range(0, len(rows), 500):
+        session.execute(
+            dialect.insert(EmbeddingRow.__table__).on_conflict_do_nothing(),
+            rows[start : start + 500],
         )
-        for text_hash, vector in vectors.items()
-        if text_hash not in present
-    )
 
 
 # Keys and traces --------------------------------------------------------------------------------
@@ -411,12 +449,19 @@ _INSERT_TRACE = insert(TraceRow)
 class KeyReader:
     """The key check every request runs, and the rare write that marks a key used."""
 
-    def __init__(self, engine: Engine) -> None:
+    def __init__(self, engine: Engine, store: StoreGuard) -> None:
         self._engine = engine
+        self._store = store
         self._lookup = DriverQuery(engine, _KEY_FOR_LOOKUP)
 
     def by_lookup(self, lookup: str) -> StoredKey | None:
-        row = self._lookup.first({"lookup": lookup})
+        try:
+            row = self._lookup.first({"lookup": lookup})
+        except Exception as exc:
+            error = self._store.explain(exc)
+            if error is None:
+                raise
+            raise error from exc
         return None if row is None else StoredKey(*row)
 
     def mark_used(self, key_id: int, when: dt.datetime) -> None:

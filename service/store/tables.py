@@ -213,3 +213,18 @@ class TraceRow(Base):
     route: Mapped[str] = mapped_column(String(16))
     created_at: Mapped[dt.datetime] = mapped_column(UtcDateTime, index=True)
     body: Mapped[dict[str, Any]] = mapped_column(JSON)
+
+
+class StoreIdentityRow(Base):
+    """The one row naming this store, written by the migration that made it.
+
+    A server remembers the id it found at start and checks it in every write transaction, so a
+    store that was removed or replaced under it refuses writes instead of taking them.
+    ``checked_at`` is what a readiness probe writes to learn that the store takes writes again.
+    """
+
+    __tablename__ = "store_identity"
+
+    store_id: Mapped[str] = mapped_column(String(36), primary_key=True)
+    created_at: Mapped[dt.datetime] = mapped_column(UtcDateTime)
+    checked_at: Mapped[dt.datetime] = mapped_column(UtcDateTime)

@@ -16,10 +16,9 @@ from typing import Any
 from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
 from service.generation.base import GeneratedAnswer, Generator
-from service.index.view import CollectionFacts, IndexView
+from service.index.view import IndexView
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import RetrievalResult, retrieve
-from service.store import repository
 from service.usecases.callers import Caller, Role
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions, check_limits, prepare_query
@@ -187,26 +186,14 @@ def _pack(
                 vector=snapshot.vector(hit.row),
             )
         )
-    collection_id = retrieval.view.facts.collection_id
-
-    texts: dict[str, str | None] = {}
-
-    def document_span(document_id: str, start: int, end: int) -> str | None:
-        """The document's text over a merged span, read once per document and request."""
-        if document_id not in texts:
-            with runtime.transaction() as session:
-                found = repository.documents_by_external_id(session, collection_id, [document_id])
-                document = found.get(document_id)
-                texts[document_id] = None if document is None else document.text
-        text = texts[document_id]
-        return None if text is None else text[start:end]
-
+    # Merged spans come from the snapshot that ranked the chunks, never from the store, which
+    # may hold a newer version of the document by now.
     packed = pack_context(
         candidates,
         token_budget=token_budget,
         count_tokens=runtime.embedder.tokens.count,
         token_margin=token_margin,
-        document_span=document_span,
+        document_span=snapshot.document_span,
     )
     retrieval.recorder.stage(
         "packing",
@@ -304,7 +291,7 @@ def answer(
     return AnswerResult(
         answer=generated.answer,
         reason=None,
-        citations=_citations(runtime, facts, packed, generated),
+        citations=_citations(retrieval.view, packed, generated),
         passages=packed.passages,
         generator=generator.name,
         caution=facts.answer_caution,
@@ -339,18 +326,18 @@ def _generate(
 
 
 def _citations(
-    runtime: Runtime, facts: CollectionFacts, packed: PackedContext, generated: GeneratedAnswer
+    view: IndexView, packed: PackedContext, generated: GeneratedAnswer
 ) -> tuple[CitationView, ...]:
+    """Citations of the markers used, each document's source and attributes as of the snapshot
+    the passages came from."""
     by_marker = {p.marker: p for p in packed.passages}
     used = [by_marker[m] for m in sorted(set(generated.markers_used)) if m in by_marker]
-    with runtime.transaction() as session:
-        documents = repository.documents_by_external_id(
-            session, facts.collection_id, sorted({p.document_id for p in used})
-        )
+    snapshot = view.snapshot
+    cited = view.facts.cite_attributes
     citations = []
     for passage in used:
-        document = documents.get(passage.document_id)
-        attributes = {} if document is None else document.attributes
+        rows = snapshot.rows_of(passage.document_id)
+        attributes = snapshot.attributes[int(rows[0])] if len(rows) else {}
         citations.append(
             CitationView(
                 marker=passage.marker,
@@ -358,9 +345,9 @@ def _citations(
                 title=passage.title,
                 section=passage.section or "",
                 chunk_ids=passage.chunk_ids,
-                source_url=None if document is None else document.source_url,
+                source_url=snapshot.source_url(passage.document_id),
                 attributes={
-                    name: attributes[name] for name in facts.cite_attributes if name in attributes
+                    name: to_json_value(attributes[name]) for name in cited if name in attributes
                 },
             )
         )

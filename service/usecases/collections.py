@@ -71,6 +71,16 @@ def load_collection(session: Session, caller: Caller, name: str) -> CollectionRo
     return row
 
 
+def lock_collection(session: Session, caller: Caller, name: str) -> CollectionRow:
+    """The named collection under its write lock (see ``repository.lock_collection``), or the
+    same 404 as ``load_collection``; a write takes it before it reads anything else."""
+    caller.require_collection(name)
+    row = repository.lock_collection(session, name)
+    if row is None:
+        raise CollectionNotFound(f"Collection {name!r} does not exist.")
+    return row
+
+
 def _checked_chunking(raw: dict[str, Any], window: int) -> dict[str, int]:
     limit = window - SPECIAL_TOKEN_ALLOWANCE
     max_tokens = raw.get("max_tokens", DEFAULT_CHUNKING["max_tokens"])
@@ -143,9 +153,31 @@ def put_collection(
     except AttributeValueError as exc:
         raise InvalidRequest(f"{exc}.", field="attributes") from None
     removals = _checked_removals(spec.remove_attributes or [], new_schema)
+    created, view, rebuild_needed = runtime.retries.run(
+        lambda: _put_collection(runtime, caller, name, spec, new_schema, removals)
+    )
+    runtime.indexes.expire(name)
+    if rebuild_needed:
+        runtime.rebuilds.start(name)
+    return created, view
+
+
+def _put_collection(
+    runtime: Runtime,
+    caller: Caller,
+    name: str,
+    spec: CollectionSpec,
+    new_schema: Schema,
+    removals: list[str],
+) -> tuple[bool, dict[str, Any], bool]:
+    """One attempt at a PUT, in one write transaction: (created, view, rebuild needed)."""
     window = runtime.embedder.window
-    with runtime.transaction() as session:
-        row = repository.collection_by_name(session, name)
+    with runtime.write_transaction() as session:
+        row = repository.lock_collection(session, name)
+        if row is None:
+            # Creations wait for each other, so two PUTs of one new name make it once.
+            repository.lock_collection_names(session)
+            row = repository.lock_collection(session, name)
         created = row is None
         old_schema = {} if row is None else parse_schema(row.attributes)
         for attr, type_ in new_schema.items():
@@ -227,10 +259,7 @@ def put_collection(
             if retrieval_changed or removed or set(new_schema) - set(old_schema):
                 repository.bump_revision(session, row, [(None, "reset")])
         view = collection_view(session, row, caller, runtime.embedder.tokenizer_name)
-    runtime.indexes.expire(name)
-    if rebuild_needed:
-        runtime.rebuilds.start(name)
-    return created, view
+    return created, view, rebuild_needed
 
 
 def _checked_removals(names: list[str], new_schema: Schema) -> list[str]:
@@ -334,8 +363,13 @@ def list_collections(runtime: Runtime, caller: Caller) -> list[dict[str, Any]]:
 
 def delete_collection(runtime: Runtime, caller: Caller, name: str) -> None:
     caller.require(Role.ADMIN)
-    with runtime.transaction() as session:
-        row = load_collection(session, caller, name)
+    runtime.retries.run(lambda: _delete_collection(runtime, caller, name))
+    runtime.indexes.forget(name)
+
+
+def _delete_collection(runtime: Runtime, caller: Caller, name: str) -> None:
+    with runtime.write_transaction() as session:
+        row = lock_collection(session, caller, name)
         document_pks = [
             pk
             for pk, _ in repository.matching_document_ids(
@@ -344,7 +378,6 @@ def delete_collection(runtime: Runtime, caller: Caller, name: str) -> None:
         ]
         repository.delete_documents(session, document_pks)
         session.delete(row)
-    runtime.indexes.forget(name)
 
 
 def attribute_schema(row: CollectionRow) -> dict[str, AttributeType]:

@@ -7,10 +7,14 @@ so a reader sees the old version or the new one and a rejected batch leaves the 
 
 from __future__ import annotations
 
+import json
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
+import numpy as np
 from sqlalchemy.orm import Session
 
 from service.attributes import (
@@ -20,19 +24,27 @@ from service.attributes import (
     normalize_value,
     to_json_value,
 )
-from service.errors import DocumentNotFound, InvalidDocuments, InvalidRequest, LimitExceeded
+from service.errors import (
+    Busy,
+    DocumentNotFound,
+    InvalidDocuments,
+    InvalidRequest,
+    LimitExceeded,
+)
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
 from service.index.records import chunk_id
 from service.store import repository
 from service.store.attribute_rows import attribute_value_rows
+from service.store.failures import BUSY_MESSAGE
 from service.store.filter_sql import compile_filter
 from service.store.tables import CollectionRow, DocumentRow
 from service.usecases.callers import Caller, Role
-from service.usecases.collections import attribute_schema, load_collection
+from service.usecases.collections import attribute_schema, load_collection, lock_collection
 from service.usecases.drafts import (
     MaterialisedDocument,
     PreparedDocument,
+    Vectors,
     chunk_rows,
     content_hash,
     embed_drafts,
@@ -165,24 +177,127 @@ def _check_limits(runtime: Runtime, documents: Sequence[Any]) -> None:
             )
 
 
+@dataclass(frozen=True)
+class CollectionLayout:
+    """What a batch is prepared against: a write that finds another layout prepares again."""
+
+    collection_id: int
+    attributes: dict[str, Any]
+    chunking: dict[str, int]
+    pending: dict[str, int] | None
+    generation: int
+
+    @classmethod
+    def of(cls, row: CollectionRow) -> CollectionLayout:
+        return cls(
+            collection_id=row.id,
+            attributes=dict(row.attributes),
+            chunking=dict(row.chunking),
+            pending=row.settings.get("pending_chunking"),
+            generation=row.chunk_generation,
+        )
+
+
+@dataclass(frozen=True)
+class PreparedBatch:
+    """A validated batch with the chunks and vectors of every document it would change."""
+
+    layout: CollectionLayout
+    documents: tuple[PreparedDocument, ...]
+    built: Mapping[str, MaterialisedDocument]
+    rebuilt: Mapping[str, MaterialisedDocument]
+    vectors: Vectors
+
+
+class _StalePreparation(Exception):
+    """Another write changed the collection's layout, or a document the batch took as
+    unchanged, between the batch's preparation and its write."""
+
+
+# A batch raced by writes that keep changing what it depends on is prepared at most this often.
+MAX_PREPARATIONS = 5
+_Materials = dict[tuple[str, str, str], MaterialisedDocument]
+
+
 def upsert_documents(
     runtime: Runtime, caller: Caller, collection: str, documents: Sequence[Any]
 ) -> list[dict[str, Any]]:
-    """Validate the whole batch, then write every changed document in one transaction."""
+    """Validate the whole batch, then write every changed document in one transaction.
+
+    Parsing, chunking and embedding happen first, outside any lock. The write transaction then
+    takes the collection's write lock before it reads the documents it replaces and writes only
+    what the batch was prepared against; when another write got in between and changed that,
+    the batch is prepared again (the chunks and vectors already made are kept).
+    """
     caller.require(Role.WRITER)
     _check_limits(runtime, documents)
     if not documents:
         raise InvalidRequest("The batch must hold at least one document.", field="documents")
-    with runtime.transaction() as session:
-        row = load_collection(session, caller, collection)
-        schema = attribute_schema(row)
-        chunking = dict(row.chunking)
-        pending = row.settings.get("pending_chunking")
-        collection_id = row.id
+    materials: _Materials = {}
+    for _ in range(MAX_PREPARATIONS):
+        batch = _prepare_batch(runtime, caller, collection, documents, materials)
+        try:
+            results, revision, vectors = runtime.retries.run(
+                partial(_write_batch, runtime, caller, collection, batch)
+            )
+        except _StalePreparation:
+            continue
+        changed = {r["id"] for r in results if r["status"] != "unchanged"}
+        if revision is not None:
+            runtime.indexes.after_write(
+                collection,
+                revision,
+                {doc_id: (batch.built[doc_id], vectors) for doc_id in sorted(changed)},
+            )
+        return results
+    raise Busy(BUSY_MESSAGE)
 
+
+def _prepare_batch(
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    documents: Sequence[Any],
+    materials: _Materials,
+) -> PreparedBatch:
+    """Validate against the collection as it is now, then chunk and embed what would change."""
+    with runtime.transaction() as session:
+        # A write checks its store before it reads: a replaced store has other collections.
+        runtime.store.check(session)
+        row = load_collection(session, caller, collection)
+        layout = CollectionLayout.of(row)
+        prepared, problems = _validated(documents, attribute_schema(row))
+        existing = repository.documents_by_external_id(
+            session, row.id, [d.external_id for d in prepared]
+        )
+        hashes = {doc_id: (d.content_hash, tuple(d.access)) for doc_id, d in existing.items()}
+    _reject(documents, problems + _not_writable(caller, prepared, hashes))
+    changed = [d for d in prepared if hashes.get(d.external_id, ("",))[0] != d.content_hash]
+
+    def built_with(chunking: Mapping[str, int]) -> dict[str, MaterialisedDocument]:
+        key = json.dumps(chunking, sort_keys=True)
+        made = {}
+        for doc in changed:
+            cached = (doc.external_id, doc.content_hash, key)
+            if cached not in materials:
+                materials[cached] = materialise(runtime.embedder, doc, chunking)
+            made[doc.external_id] = materials[cached]
+        return made
+
+    built = built_with(layout.chunking)
+    rebuilt = built_with(layout.pending) if layout.pending else {}
+    drafts = [c for m in (*built.values(), *rebuilt.values()) for c in m.chunks]
+    with runtime.transaction() as session:
+        vectors = embed_drafts(runtime.embedder, session, drafts)
+    return PreparedBatch(layout, tuple(prepared), built, rebuilt, vectors)
+
+
+def _validated(
+    documents: Sequence[Any], schema: Schema
+) -> tuple[list[PreparedDocument], list[dict[str, Any]]]:
     problems: list[dict[str, Any]] = []
     prepared: list[PreparedDocument] = []
-    seen: dict[str, int] = {}
+    seen: set[str] = set()
     for index, raw in enumerate(documents):
         raw_id = raw.get("id") if isinstance(raw, dict) else None
         try:
@@ -197,24 +312,31 @@ def upsert_documents(
                 )
             )
             continue
-        seen[doc.external_id] = index
+        seen.add(doc.external_id)
         prepared.append(doc)
+    return prepared, problems
 
-    with runtime.transaction() as session:
-        existing = repository.documents_by_external_id(
-            session, collection_id, [d.external_id for d in prepared]
+
+def _not_writable(
+    caller: Caller,
+    prepared: Sequence[PreparedDocument],
+    stored: Mapping[str, tuple[str, tuple[str, ...]]],
+) -> list[dict[str, Any]]:
+    """A problem for each document that exists hidden from the caller (``stored``: id ->
+    (content hash, access))."""
+    return [
+        _problem(
+            doc.external_id,
+            doc.index,
+            "not_writable",
+            "The document exists and this key may not change it.",
         )
-    for doc in prepared:
-        old = existing.get(doc.external_id)
-        if old is not None and not caller.may_see(old.access):
-            problems.append(
-                _problem(
-                    doc.external_id,
-                    doc.index,
-                    "not_writable",
-                    "The document exists and this key may not change it.",
-                )
-            )
+        for doc in prepared
+        if doc.external_id in stored and not caller.may_see(list(stored[doc.external_id][1]))
+    ]
+
+
+def _reject(documents: Sequence[Any], problems: list[dict[str, Any]]) -> None:
     if problems:
         problems.sort(key=lambda p: p["index"])
         raise InvalidDocuments(
@@ -222,43 +344,46 @@ def upsert_documents(
             documents=problems,
         )
 
-    changed = [
-        d
-        for d in prepared
-        if existing.get(d.external_id) is None
-        or existing[d.external_id].content_hash != d.content_hash
-    ]
-    built = {d.external_id: materialise(runtime.embedder, d, chunking) for d in changed}
-    rebuilt = (
-        {d.external_id: materialise(runtime.embedder, d, pending) for d in changed}
-        if pending
-        else {}
-    )
-    results: list[dict[str, Any]] = []
-    with runtime.transaction() as session:
-        row = load_collection(session, caller, collection)
-        all_drafts = [c for m in (*built.values(), *rebuilt.values()) for c in m.chunks]
-        vectors = embed_drafts(runtime.embedder, session, all_drafts)
+
+def _write_batch(
+    runtime: Runtime, caller: Caller, collection: str, batch: PreparedBatch
+) -> tuple[list[dict[str, Any]], int | None, dict[str, np.ndarray]]:
+    """One attempt at the write: (results, the new revision or None when nothing changed, the
+    vectors as stored)."""
+    with runtime.write_transaction() as session:
+        row = lock_collection(session, caller, collection)
+        if CollectionLayout.of(row) != batch.layout:
+            raise _StalePreparation
         current = repository.documents_by_external_id(
-            session, row.id, [d.external_id for d in changed]
+            session, row.id, [d.external_id for d in batch.documents]
         )
-        now = repository.utcnow()
+        stored = {doc_id: (d.content_hash, tuple(d.access)) for doc_id, d in current.items()}
+        _reject(batch.documents, _not_writable(caller, batch.documents, stored))
+        changed = [
+            d for d in batch.documents if stored.get(d.external_id, ("",))[0] != d.content_hash
+        ]
+        if any(d.external_id not in batch.built for d in changed):
+            raise _StalePreparation
+        changed_ids = {d.external_id for d in changed}
+        vectors = batch.vectors.stored(session, runtime.embedder.name) if changed else {}
         unchanged_chunks = repository.chunk_counts(
             session,
-            [existing[d.external_id].id for d in prepared if d.external_id not in built],
+            [
+                current[d.external_id].id
+                for d in batch.documents
+                if d.external_id not in changed_ids
+            ],
             row.chunk_generation,
         )
-        for doc in prepared:
-            if doc.external_id not in built:
-                results.append(
-                    {
-                        "id": doc.external_id,
-                        "status": "unchanged",
-                        "chunks": unchanged_chunks.get(existing[doc.external_id].id, 0),
-                    }
-                )
+        now = repository.utcnow()
+        schema = attribute_schema(row)
+        results: list[dict[str, Any]] = []
+        for doc in batch.documents:
+            if doc.external_id not in changed_ids:
+                chunks = unchanged_chunks.get(current[doc.external_id].id, 0)
+                results.append({"id": doc.external_id, "status": "unchanged", "chunks": chunks})
                 continue
-            material = built[doc.external_id]
+            material = batch.built[doc.external_id]
             document_row = current.get(doc.external_id)
             status = "updated" if document_row is not None else "created"
             if document_row is None:
@@ -277,27 +402,22 @@ def upsert_documents(
             repository.replace_chunks(
                 session, document_row.id, row.chunk_generation, chunk_rows(material)
             )
-            if doc.external_id in rebuilt:
+            if doc.external_id in batch.rebuilt:
                 repository.replace_chunks(
                     session,
                     document_row.id,
                     row.chunk_generation + 1,
-                    chunk_rows(rebuilt[doc.external_id]),
+                    chunk_rows(batch.rebuilt[doc.external_id]),
                 )
             results.append(
                 {"id": doc.external_id, "status": status, "chunks": len(material.chunks)}
             )
-        if built:
-            revision = repository.bump_revision(
-                session, row, [(external_id, "upsert") for external_id in built]
-            )
-    if built:
-        runtime.indexes.after_write(
-            collection,
-            revision,
-            {external_id: (material, vectors) for external_id, material in built.items()},
+        if not changed:
+            return results, None, vectors
+        revision = repository.bump_revision(
+            session, row, [(d.external_id, "upsert") for d in changed]
         )
-    return results
+    return results, revision, vectors
 
 
 def _problem(raw_id: Any, index: int, reason: str, message: str) -> dict[str, Any]:
@@ -373,11 +493,15 @@ def get_document(
 
 def delete_document(runtime: Runtime, caller: Caller, collection: str, document_id: str) -> None:
     caller.require(Role.WRITER)
-    with runtime.transaction() as session:
-        row = load_collection(session, caller, collection)
-        document = _visible_document(session, caller, row, document_id)
-        repository.delete_documents(session, [document.id])
-        revision = repository.bump_revision(session, row, [(document_id, "delete")])
+
+    def attempt() -> int:
+        with runtime.write_transaction() as session:
+            row = lock_collection(session, caller, collection)
+            document = _visible_document(session, caller, row, document_id)
+            repository.delete_documents(session, [document.id])
+            return repository.bump_revision(session, row, [(document_id, "delete")])
+
+    revision = runtime.retries.run(attempt)
     runtime.indexes.after_write(collection, revision, {document_id: None})
 
 
@@ -442,17 +566,23 @@ def delete_by_filter(
             "Deleting by filter needs a non-empty filter; delete the collection to remove all.",
             field="filter",
         )
-    with runtime.transaction() as session:
-        row = load_collection(session, caller, collection)
-        matches = repository.matching_document_ids(
-            session,
-            row.id,
-            groups=caller.visible_groups,
-            condition=_filter_condition(row, filter_value),
-        )
-        if not matches:
-            return 0
-        repository.delete_documents(session, [pk for pk, _ in matches])
-        revision = repository.bump_revision(session, row, [(ext, "delete") for _, ext in matches])
-    runtime.indexes.after_write(collection, revision, {ext: None for _, ext in matches})
-    return len(matches)
+
+    def attempt() -> tuple[list[str], int | None]:
+        with runtime.write_transaction() as session:
+            row = lock_collection(session, caller, collection)
+            matches = repository.matching_document_ids(
+                session,
+                row.id,
+                groups=caller.visible_groups,
+                condition=_filter_condition(row, filter_value),
+            )
+            if not matches:
+                return [], None
+            repository.delete_documents(session, [pk for pk, _ in matches])
+            deleted = [ext for _, ext in matches]
+            return deleted, repository.bump_revision(session, row, [(e, "delete") for e in deleted])
+
+    deleted, revision = runtime.retries.run(attempt)
+    if revision is not None:
+        runtime.indexes.after_write(collection, revision, dict.fromkeys(deleted))
+    return len(deleted)

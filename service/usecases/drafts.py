@@ -2,7 +2,7 @@
 
 Ingest and the background re-chunking share these steps, and the index registry applies a
 write's drafts directly; none of them needs the runtime, only the embedder (and a session for
-the embedding cache).
+the embedding cache: read while a batch is prepared, written by the write itself).
 """
 
 from __future__ import annotations
@@ -116,23 +116,37 @@ def materialise(
     return MaterialisedDocument(prepared, parsed.text, sections, tuple(drafts))
 
 
-def embed_drafts(
-    embedder: Embedder, session: Session, drafts: Sequence[ChunkDraft]
-) -> dict[str, np.ndarray]:
-    """Vectors for every draft: from the cache where the text was seen, else from the model."""
-    name = embedder.name
-    hashes = [d.embedded_text_hash for d in drafts]
-    vectors = repository.cached_embeddings(session, name, hashes)
+@dataclass(frozen=True)
+class Vectors:
+    """A batch's vectors: ``cached`` as the store holds them, ``fresh`` just made by the model."""
+
+    cached: dict[str, np.ndarray]
+    fresh: dict[str, np.ndarray]
+
+    def stored(self, session: Session, embedder: str) -> dict[str, np.ndarray]:
+        """Store the fresh vectors inside a write and return every vector as the store keeps it.
+
+        Each goes in with "insert, or keep the row already there" and is read back: when another
+        writer stored the same text at the same moment, every index uses the one vector kept.
+        """
+        if not self.fresh:
+            return self.cached
+        repository.store_embeddings(session, embedder, self.fresh)
+        return {**self.cached, **repository.cached_embeddings(session, embedder, list(self.fresh))}
+
+
+def embed_drafts(embedder: Embedder, session: Session, drafts: Sequence[ChunkDraft]) -> Vectors:
+    """Vectors for every draft: from the cache (read in ``session``) where the text was seen,
+    else from the model; the new ones are stored later, by the write (``Vectors.stored``)."""
+    cached = repository.cached_embeddings(
+        session, embedder.name, [d.embedded_text_hash for d in drafts]
+    )
     missing: dict[str, str] = {}
     for draft in drafts:
-        if draft.embedded_text_hash not in vectors:
+        if draft.embedded_text_hash not in cached:
             missing.setdefault(draft.embedded_text_hash, draft.embedded_text)
-    if missing:
-        fresh = embedder.embed_documents(list(missing.values()))
-        new_vectors = dict(zip(missing, fresh, strict=True))
-        repository.store_embeddings(session, name, new_vectors)
-        vectors.update(new_vectors)
-    return vectors
+    fresh = embedder.embed_documents(list(missing.values())) if missing else ()
+    return Vectors(cached, dict(zip(missing, fresh, strict=True)))
 
 
 def prepared_from_row(row: DocumentRow) -> PreparedDocument:

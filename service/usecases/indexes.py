@@ -11,27 +11,28 @@ process), so what it does with what it reads can be tested without a store.
 
 from __future__ import annotations
 
+import itertools
 import logging
 import threading
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any, Protocol, cast
 
 import numpy as np
-from sqlalchemy.orm import Session, sessionmaker
 
 from service.attributes import AttributeValue, Schema, normalize_value, parse_schema
 from service.errors import CollectionNotFound
 from service.index.analyzer import Analyzer, english_stopwords
 from service.index.collection_index import ChunkRecord, CollectionIndex
+from service.index.document_text import gaps_between
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
 from service.index.records import chunk_record
 from service.index.vectors import Metric
 from service.index.view import CollectionFacts, IndexView
 from service.store import repository
-from service.store.db import unit_of_work
 from service.store.tables import ChunkRow, DocumentRow
+from service.store.transactions import Transactions
 from service.usecases.drafts import MaterialisedDocument
 
 log = logging.getLogger("excerpta.index")
@@ -269,13 +270,14 @@ class IndexRegistry:
 
 
 class StoreIndexSource:
-    """Reads collections for the registry from the store, one transaction per read."""
+    """Reads collections for the registry from the store, one transaction (one snapshot) per
+    read."""
 
-    def __init__(self, sessions: sessionmaker[Session]) -> None:
-        self._sessions = sessions
+    def __init__(self, transactions: Transactions) -> None:
+        self._transactions = transactions
 
     def load(self, name: str) -> LoadedCollection:
-        with unit_of_work(self._sessions) as session:
+        with self._transactions.read() as session:
             row = repository.collection_by_name(session, name)
             if row is None:
                 raise CollectionNotFound(f"Collection {name!r} does not exist.")
@@ -299,7 +301,7 @@ class StoreIndexSource:
                 ),
                 metric=cast(Metric, retrieval.get("metric", "cosine")),
                 analyzer=analyzer,
-                records=[_stored_record(analyzer, schema, d, c, v) for d, c, v in rows],
+                records=_stored_records(analyzer, schema, rows),
             )
 
     def update(
@@ -311,7 +313,7 @@ class StoreIndexSource:
         analyzer: Analyzer,
         schema: Schema,
     ) -> CollectionUpdate | None:
-        with unit_of_work(self._sessions) as session:
+        with self._transactions.read() as session:
             state = repository.collection_state(session, collection_id)
             if state is None:
                 return None
@@ -326,15 +328,10 @@ class StoreIndexSource:
             if any(change.operation == "reset" for change in changes):
                 return replace(unchanged, reset=True)
             document_ids = sorted({c.document_id for c in changes if c.document_id})
-            found = repository.documents_by_external_id(session, collection_id, document_ids)
-            rows = repository.index_rows(
-                session, collection_id, generation, [d.id for d in found.values()]
-            )
+            rows = repository.index_rows(session, collection_id, generation, document_ids)
             grouped: dict[str, list[ChunkRecord]] = {doc: [] for doc in document_ids}
-            for document, chunk, vector in rows:
-                grouped[document.external_id].append(
-                    _stored_record(analyzer, schema, document, chunk, vector)
-                )
+            for record in _stored_records(analyzer, schema, rows):
+                grouped[record.document_id].append(record)
         return replace(
             unchanged,
             revision=max([revision, *(c.revision for c in changes)]),
@@ -345,24 +342,38 @@ class StoreIndexSource:
 # records ------------------------------------------------------------------------------------
 
 
-def _stored_record(
-    analyzer: Analyzer, schema: Schema, document: DocumentRow, chunk: ChunkRow, vector: bytes
-) -> ChunkRecord:
-    return chunk_record(
-        analyzer,
-        document_id=document.external_id,
-        title=document.title,
-        attributes=_attributes_from_json(schema, document.attributes),
-        access=tuple(document.access),
-        chunk=chunk,
-        vector=np.frombuffer(vector, dtype=np.float32),
-    )
+def _stored_records(
+    analyzer: Analyzer, schema: Schema, rows: Sequence[tuple[DocumentRow, ChunkRow, bytes]]
+) -> list[ChunkRecord]:
+    """Index rows from stored chunks, which ``index_rows`` gives by document, in ordinal order."""
+    records: list[ChunkRecord] = []
+    for _, group in itertools.groupby(rows, key=lambda r: r[0].id):
+        chunks = list(group)
+        document = chunks[0][0]
+        attributes = _attributes_from_json(schema, document.attributes)
+        spans = [(chunk.char_start, chunk.char_end) for _, chunk, _ in chunks]
+        for (_, chunk, vector), gap in zip(chunks, gaps_between(document.text, spans), strict=True):
+            records.append(
+                chunk_record(
+                    analyzer,
+                    document_id=document.external_id,
+                    title=document.title,
+                    attributes=attributes,
+                    access=tuple(document.access),
+                    source_url=document.source_url,
+                    chunk=chunk,
+                    gap_after=gap,
+                    vector=np.frombuffer(vector, dtype=np.float32),
+                )
+            )
+    return records
 
 
 def _records_from_material(
     entry: _Entry, material: MaterialisedDocument, vectors: Mapping[str, np.ndarray]
 ) -> list[ChunkRecord]:
     doc = material.prepared
+    gaps = gaps_between(material.text, [(c.char_start, c.char_end) for c in material.chunks])
     return [
         chunk_record(
             entry.analyzer,
@@ -370,10 +381,12 @@ def _records_from_material(
             title=doc.title,
             attributes=dict(doc.attributes),
             access=doc.access,
+            source_url=doc.source_url,
             chunk=c,
+            gap_after=gap,
             vector=np.asarray(vectors[c.embedded_text_hash], dtype=np.float32),
         )
-        for c in material.chunks
+        for c, gap in zip(material.chunks, gaps, strict=True)
     ]
 
 

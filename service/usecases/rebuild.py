@@ -14,14 +14,20 @@ from __future__ import annotations
 import logging
 import threading
 from collections.abc import Callable
-
-from sqlalchemy.orm import Session, sessionmaker
+from functools import partial
 
 from service.embedding.base import Embedder
 from service.store import repository
-from service.store.db import unit_of_work
-from service.store.tables import DocumentRow
-from service.usecases.drafts import chunk_rows, embed_drafts, materialise, prepared_from_row
+from service.store.transactions import Transactions
+from service.usecases.drafts import (
+    MaterialisedDocument,
+    Vectors,
+    chunk_rows,
+    embed_drafts,
+    materialise,
+    prepared_from_row,
+)
+from service.usecases.writes import WriteRetries
 
 log = logging.getLogger("excerpta.rebuild")
 BATCH = 16
@@ -94,8 +100,8 @@ class RebuildWorker:
                     self._wanted.discard(name)
 
 
-def pending_rebuilds(sessions: sessionmaker[Session]) -> list[str]:
-    with unit_of_work(sessions) as session:
+def pending_rebuilds(transactions: Transactions) -> list[str]:
+    with transactions.read() as session:
         return [
             row.name
             for row in repository.all_collections(session)
@@ -103,18 +109,53 @@ def pending_rebuilds(sessions: sessionmaker[Session]) -> list[str]:
         ]
 
 
-def rebuild_batch(sessions: sessionmaker[Session], embedder: Embedder, name: str) -> bool:
-    """Re-chunk one batch of documents; True when the collection has switched over."""
-    with unit_of_work(sessions) as session:
+def rebuild_batch(
+    transactions: Transactions, retries: WriteRetries, embedder: Embedder, name: str
+) -> bool:
+    """Re-chunk one batch of documents; True when the collection has switched over.
+
+    The batch is read and re-chunked outside any lock; its chunks are written under the
+    collection's write lock, each only if its document is still the version that was read (a
+    document replaced meanwhile got its new chunks of both generations from that write).
+    """
+    with transactions.read() as session:
         row = repository.collection_by_name(session, name)
         if row is None or not row.settings.get("pending_chunking"):
             return True
         pending = dict(row.settings["pending_chunking"])
-        target = row.chunk_generation + 1
-        documents: list[DocumentRow] = repository.documents_without_generation(
-            session, row.id, target, BATCH
+        generation = row.chunk_generation
+        documents = [
+            prepared_from_row(d)
+            for d in repository.documents_without_generation(session, row.id, generation + 1, BATCH)
+        ]
+        materials = [materialise(embedder, d, pending) for d in documents]
+        vectors = embed_drafts(embedder, session, [c for m in materials for c in m.chunks])
+    return retries.run(
+        partial(
+            _write_batch, transactions, embedder.name, name, pending, generation, materials, vectors
         )
-        if not documents:
+    )
+
+
+def _write_batch(
+    transactions: Transactions,
+    embedder: str,
+    name: str,
+    pending: dict[str, int],
+    generation: int,
+    materials: list[MaterialisedDocument],
+    vectors: Vectors,
+) -> bool:
+    target = generation + 1
+    with transactions.write() as session:
+        row = repository.lock_collection(session, name)
+        if row is None:
+            return True
+        if row.settings.get("pending_chunking") != pending or row.chunk_generation != generation:
+            return False  # the chunking changed again; the next step reads afresh
+        if not materials:
+            if repository.documents_without_generation(session, row.id, target, 1):
+                return False  # a document was added meanwhile
             settings = dict(row.settings)
             settings.pop("pending_chunking", None)
             row.settings = settings
@@ -125,10 +166,17 @@ def rebuild_batch(sessions: sessionmaker[Session], embedder: Embedder, name: str
             repository.drop_generations_except(session, row.id, target)
             repository.bump_revision(session, row, [(None, "reset")])
             return True
-        materials = [materialise(embedder, prepared_from_row(d), pending) for d in documents]
-        embed_drafts(embedder, session, [c for m in materials for c in m.chunks])
-        for document, material in zip(documents, materials, strict=True):
+        vectors.stored(session, embedder)
+        current = repository.documents_by_external_id(
+            session, row.id, [m.prepared.external_id for m in materials]
+        )
+        written = 0
+        for material in materials:
+            document = current.get(material.prepared.external_id)
+            if document is None or document.content_hash != material.prepared.content_hash:
+                continue
             repository.replace_chunks(session, document.id, target, chunk_rows(material))
-        row.rebuild_done = (row.rebuild_done or 0) + len(documents)
+            written += 1
+        row.rebuild_done = (row.rebuild_done or 0) + written
         row.rebuild_total = max(row.rebuild_total or 0, row.rebuild_done)
     return False

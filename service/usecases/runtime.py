@@ -17,12 +17,15 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.config import Settings
 from service.embedding.base import Embedder
-from service.store.db import make_engine, migrate, session_factory, unit_of_work
+from service.store.db import make_engine, migrate, session_factory
+from service.store.identity import StoreGuard
 from service.store.repository import KeyReader
+from service.store.transactions import Transactions
 from service.usecases.generators import GeneratorRegistry
 from service.usecases.indexes import IndexRegistry, StoreIndexSource
 from service.usecases.rebuild import RebuildWorker, pending_rebuilds, rebuild_batch
 from service.usecases.trace_writer import TraceWriter, prune_traces, write_traces
+from service.usecases.writes import WriteRetries
 
 
 class Runtime:
@@ -37,26 +40,30 @@ class Runtime:
         self.settings = settings
         self.embedder = embedder
         self.engine = engine or make_engine(settings.resolved_database_url())
+        self.store = StoreGuard(self.engine)
         if run_migrations:
             migrate(self.engine)
+            self.store.remember()
         self.sessions: sessionmaker[Session] = session_factory(self.engine)
-        self.key_reader = KeyReader(self.engine)
+        self.transactions = Transactions(self.sessions, self.store)
+        self.retries = WriteRetries(settings.write_attempts, settings.write_retry_pause_seconds)
+        self.key_reader = KeyReader(self.engine, self.store)
         self.indexes = IndexRegistry(
-            StoreIndexSource(self.sessions),
+            StoreIndexSource(self.transactions),
             dimensions=embedder.dimensions,
             poll_seconds=settings.index_poll_ms / 1000.0,
             compact_after=settings.compact_after_deleted_rows,
         )
         self.rebuilds = RebuildWorker(
-            step=partial(rebuild_batch, self.sessions, embedder),
-            pending=partial(pending_rebuilds, self.sessions),
+            step=partial(rebuild_batch, self.transactions, self.retries, embedder),
+            pending=partial(pending_rebuilds, self.transactions),
         )
         self.generators = GeneratorRegistry(settings, embedder)
         self.traces = TraceWriter(
-            write=partial(write_traces, self.engine),
+            write=partial(write_traces, self.engine, self.store),
             prune=partial(
                 prune_traces,
-                self.sessions,
+                self.transactions,
                 retention_days=settings.trace_retention_days,
                 retention_count=settings.trace_retention_count,
             ),
@@ -64,7 +71,14 @@ class Runtime:
 
     @contextmanager
     def transaction(self) -> Iterator[Session]:
-        with unit_of_work(self.sessions) as session:
+        """A transaction that reads, from one snapshot of the store."""
+        with self.transactions.read() as session:
+            yield session
+
+    @contextmanager
+    def write_transaction(self) -> Iterator[Session]:
+        """A transaction that writes: the write lock first, then the store's identity checked."""
+        with self.transactions.write() as session:
             yield session
 
     def close(self) -> None:

@@ -6,6 +6,8 @@ The test-only hashing embedder keeps these fast; what is under test is the store
 from __future__ import annotations
 
 import datetime as dt
+import itertools
+from collections.abc import Callable
 from typing import Any
 
 import pytest
@@ -172,6 +174,24 @@ def test_a_search_builds_its_index_from_the_store_and_finds_the_document(
     options = SearchOptions(query="chain wax", mode="lexical", top_k=1)
     result = answering.search(runtime, LOCAL_ADMIN, NAME, options, keep_trace=False)
     assert [hit.document_id for hit in result.hits] == ["cote-2023"]
+
+
+def test_a_snapshot_rebuilds_each_documents_stored_text_and_source_from_its_own_chunks(
+    runtime: Runtime, make_runtime: Callable[..., Runtime]
+) -> None:
+    """Both ways an index is made: from a write in this process, and from the store alone."""
+    create_collection(runtime)
+    sourced = [{**d, "source_url": f"https://docs.example.invalid/{d['id']}"} for d in DOCUMENTS]
+    documents.upsert_documents(runtime, LOCAL_ADMIN, NAME, sourced)
+    fresh = make_runtime(engine=runtime.engine)
+    for snapshot in (runtime.indexes.view(NAME).snapshot, fresh.indexes.view(NAME).snapshot):
+        for doc in sourced:
+            stored = documents.get_document(runtime, LOCAL_ADMIN, NAME, doc["id"])
+            assert snapshot.source_url(doc["id"]) == stored["source_url"] == doc["source_url"]
+            chunks = stored["chunks"]
+            for first, last in itertools.combinations_with_replacement(range(len(chunks)), 2):
+                start, end = chunks[first]["char_start"], chunks[last]["char_end"]
+                assert snapshot.document_span(doc["id"], start, end) == stored["text"][start:end]
 
 
 def test_a_key_authenticates_with_its_groups_and_collections_until_revoked(

@@ -83,7 +83,9 @@ def test_stopping_writes_every_held_trace_in_one_batch(
 
     monkeypatch.setattr(repository, "insert_traces", counting)
     replica.traces = trace_writer.TraceWriter(  # nothing until stopped
-        partial(trace_writer.write_traces, replica.engine), lambda: None, batch_seconds=60.0
+        partial(trace_writer.write_traces, replica.engine, replica.store),
+        lambda: None,
+        batch_seconds=60.0,
     )
     ids = [search(replica) for _ in range(5)]
     assert stored_traces(replica) == 0

@@ -436,26 +436,18 @@ def cmd_backup(args: argparse.Namespace) -> int:
     """A consistent copy of the store, taken while a server may be writing to it."""
     from service.store.backup import write_backup
 
-    copied = _copy_store(args, lambda engine: write_backup(engine, Path(args.path)))
-    if copied is None:
-        return 1
-    print(f"backed up {copied} to {args.path}")
-    return 0
+    return _copy_store(args, write_backup, "backed up {copied} to {path}")
 
 
 def cmd_restore(args: argparse.Namespace) -> int:
     """A backup loaded into the store, which must be empty (just migrated, or new)."""
     from service.store.backup import restore_backup
 
-    copied = _copy_store(args, lambda engine: restore_backup(engine, Path(args.path)))
-    if copied is None:
-        return 1
-    print(f"restored {copied} from {args.path}")
-    return 0
+    return _copy_store(args, restore_backup, "restored {copied} from {path}")
 
 
-def _copy_store(args: argparse.Namespace, copy: Callable[[Any], Any]) -> str | None:
-    """Run ``copy`` on the store: what it copied, in words, or None once the failure is told."""
+def _copy_store(args: argparse.Namespace, copy: Callable[[Any, Path], Any], done: str) -> int:
+    """Run ``copy`` between the store and PATH, then say what it copied, or why it failed."""
     import sqlite3
 
     from sqlalchemy.exc import SQLAlchemyError
@@ -465,20 +457,21 @@ def _copy_store(args: argparse.Namespace, copy: Callable[[Any], Any]) -> str | N
 
     engine = _migrated_engine(args)
     try:
-        copied = copy(engine)
+        copied = copy(engine, Path(args.path))
     except BackupError as exc:
         print(f"error: {exc}", file=sys.stderr)
-        return None
+        return 1
     except (SQLAlchemyError, OSError, sqlite3.Error) as exc:
         print(
             f"error: The copy between the store and {args.path} failed: {cause(exc)}.",
             file=sys.stderr,
         )
-        return None
+        return 1
     finally:
         engine.dispose()
     tables = ", ".join(f"{count} {name}" for name, count in copied.rows.items())
-    return f"{copied.total} rows ({tables})"
+    print(done.format(copied=f"{copied.total} rows ({tables})", path=args.path))
+    return 0
 
 
 # parser ------------------------------------------------------------------------------------------

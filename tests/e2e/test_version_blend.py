@@ -96,6 +96,16 @@ def hammer(write_url: str, read_urls: list[str], key: str) -> tuple[int, list[st
                     return
                 writes += 1
 
+    def observed(what: str, response: httpx.Response) -> bool:
+        """Note a failed call or a blended response; False when the reader should stop."""
+        if response.status_code != 200:
+            failures.append(f"{what}: {response.status_code} {response.text}")
+            return False
+        seen = marks(response.json())
+        if len(seen) != 1:
+            blends.append(f"{what} saw versions {sorted(seen)}")
+        return True
+
     def read(reader: int) -> None:
         clients = [httpx.Client(base_url=u, headers=headers, timeout=60) for u in read_urls]
         try:
@@ -103,26 +113,16 @@ def hammer(write_url: str, read_urls: list[str], key: str) -> tuple[int, list[st
                 route = "context" if call % 2 else "answer"
                 client = clients[call % len(clients)]
                 response = client.post(f"/v1/collections/{COLLECTION}/{route}", json=QUERY)
-                if response.status_code != 200:
-                    failures.append(f"{route}: {response.status_code} {response.text}")
+                if not observed(route, response):
                     return
-                seen = marks(response.json())
-                if len(seen) != 1:
-                    blends.append(f"{route} saw versions {sorted(seen)}")
         finally:
             for client in clients:
                 client.close()
 
     def read_back() -> None:
         with httpx.Client(base_url=read_urls[-1], headers=headers, timeout=60) as client:
-            while not done.is_set():
-                response = client.get(f"{documents}/manual")
-                if response.status_code != 200:
-                    failures.append(f"read back: {response.status_code} {response.text}")
-                    return
-                seen = marks(response.json())
-                if len(seen) != 1:
-                    blends.append(f"the stored document showed versions {sorted(seen)}")
+            while not done.is_set() and observed("read back", client.get(f"{documents}/manual")):
+                pass
 
     writer_thread = threading.Thread(target=write)
     readers = [threading.Thread(target=read, args=(r,)) for r in range(READERS)]

@@ -8,31 +8,21 @@ traffic; every record of every logger is captured at DEBUG and searched for the 
 from __future__ import annotations
 
 import logging
-import socket
-import threading
-import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import httpx
 import pytest
-import uvicorn
 
-from service.api.app import create_app
 from service.logging_setup import configure_logging
 from service.usecases.runtime import Runtime
 from tests.api_helpers import BIKE_SCHEMA, make_key
+from tests.served import free_port, server_in_thread
 
 CHAT_SECRET = "sk-chat-secret-7f3a9c2e51d84b60a1"
 UNKNOWN_KEY = "xk_0123456789abcdef_" + "Q" * 43
 GARBAGE_KEY = "garbage-key-5d1e8b7c"
 CAPTURED_LOGGERS = ("", "uvicorn", "uvicorn.error", "excerpta.access", "httpx", "httpcore")
-
-
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
 
 
 @dataclass
@@ -58,27 +48,13 @@ def served(
         chat_max_retries=1,
         chat_timeout_seconds=2.0,
     )
-    port = free_port()
-    config = uvicorn.Config(
-        create_app(runtime), host="127.0.0.1", port=port, log_config=None, access_log=False
-    )
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        assert time.monotonic() < deadline, "the server did not start"
-        time.sleep(0.02)
-    try:
+    with server_in_thread(runtime) as base_url:
         yield Served(
-            f"http://127.0.0.1:{port}",
+            base_url,
             runtime,
             make_key(runtime, "admin", name="admin"),
             make_key(runtime, "reader", name="reader"),
         )
-    finally:
-        server.should_exit = True
-        thread.join(timeout=20)
 
 
 def everything_logged(caplog: pytest.LogCaptureFixture) -> str:

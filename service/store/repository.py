@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import logging
 from collections.abc import Iterable, Sequence
 from typing import Any, NamedTuple
 
@@ -24,6 +25,7 @@ from sqlalchemy import (
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
+from service.errors import StorageUnavailable
 from service.store.driver_query import DriverQuery
 from service.store.identity import StoreGuard
 from service.store.tables import (
@@ -38,6 +40,8 @@ from service.store.tables import (
     StoreIdentityRow,
     TraceRow,
 )
+
+log = logging.getLogger("excerpta.store")
 
 
 def utcnow() -> dt.datetime:
@@ -465,10 +469,22 @@ class KeyReader:
         return None if row is None else StoredKey(*row)
 
     def mark_used(self, key_id: int, when: dt.datetime) -> None:
-        with self._engine.begin() as connection:
-            connection.execute(
-                update(ApiKeyRow).where(ApiKeyRow.id == key_id).values(last_used_at=when)
-            )
+        """Note a key's use. It is bookkeeping: a store that refuses writes (full, read-only,
+        gone) does not fail the request for it; the failure is logged and kept for /readyz."""
+        try:
+            with self._engine.begin() as connection:
+                self._store.check(connection)
+                connection.execute(
+                    update(ApiKeyRow).where(ApiKeyRow.id == key_id).values(last_used_at=when)
+                )
+        except StorageUnavailable as exc:
+            self._store.failed(exc.message)
+            log.warning("a key's last use was not recorded: %s", exc.message)
+        except Exception as exc:
+            error = self._store.explain(exc)
+            if error is None:
+                raise
+            log.warning("a key's last use was not recorded: %s", error.message)
 
 
 def insert_traces(connection: Connection, rows: list[dict[str, Any]]) -> None:

@@ -111,6 +111,7 @@ def test_a_store_file_removed_under_a_running_server_refuses_writes_until_it_is_
     store = runtime.store.path
     assert store is not None
     aside = store.with_name("moved-away.db")
+    unused_reader = make_key(runtime, "reader", name="reader")
     with served(runtime) as client:
         assert client.post(DOCUMENTS, json=note("before")).status_code == 200
         os.rename(store, aside)
@@ -125,8 +126,14 @@ def test_a_store_file_removed_under_a_running_server_refuses_writes_until_it_is_
         readiness = client.get("/readyz")
         assert (readiness.status_code, readiness.json()) == (503, not_ready("its file was removed"))
         assert not store.exists(), "a fresh, empty store file was made in its place"
-        search = client.post(f"/v1/collections/{COLLECTION}/search", json={"query": "workshop"})
+        # Queries keep answering from memory, even for a key whose first use cannot be noted.
+        search = client.post(
+            f"/v1/collections/{COLLECTION}/search",
+            json={"query": "workshop"},
+            headers={"Authorization": f"Bearer {unused_reader}"},
+        )
         assert search.status_code == 200
+        assert [hit["document_id"] for hit in search.json()["hits"]] == ["before"]
 
         os.rename(aside, store)
         assert client.get("/readyz").json() == {"status": "ready"}

@@ -201,3 +201,26 @@ def test_restoring_a_file_that_is_not_a_backup_says_so_in_one_sentence(tmp_path:
     code, out, err = cli("restore", str(junk), "--data-dir", str(tmp_path / "data"))
     assert (code, out) == (1, "")
     assert err == f"error: {junk} is not an excerpta backup.\n"
+
+
+@pytest.mark.postgres
+def test_a_backup_of_either_backend_restores_into_the_other(
+    postgres_url: str, make_runtime: Callable[..., Runtime], tmp_path: Path
+) -> None:
+    """SQLite's own copy into PostgreSQL, then PostgreSQL's logical export back into SQLite."""
+    data = str(tmp_path)
+    sqlite_url = f"sqlite:///{tmp_path / 'source.db'}"
+    source = make_runtime(engine=make_engine(sqlite_url))
+    spec = collections.CollectionSpec(**{k: v for k, v in BIKE_SCHEMA.items()})
+    collections.put_collection(source, LOCAL_ADMIN, "bikes", spec)
+    documents.upsert_documents(source, LOCAL_ADMIN, "bikes", MANUALS)
+    expected = table_rows(source.engine)
+    with postgres_schema(postgres_url) as schema:
+        postgres = postgres_url_for_schema(postgres_url, schema)
+        back = f"sqlite:///{tmp_path / 'back.db'}"
+        for origin, target, name in ((sqlite_url, postgres, "one"), (postgres, back, "two")):
+            backup = str(tmp_path / f"{name}.backup")
+            assert cli("backup", backup, "--database-url", origin, "--data-dir", data)[0] == 0
+            code, _, err = cli("restore", backup, "--database-url", target, "--data-dir", data)
+            assert (code, err) == (0, "")
+            assert table_rows(make_runtime(engine=make_engine(target)).engine) == expected

@@ -23,8 +23,29 @@ class ErrorOut(BaseModel):
     error: ErrorBody
 
 
+def _absent(value: object) -> bool:
+    return value is None
+
+
+class PhrasesIn(Strict):
+    true: list[str] = []
+    false: list[str] = []
+
+
 class AttributeSpec(Strict):
+    """An attribute's type, and the optional hints that filter inference reads."""
+
     type: str
+    description: str | None = Field(None, exclude_if=_absent)
+    aliases: dict[str, list[str]] | None = Field(
+        None, exclude_if=_absent, description="Other names for values: {value: [alias, ...]}"
+    )
+    phrases: PhrasesIn | None = Field(
+        None, exclude_if=_absent, description="Phrases meaning true or false (booleans)"
+    )
+    infer: bool | None = Field(
+        None, exclude_if=_absent, description="false keeps the attribute out of inference"
+    )
 
 
 class ChunkingIn(Strict):

@@ -267,9 +267,10 @@ class _Reader:
 
     def cues(self, facts: AttributeFacts, first: int, last: int) -> tuple[int, int]:
         """How many of the attribute's name words and description words are near a mention."""
-        near = self.words[max(0, first - CUE_WINDOW) : first] + self.words[
-            last + 1 : last + 1 + CUE_WINDOW
-        ]
+        near = (
+            self.words[max(0, first - CUE_WINDOW) : first]
+            + self.words[last + 1 : last + 1 + CUE_WINDOW]
+        )
         keys = {word.key for word in near}
         return len(keys & facts.name_cues), len(keys & facts.description_cues)
 
@@ -319,8 +320,7 @@ class _Reader:
             return clauses[winners[0]]
         evidence = self.text(first, last)
         reason = (
-            f"{evidence!r} could be {' or '.join(winners)}, and no word of the question says"
-            " which"
+            f"{evidence!r} could be {' or '.join(winners)}, and no word of the question says which"
         )
         self.ambiguous(winners, evidence, reason, clauses[winners[0]].source)
         return None

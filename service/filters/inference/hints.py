@@ -109,3 +109,15 @@ def _phrase_lists(
             raise HintError(f"{name} may hold at most {MAX_PHRASES} phrases in all", name)
         lists[key] = tuple(dict.fromkeys(p.strip() for p in phrases))
     return lists
+
+
+def stored_hints(
+    schema: Mapping[str, AttributeType], settings: Mapping[str, Any]
+) -> InferenceHints:
+    """The hints a collection's settings keep (checked when they were written), per attribute."""
+    stored = settings.get("inference_hints", {})
+    return {
+        name: parse_attribute_hints(schema[name], raw)
+        for name, raw in stored.items()
+        if name in schema
+    }

@@ -290,39 +290,40 @@ class _Reader:
         last: int,
         make: Callable[[str], InferredClause],
     ) -> InferredClause | None:
-        """The clause on the attribute with the best score.
+        """The clause on the best-scoring attribute under which the question selects rows.
 
-        An attribute the question names is taken at its word; any other is considered only
-        when it has values in the rows the phrase clauses select, since otherwise its clause
-        could only be dropped. Among attributes tied on the score, one whose clause selects
-        some of those rows wins; a tie left after that is dropped with the reason, once per
-        attribute it could have been.
+        Attributes are tried from the best score down. An attribute the question names is
+        taken at its word; any other counts only when its clause selects some of the rows the
+        phrase clauses select, since otherwise it could only be dropped. A tie at the first
+        score that counts is dropped with the reason, once per attribute it could have been.
         """
-        context = self.context_rows()
-        columns = self.scope.columns
-        if columns is not None:
-            considered = {
-                name: score
-                for name, score in scores.items()
-                if self.cues(self.lexicon.attributes[name], first, last)[0]
-                or np.any(columns.columns[name].present & context)
-            }
-            scores = considered or scores
         if not scores:
             return None
-        best = max(scores.values())
-        winners = sorted(name for name, score in scores.items() if score == best)
-        clauses = {name: make(name) for name in winners}
-        if len(winners) > 1:
-            selecting = [n for n in winners if np.any(self.masks.of(clauses[n].node) & context)]
-            winners = selecting or winners
-        if len(winners) == 1:
-            return clauses[winners[0]]
+        context = self.context_rows()
+        clauses: dict[str, InferredClause] = {}
+        viable: list[str] = []
+        for score in sorted(set(scores.values()), reverse=True):
+            level = sorted(name for name, value in scores.items() if value == score)
+            for name in level:
+                clauses[name] = make(name)
+            viable = [
+                name
+                for name in level
+                if self.cues(self.lexicon.attributes[name], first, last)[0]
+                or np.any(self.masks.of(clauses[name].node) & context)
+            ]
+            if viable:
+                break
+        if not viable:
+            best = max(scores.values())
+            viable = sorted(name for name, value in scores.items() if value == best)
+        if len(viable) == 1:
+            return clauses[viable[0]]
         evidence = self.text(first, last)
         reason = (
-            f"{evidence!r} could be {' or '.join(winners)}, and no word of the question says which"
+            f"{evidence!r} could be {' or '.join(viable)}, and no word of the question says which"
         )
-        self.ambiguous(winners, evidence, reason, clauses[winners[0]].source)
+        self.ambiguous(viable, evidence, reason, clauses[viable[0]].source)
         return None
 
     def ambiguous(self, attributes: Iterable[str], evidence: str, reason: str, what: str) -> None:
@@ -508,7 +509,7 @@ class _Reader:
 
     def read_numbers(self) -> None:
         equal: dict[str, list[tuple[NumberMention, InferredClause]]] = {}
-        for mention in find_numbers(self.words, self.taken):
+        for mention in find_numbers(self.question, self.words, self.taken):
             if negated(self.words, mention.first):
                 continue
             scores = self._number_scores(mention)

@@ -36,6 +36,7 @@ _UNTIL = frozenset({"until", "till", "through", "thru"})
 # "from 2019 to 2021" say more, and the words after the period decide.
 _WITHIN = frozenset({"in", "during", "on", "of", "for", "from"})
 _RANGE_JOINS = frozenset({"and", "to", "until", "till", "through"})
+_TIME_WORDS = _SINCE | _AFTER | _BEFORE | _UNTIL | _WITHIN | {"between"}
 
 # Comparison phrases before a number (folded words) and the operator each gives.
 _BEFORE_NUMBER: tuple[tuple[tuple[str, ...], str], ...] = tuple(
@@ -76,7 +77,24 @@ _AFTER_NUMBER: tuple[tuple[tuple[str, ...], str], ...] = tuple(
 )  # fmt: skip
 _NEGATIONS = frozenset({"not", "except", "excluding", "without", "besides", "but"})
 _NEGATION_PAIRS = frozenset({("other", "than"), ("apart", "from"), ("aside", "from")})
-_SKIPPABLE = frozenset({"the", "a", "an", "my", "our", "your", "their", "its", "any"})
+_SKIPPABLE = frozenset(
+    {
+        "the",
+        "a",
+        "an",
+        "my",
+        "our",
+        "your",
+        "their",
+        "its",
+        "any",
+        "for",
+        "of",
+        "on",
+        "about",
+        "from",
+    }
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -332,7 +350,7 @@ def _time_at(
         )
     # since / after / before / until / in + a period, or between/from + a period and another
     lead = word
-    j = i + 1 if lead in (_SINCE | _AFTER | _BEFORE | _UNTIL | _WITHIN | {"between"}) else i
+    j = i + 1 if lead in _TIME_WORDS else i
     if lead == "prior" and j < n and words[j].folded == "to":
         j += 1
     if j >= n:
@@ -359,6 +377,10 @@ def _time_at(
         and lead in ("between", "from", *_SINCE, *_WITHIN)
     ):
         second = _period_at(words, last + 2, now, bare_month=False)
+        if second is not None and how.startswith("month, the latest"):
+            # "between January and June 2023": the first month takes the second one's year
+            year = second[0].year - (start.month > second[0].month)
+            start, how = _utc(year, start.month), "month"
         if second is not None and second[0] >= start:
             return TimeMention(i, second[2], start, second[1], how=f"{how} to {second[3]}")
     following = _phrase_after(words, last + 1)
@@ -399,17 +421,19 @@ def _phrase_after(words: Sequence[Word], start: int) -> tuple[str, int] | None:
     return None
 
 
-def _unit_after(words: Sequence[Word], last: int) -> tuple[str, int] | None:
+def _unit_after(text: str, words: Sequence[Word], last: int) -> tuple[str, int] | None:
     """The unit written right after a number (a word or a symbol such as % or the euro sign)."""
-    if last + 1 < len(words):
-        following = words[last + 1]
-        symbol = following.gap.strip()
-        if symbol in UNIT_WORDS:
-            return UNIT_WORDS[symbol], last
-        if following.folded in UNIT_WORDS:
-            return UNIT_WORDS[following.folded], last + 1
-        if last + 2 < len(words) and f"{following.folded}-{words[last + 2].folded}" in UNIT_WORDS:
-            return UNIT_WORDS[f"{following.folded}-{words[last + 2].folded}"], last + 2
+    following = words[last + 1] if last + 1 < len(words) else None
+    gap = following.gap if following is not None else text[words[last].end :]
+    symbol = gap.strip()[:1]
+    if symbol and symbol in UNIT_WORDS:
+        return UNIT_WORDS[symbol], last
+    if following is None:
+        return None
+    if following.folded in UNIT_WORDS:
+        return UNIT_WORDS[following.folded], last + 1
+    if last + 2 < len(words) and f"{following.folded}-{words[last + 2].folded}" in UNIT_WORDS:
+        return UNIT_WORDS[f"{following.folded}-{words[last + 2].folded}"], last + 2
     return None
 
 
@@ -418,7 +442,7 @@ def _unit_before(words: Sequence[Word], first: int) -> str | None:
     return UNIT_WORDS.get(symbol) if symbol else None
 
 
-def find_numbers(words: Sequence[Word], taken: Sequence[bool]) -> list[NumberMention]:
+def find_numbers(text: str, words: Sequence[Word], taken: Sequence[bool]) -> list[NumberMention]:
     """Every number among the words not ``taken``, with its comparison and unit."""
     found: list[NumberMention] = []
     i = 0
@@ -431,35 +455,38 @@ def find_numbers(words: Sequence[Word], taken: Sequence[bool]) -> list[NumberMen
         value, number_last = parsed
         unit = _unit_before(words, i)
         last = number_last
-        unit_after = _unit_after(words, number_last)
+        unit_after = _unit_after(text, words, number_last)
         if unit_after is not None:
-            unit, last = unit_after[0], unit_after[1]
+            unit, last = unit_after
         op, first = "=", i
         before = _phrase_before(words, i - 1) if i > 0 else None
         if before is not None and _free(taken, before[1], i - 1):
             op, first = before
+        elif i > 0 and words[i - 1].folded == "between" and not taken[i - 1]:
+            first = i - 1
+        lead = words[first].folded if first < i else ""
         high: int | float | None = None
         # between 2 and 5, from 2022 to 2024, 2022-2024
         join = last + 1
-        if join < n and (
-            (words[join].folded in _RANGE_JOINS and first < i and op in (">=", "="))
-            or (join == number_last + 1 and words[join].gap == "-" and op == "=")
-        ):
+        ranged = join < n and (
+            (words[join].folded in _RANGE_JOINS and lead in ("between", "from"))
+            or (join == number_last + 1 and words[join].gap == "-" and not lead)
+        )
+        if ranged:
             start_second = join + 1 if words[join].folded in _RANGE_JOINS else join
             second = number_at(words, start_second) if start_second < n else None
-            lead = words[first].folded if first < i else ""
-            if second is not None and lead in ("between", "from", "") and second[0] >= value:
-                high, number_last = second[0], second[1]
+            if second is not None and second[0] >= value:
+                high, number_last = second
                 last = number_last
-                second_unit = _unit_after(words, number_last)
+                second_unit = _unit_after(text, words, number_last)
                 if second_unit is not None:
-                    unit, last = second_unit[0], second_unit[1]
+                    unit, last = second_unit
                 op = "between"
-        if i > 0 and words[i - 1].folded == "between" and high is None:
-            op, first = "=", i
-        elif op != "between":
+        if op == "=" and lead == "between":
+            first = i
+        if op == "=":
             after = _phrase_after(words, last + 1)
-            if after is not None and op == "=" and _free(taken, last + 1, after[1]):
+            if after is not None and _free(taken, last + 1, after[1]):
                 op, last = after
         year_shaped = (
             isinstance(value, int)
@@ -467,9 +494,7 @@ def find_numbers(words: Sequence[Word], taken: Sequence[bool]) -> list[NumberMen
             and _FIRST_YEAR <= value <= _LAST_YEAR
             and len(words[i].folded) == 4
         )
-        time_word = i > 0 and words[i - 1].folded in (
-            _SINCE | _AFTER | _BEFORE | _UNTIL | _WITHIN | {"between"}
-        )
+        time_word = i > 0 and words[i - 1].folded in _TIME_WORDS
         found.append(
             NumberMention(
                 first=first,

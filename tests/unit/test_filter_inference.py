@@ -30,6 +30,7 @@ SCHEMA: Schema = {
     "colour": AttributeType.KEYWORD,
     "region": AttributeType.KEYWORD,
     "kind": AttributeType.KEYWORD,
+    "frame_size": AttributeType.KEYWORD,
     "tags": AttributeType.KEYWORD_LIST,
     "model_year": AttributeType.INTEGER,
     "battery_wh": AttributeType.INTEGER,
@@ -41,9 +42,9 @@ SCHEMA: Schema = {
 }
 ROWS: list[dict[str, Any]] = [
     {"model": "Fenwick", "model_year": 2022, "kind": "manual", "price_eur": 1890.0,
-     "colour": "Slate", "published": "2021-09-01T09:00:00Z", "tags": ["brakes", "tyres"]},
+     "colour": "Slate", "frame_size": "M", "published": "2021-09-01T09:00:00Z", "tags": ["brakes", "tyres"]},
     {"model": "Fenwick", "model_year": 2024, "kind": "manual", "price_eur": 2190.0,
-     "colour": "Slate", "published": "2023-09-04T09:00:00Z", "tags": ["brakes"]},
+     "colour": "Slate", "frame_size": "XL", "published": "2023-09-04T09:00:00Z", "tags": ["brakes"]},
     {"model": "Brisa", "model_year": 2023, "kind": "manual", "price_eur": 3490.0,
      "battery_wh": 625, "colour": "Fern", "published": "2022-10-03T09:00:00Z"},
     {"model": "Brisa", "model_year": 2024, "kind": "manual", "price_eur": 3690.0,
@@ -154,6 +155,13 @@ def test_a_short_upper_case_value_is_matched_only_as_written() -> None:
         "kind = 'warranty' AND region = 'US'"
     )
     assert text_of(infer("Does the warranty cover us?")) == "kind = 'warranty'"
+
+
+def test_a_value_spelled_like_a_common_word_counts_only_after_its_attribute_name() -> None:
+    assert text_of(infer("Is frame size M in stock?")) == "frame_size = 'M'"
+    assert infer("M is for Monday").node is None
+    assert text_of(infer("Is the XL a good fit?")) == "frame_size = 'XL'"
+    assert infer("Is the xl a good fit?").node is None
 
 
 def test_a_negated_value_becomes_a_not_equal_clause() -> None:

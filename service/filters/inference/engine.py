@@ -636,6 +636,11 @@ def _longest_entries(
             continue
         if entry.exact is not None and tuple(w.text for w in span) != entry.exact:
             continue
+        if entry.after_name and (
+            position == 0
+            or words[position - 1].key not in lexicon.attributes[entry.attribute].name_cues
+        ):
+            continue
         if length > longest:
             longest, found = length, []
         found.append(entry)

@@ -67,6 +67,9 @@ class Entry:
     """``value``, ``alias`` or ``phrase`` (from the hints), or ``name`` (the attribute's)."""
     exact: tuple[str, ...] | None
     """The words as written, when only that spelling counts (acronyms, function words)."""
+    after_name: bool = False
+    """A value spelled like a common word ("a", "on", "x") counts only right after a word of
+    its attribute's name ("tier a")."""
 
 
 @dataclass(frozen=True)
@@ -167,15 +170,19 @@ def _entry(text: str, attribute: str, value: str | bool, source: str) -> Entry |
     analysed = _analysed(text)
     if analysed is None:
         return None
-    keys, written = analysed
-    return Entry(keys, attribute, value, source, written)
+    keys, written, after_name = analysed
+    return Entry(keys, attribute, value, source, written, after_name)
 
 
 @lru_cache(maxsize=65_536)
-def _analysed(text: str) -> tuple[tuple[str, ...], tuple[str, ...] | None] | None:
-    """Keys of a phrase, and its words as written when only that spelling may match.
+def _analysed(text: str) -> tuple[tuple[str, ...], tuple[str, ...] | None, bool] | None:
+    """Keys of a phrase, its words as written when only that spelling may match, and whether
+    it counts only after a word of its attribute's name.
 
-    Analyses are cached across index versions, which share most of their values.
+    A short upper-case value ("AT", "US") is an acronym: it must be written in capitals. A
+    value that is a function word or at most two characters long cannot be told from an
+    ordinary word, so it also needs its attribute's name just before it. Analyses are cached
+    across index versions, which share most of their values.
     """
     words = words_of(text)
     if not words or len(words) > MAX_VALUE_WORDS:
@@ -186,11 +193,16 @@ def _analysed(text: str) -> tuple[tuple[str, ...], tuple[str, ...] | None] | Non
     elif len(words) == 1 and words[0].folded.isdigit():
         return None  # a bare number is read as a number, not as a keyword
     keys = tuple(word.key for word in words)
+    if len(words) > 1:
+        return keys, None, False
     single = words[0]
-    acronym = single.text.isupper() and len(single.text) <= 4
-    if len(words) == 1 and (single.folded in FUNCTION_WORDS or acronym or len(single.text) <= 2):
-        return keys, (single.text,)
-    return keys, None
+    common = single.folded in FUNCTION_WORDS or len(single.text) <= 2
+    acronym = single.text.isupper() and 2 <= len(single.text) <= 4 and single.text.isalpha()
+    if acronym:
+        return keys, (single.text,), False
+    if common:
+        return keys, (single.text,), True
+    return keys, None, False
 
 
 def _facts(

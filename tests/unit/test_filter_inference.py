@@ -42,9 +42,11 @@ SCHEMA: Schema = {
 }
 ROWS: list[dict[str, Any]] = [
     {"model": "Fenwick", "model_year": 2022, "kind": "manual", "price_eur": 1890.0,
-     "colour": "Slate", "frame_size": "M", "published": "2021-09-01T09:00:00Z", "tags": ["brakes", "tyres"]},
+     "colour": "Slate", "frame_size": "M", "published": "2021-09-01T09:00:00Z",
+     "tags": ["brakes", "tyres"]},
     {"model": "Fenwick", "model_year": 2024, "kind": "manual", "price_eur": 2190.0,
-     "colour": "Slate", "frame_size": "XL", "published": "2023-09-04T09:00:00Z", "tags": ["brakes"]},
+     "colour": "Slate", "frame_size": "XL", "published": "2023-09-04T09:00:00Z",
+     "tags": ["brakes"]},
     {"model": "Brisa", "model_year": 2023, "kind": "manual", "price_eur": 3490.0,
      "battery_wh": 625, "colour": "Fern", "published": "2022-10-03T09:00:00Z"},
     {"model": "Brisa", "model_year": 2024, "kind": "manual", "price_eur": 3690.0,

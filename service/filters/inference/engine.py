@@ -37,6 +37,7 @@ from service.filters.inference.mentions import (
 from service.filters.inference.words import Word, span_text, words_of
 from service.filters.render import timestamp_text, to_text
 from service.filters.syntax import (
+    And,
     ArrayLiteral,
     ArrayOp,
     ArrayPredicate,
@@ -45,18 +46,24 @@ from service.filters.syntax import (
     Comparison,
     ComparisonOp,
     DateLiteral,
+    Expression,
     In,
+    IntervalEnd,
     IntervalLiteral,
     IsNull,
+    Like,
     Node,
     Not,
     NumberLiteral,
+    OpenEnd,
+    Or,
     Property,
     StringLiteral,
     TemporalOp,
     TemporalPredicate,
     TimestampLiteral,
     conjunction,
+    properties_of,
 )
 from service.filters.time_window import resolve_time_window
 
@@ -620,6 +627,72 @@ class _Reader:
         type_ = self.lexicon.schema[attribute]
         node, op, value = _range_node(attribute, type_, start, stop, None)
         return InferredClause(attribute, op, value, evidence, "year", node)
+
+
+def proposals_from_filter(node: Node, source: str) -> list[Proposal]:
+    """A checked filter's top-level conjuncts as proposals to settle, in their order.
+
+    For filters that come from elsewhere (a model): they carry no words of the question.
+    """
+    parts = node.args if isinstance(node, And) else (node,)
+    return [
+        Proposal(_clause_of(part, source), STRENGTH_NUMBER, position)
+        for position, part in enumerate(parts)
+    ]
+
+
+def _clause_of(node: Node, source: str) -> InferredClause:
+    attribute = next(iter(_properties(node)), "")
+    op, value = _described(node)
+    return InferredClause(attribute, op, value, "", source, node)
+
+
+def _properties(node: Node) -> list[str]:
+    names: list[str] = []
+    if isinstance(node, And | Or):
+        for arg in node.args:
+            names += _properties(arg)
+    elif isinstance(node, Not):
+        names += _properties(node.arg)
+    elif isinstance(node, Comparison | TemporalPredicate | ArrayPredicate):
+        names += properties_of(node.left) + properties_of(node.right)
+    elif isinstance(node, Between | In | IsNull | Like):
+        names += properties_of(node.value)
+    return list(dict.fromkeys(names))
+
+
+def _described(node: Node) -> tuple[str, Any]:
+    """The operator and the literal value of a clause, as the response shows them."""
+    if isinstance(node, Comparison):
+        return node.op.value, _plain(node.right)
+    if isinstance(node, In):
+        return "in", [_plain(item) for item in node.items]
+    if isinstance(node, Between):
+        return "between", [_plain(node.low), _plain(node.high)]
+    if isinstance(node, TemporalPredicate | ArrayPredicate):
+        return node.op.value, _plain(node.right)
+    if isinstance(node, IsNull):
+        return "is_null", None
+    if isinstance(node, Not) and not isinstance(node.arg, And | Or):
+        op, value = _described(node.arg)
+        return f"not {op}", value
+    return "cql2", to_text(node)
+
+
+def _plain(expression: Expression | IntervalEnd) -> Any:
+    if isinstance(expression, StringLiteral | NumberLiteral | BooleanLiteral):
+        return expression.value
+    if isinstance(expression, DateLiteral | TimestampLiteral):
+        return _time_text(expression.value)
+    if isinstance(expression, IntervalLiteral):
+        return [_plain(expression.start), _plain(expression.end)]
+    if isinstance(expression, ArrayLiteral):
+        return [_plain(item) for item in expression.items]
+    if isinstance(expression, OpenEnd):
+        return ".."
+    if isinstance(expression, Property):
+        return {"property": expression.name}
+    return _plain(expression.arg)  # CASEI or ACCENTI around a string
 
 
 def _longest_entries(

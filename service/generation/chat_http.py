@@ -166,30 +166,9 @@ class ChatHttpGenerator:
 
     name = "chat-http"
 
-    def __init__(
-        self,
-        url: str,
-        model: str,
-        api_key: str | None,
-        *,
-        token_margin: float,
-        timeout_seconds: float,
-        max_retries: int,
-        client: httpx.Client | None = None,
-        backoff_seconds: float = 0.25,
-        sleep: Callable[[float], None] = time.sleep,
-    ) -> None:
+    def __init__(self, endpoint: ChatEndpoint, token_margin: float) -> None:
+        self.endpoint = endpoint
         self.token_margin = token_margin
-        self.endpoint = ChatEndpoint(
-            url,
-            model,
-            api_key,
-            timeout_seconds=timeout_seconds,
-            max_retries=max_retries,
-            client=client,
-            backoff_seconds=backoff_seconds,
-            sleep=sleep,
-        )
 
     def __repr__(self) -> str:
         return f"ChatHttpGenerator(endpoint={self.endpoint.label!r}, model={self.endpoint.model!r})"

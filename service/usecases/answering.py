@@ -21,6 +21,7 @@ from service.packing.packer import PackCandidate, PackedContext, Passage, pack_c
 from service.retrieval.query import RetrievalResult, retrieve
 from service.store import repository
 from service.usecases.callers import Caller, Role
+from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions, check_limits, prepare_query
 from service.usecases.traces import TraceRecorder
@@ -49,6 +50,7 @@ class SearchResult:
     hits: tuple[HitView, ...]
     candidates: int
     trace_id: str
+    inferred_filter: InferredFilter | None = None
 
 
 @dataclass(frozen=True)
@@ -58,6 +60,7 @@ class ContextResult:
     tokens_used: int
     token_budget: int
     trace_id: str
+    inferred_filter: InferredFilter | None = None
 
 
 @dataclass(frozen=True)
@@ -82,6 +85,7 @@ class AnswerResult:
     generator: str
     caution: str | None
     trace_id: str
+    inferred_filter: InferredFilter | None = None
 
 
 @dataclass(frozen=True)
@@ -89,6 +93,7 @@ class _Retrieval:
     view: IndexView
     result: RetrievalResult
     recorder: TraceRecorder
+    inferred: InferredFilter | None
 
 
 def _retrieve(
@@ -105,8 +110,14 @@ def _retrieve(
     check_limits(options, runtime.settings, runtime.embedder.dimensions)
     caller.require_collection(collection)
     view = runtime.indexes.view(collection)
+    using_chat = options.infer_filter.active and options.infer_filter.using == "chat-http"
     prepared = prepare_query(
-        options, view, runtime.embedder, caller.visible_groups, whole_ranking=whole_ranking
+        options,
+        view,
+        runtime.embedder,
+        caller.visible_groups,
+        whole_ranking=whole_ranking,
+        proposer=runtime.generators.filter_proposer() if using_chat else None,
     )
     result = retrieve(view.snapshot, prepared.retrieval)
     for stage in result.stages:
@@ -118,7 +129,7 @@ def _retrieve(
                 prepared.embedding_milliseconds,
                 source=prepared.embedding_source,
             )
-    return _Retrieval(view, result, recorder)
+    return _Retrieval(view, result, recorder, prepared.inferred)
 
 
 def _hit(view: IndexView, row: int, score: float, ranks: Mapping[str, int | None]) -> HitView:
@@ -148,10 +159,11 @@ def search(
     retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=False)
     hits = tuple(_hit(retrieval.view, h.row, h.score, h.ranks) for h in retrieval.result.hits)
     candidates = retrieval.result.candidates
+    inferred = retrieval.inferred
     if not keep_trace:
-        return SearchResult(hits, candidates, "")
+        return SearchResult(hits, candidates, "", inferred)
     recorder.save(runtime.traces, caller, hits=[h.chunk_id for h in hits], candidates=candidates)
-    return SearchResult(hits, candidates, recorder.trace_id)
+    return SearchResult(hits, candidates, recorder.trace_id, inferred)
 
 
 def _check_budget(runtime: Runtime, token_budget: int) -> None:
@@ -231,13 +243,16 @@ def _pack(
     return packed
 
 
-def _context_result(packed: PackedContext, trace_id: str) -> ContextResult:
+def _context_result(
+    packed: PackedContext, trace_id: str, inferred: InferredFilter | None
+) -> ContextResult:
     return ContextResult(
         context=packed.context,
         passages=packed.passages,
         tokens_used=packed.tokens_used,
         token_budget=packed.token_budget,
         trace_id=trace_id,
+        inferred_filter=inferred,
     )
 
 
@@ -255,7 +270,7 @@ def build_context(
     retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
     packed = _pack(runtime, retrieval, token_budget, 1.0)
     recorder.save(runtime.traces, caller, tokens_used=packed.tokens_used)
-    return _context_result(packed, recorder.trace_id)
+    return _context_result(packed, recorder.trace_id, retrieval.inferred)
 
 
 def answer(
@@ -286,6 +301,7 @@ def answer(
             generator=generator.name,
             caution=facts.answer_caution,
             trace_id=recorder.trace_id,
+            inferred_filter=retrieval.inferred,
         )
 
     if retrieval.result.candidates == 0 or not retrieval.result.hits:
@@ -296,7 +312,7 @@ def answer(
     except GeneratorUnavailable as exc:
         recorder.save(runtime.traces, caller, generator_error=exc.message)
         raise GeneratorUnavailable(
-            exc.message, context=_context_result(packed, recorder.trace_id)
+            exc.message, context=_context_result(packed, recorder.trace_id, retrieval.inferred)
         ) from exc
     if generated.answer is None:
         return declined(generated.reason or "insufficient_evidence", packed.passages)
@@ -309,6 +325,7 @@ def answer(
         generator=generator.name,
         caution=facts.answer_caution,
         trace_id=recorder.trace_id,
+        inferred_filter=retrieval.inferred,
     )
 
 

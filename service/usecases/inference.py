@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from service.attributes import AttributeType, Schema, from_epoch_days, from_epoch_micros
+from service.attributes import EPOCH_DATE, EPOCH_DATETIME, AttributeType, Schema
 from service.errors import GeneratorUnavailable, InvalidFilter, InvalidRequest
 from service.filters.check import check_filter
 from service.filters.columns import PLAIN, AttributeColumns, KeywordColumn, KeywordListColumn
@@ -42,7 +42,6 @@ from service.generation.filter_proposal import (
     ChatFilterProposer,
 )
 from service.index.collection_index import IndexSnapshot
-from service.retrieval.access import access_mask
 
 INFER_MODES = ("off", "suggest", "apply")
 INFER_USING = ("deterministic", "chat-http")
@@ -210,7 +209,7 @@ def infer_for_request(
     lexicon = lexicon_for(snapshot, schema, hints)
     visible = snapshot.live.copy()
     if groups is not None:
-        visible &= access_mask(snapshot, groups)
+        visible &= snapshot.access.visible(groups)
     allowed = visible
     if explicit is not None and snapshot.columns is not None:
         allowed = visible & evaluate(explicit, snapshot.columns)
@@ -286,7 +285,7 @@ def attribute_summaries(
 
 def _bound(type_: AttributeType, value: float) -> str:
     if type_ is AttributeType.DATE:
-        return from_epoch_days(int(value)).isoformat()
+        return (EPOCH_DATE + dt.timedelta(days=int(value))).isoformat()
     if type_ is AttributeType.DATETIME:
-        return timestamp_text(from_epoch_micros(int(value)))
+        return timestamp_text(EPOCH_DATETIME + dt.timedelta(microseconds=int(value)))
     return str(int(value)) if type_ is AttributeType.INTEGER else repr(value)

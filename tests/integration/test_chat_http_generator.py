@@ -10,7 +10,7 @@ import pytest
 
 from service.errors import GeneratorUnavailable
 from service.generation.base import INSUFFICIENT_EVIDENCE
-from service.generation.chat_http import SYSTEM_PROMPT, ChatHttpGenerator
+from service.generation.chat_http import SYSTEM_PROMPT, ChatEndpoint, ChatHttpGenerator
 from service.packing.packer import Passage
 from tests.chat_endpoint import Step
 
@@ -31,15 +31,15 @@ def make_generator(
     sleeps: list[float] | None = None,
 ) -> ChatHttpGenerator:
     recorded = sleeps if sleeps is not None else []
-    return ChatHttpGenerator(
+    endpoint = ChatEndpoint(
         url,
         "tiny-chat",
         API_KEY,
-        token_margin=1.2,
         timeout_seconds=timeout_seconds,
         max_retries=max_retries,
         sleep=recorded.append,
     )
+    return ChatHttpGenerator(endpoint, token_margin=1.2)
 
 
 def test_the_request_has_the_chat_completions_shape_with_fenced_passages(endpoint):

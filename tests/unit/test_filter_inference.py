@@ -384,7 +384,15 @@ def test_a_value_that_only_hidden_rows_hold_is_treated_as_unknown() -> None:
 
 
 def test_an_inferred_filter_selects_what_the_clauses_say() -> None:
-    assert rows_of(infer("Fenwick manuals from 2024")) == [1]
+    assert rows_of(infer("the 2024 Fenwick manual")) == [1]
+
+
+def test_a_year_stays_a_number_or_a_date_when_its_best_reading_selects_nothing() -> None:
+    # "from 2024" reads best as a date; no Fenwick manual has a date in 2024, and the year is
+    # not moved over to the model year: the date is dropped and reported.
+    inference = infer("Fenwick manuals from 2024")
+    assert text_of(inference) == "model = 'Fenwick' AND kind = 'manual'"
+    assert {d.clause.attribute for d in inference.dropped} == {"effective", "published"}
 
 
 def test_clauses_carry_cql2_text_and_json_ready_values() -> None:

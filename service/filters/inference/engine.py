@@ -293,37 +293,47 @@ class _Reader:
     def choose(
         self,
         scores: dict[str, int],
+        firm: set[str],
         first: int,
         last: int,
         make: Callable[[str], InferredClause],
     ) -> InferredClause | None:
         """The clause on the best-scoring attribute under which the question selects rows.
 
-        Attributes are tried from the best score down. An attribute the question names is
-        taken at its word; any other counts only when its clause selects some of the rows the
-        phrase clauses select, since otherwise it could only be dropped. A tie at the first
-        score that counts is dropped with the reason, once per attribute it could have been.
+        Attributes are tried from the best score down, among those of the best one's kind (a
+        number stays a number and a date a date). One the question ties ``firm``ly to the
+        mention (by name, unit or a value beside it) is taken at its word; any other counts
+        only when its clause selects some of the rows the phrase clauses select, since
+        otherwise it could only be dropped. A tie at the first score that counts is dropped with
+        the reason, once per attribute it could have been.
         """
         if not scores:
             return None
+        attributes = self.lexicon.attributes
+        best = max(scores.values())
+        kinds = {attributes[name].temporal for name, score in scores.items() if score == best}
         context = self.context_rows()
         clauses: dict[str, InferredClause] = {}
         viable: list[str] = []
         for score in sorted(set(scores.values()), reverse=True):
-            level = sorted(name for name, value in scores.items() if value == score)
+            level = sorted(
+                name
+                for name, value in scores.items()
+                if value == score and attributes[name].temporal in kinds
+            )
             for name in level:
                 clauses[name] = make(name)
             viable = [
                 name
                 for name in level
-                if self.cues(self.lexicon.attributes[name], first, last)[0]
+                if name in firm
+                or name in self.scope.explicit
                 or np.any(self.masks.of(clauses[name].node) & context)
             ]
             if viable:
                 break
         if not viable:
-            best = max(scores.values())
-            viable = sorted(name for name, value in scores.items() if value == best)
+            viable = sorted(name for name, score in scores.items() if score == best)
         if len(viable) == 1:
             return clauses[viable[0]]
         evidence = self.text(first, last)
@@ -332,6 +342,14 @@ class _Reader:
         )
         self.ambiguous(viable, evidence, reason, clauses[viable[0]].source)
         return None
+
+    def named(self, first: int, last: int) -> set[str]:
+        """Attributes one of whose name words stands near the mention."""
+        return {
+            name
+            for name, facts in self.lexicon.attributes.items()
+            if self.cues(facts, first, last)[0]
+        }
 
     def ambiguous(self, attributes: Iterable[str], evidence: str, reason: str, what: str) -> None:
         for attribute in attributes:
@@ -490,7 +508,8 @@ class _Reader:
             ) -> InferredClause:
                 return self._time_clause(attribute, mention, scores[attribute] > 0)
 
-            clause = self.choose(scores, mention.first, mention.last, make)
+            firm = self.named(mention.first, mention.last)
+            clause = self.choose(scores, firm, mention.first, mention.last, make)
             if clause is not None:
                 self.proposals.append(Proposal(clause, STRENGTH_TIME, mention.first))
 
@@ -519,12 +538,12 @@ class _Reader:
         for mention in find_numbers(self.question, self.words, self.taken):
             if negated(self.words, mention.first):
                 continue
-            scores = self._number_scores(mention)
+            scores, firm = self._number_scores(mention)
 
             def make(attribute: str, mention: NumberMention = mention) -> InferredClause:
                 return self._number_clause(attribute, mention)
 
-            clause = self.choose(scores, mention.first, mention.last, make)
+            clause = self.choose(scores, firm, mention.first, mention.last, make)
             if clause is None:
                 continue
             if clause.op == "=" and not self.lexicon.attributes[clause.attribute].temporal:
@@ -543,8 +562,10 @@ class _Reader:
                 )
             self.proposals.append(Proposal(first_clause, STRENGTH_NUMBER, first_mention.first))
 
-    def _number_scores(self, mention: NumberMention) -> dict[str, int]:
+    def _number_scores(self, mention: NumberMention) -> tuple[dict[str, int], set[str]]:
+        """Each attribute the number could be, scored; and those it is firmly tied to."""
         scores: dict[str, int] = {}
+        firm = self.named(mention.first, mention.last)
         value = mention.value
         for facts in self.lexicon.attributes.values():
             if facts.numeric:
@@ -552,8 +573,12 @@ class _Reader:
                     if mention.unit not in facts.units:
                         continue
                     score = 3
+                    firm.add(facts.name)
                 elif mention.year_shaped and facts.calendar_year:
-                    score = 3 + 2 * self._beside_phrase(mention)
+                    beside = self._beside_phrase(mention)
+                    score = 3 + 2 * beside
+                    if beside:
+                        firm.add(facts.name)
                 elif (
                     not facts.calendar_year
                     and facts.low is not None
@@ -571,7 +596,7 @@ class _Reader:
             if score == 0 and cue == 0:
                 continue  # a bare number with no unit and no cue word is no evidence
             scores[facts.name] = score + cue
-        return scores
+        return scores, firm
 
     def _beside_phrase(self, mention: NumberMention) -> bool:
         """A year written next to a value ("2022 Ridgeline") belongs with that value."""
@@ -642,18 +667,19 @@ def proposals_from_filter(node: Node, source: str) -> list[Proposal]:
 
 
 def _clause_of(node: Node, source: str) -> InferredClause:
-    attribute = next(iter(_properties(node)), "")
+    attribute = next(iter(node_attributes(node)), "")
     op, value = _described(node)
     return InferredClause(attribute, op, value, "", source, node)
 
 
-def _properties(node: Node) -> list[str]:
+def node_attributes(node: Node) -> list[str]:
+    """The attributes a filter reads, in order of appearance."""
     names: list[str] = []
     if isinstance(node, And | Or):
         for arg in node.args:
-            names += _properties(arg)
+            names += node_attributes(arg)
     elif isinstance(node, Not):
-        names += _properties(node.arg)
+        names += node_attributes(node.arg)
     elif isinstance(node, Comparison | TemporalPredicate | ArrayPredicate):
         names += properties_of(node.left) + properties_of(node.right)
     elif isinstance(node, Between | In | IsNull | Like):

@@ -34,7 +34,7 @@ _BEFORE = frozenset({"before", "prior"})
 _UNTIL = frozenset({"until", "till", "through", "thru"})
 # "from 2019" alone names the period ("the policy from 2019"); "from 2019 onwards" or
 # "from 2019 to 2021" say more, and the words after the period decide.
-_WITHIN = frozenset({"in", "during", "on", "of", "for", "from"})
+_WITHIN = frozenset({"in", "during", "on", "of", "from"})
 _RANGE_JOINS = frozenset({"and", "to", "until", "till", "through"})
 _TIME_WORDS = _SINCE | _AFTER | _BEFORE | _UNTIL | _WITHIN | {"between"}
 

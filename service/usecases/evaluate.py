@@ -36,6 +36,15 @@ class StoreBackend:
     def __init__(self, runtime: Runtime, collection: str) -> None:
         self.runtime = runtime
         self.collection = collection
+        self._vectors: dict[str, list[float]] = {}
+
+    def _query_vector(self, text: str, mode: str) -> list[float] | None:
+        """The text's query vector, embedded once for all the searches and systems that ask."""
+        if mode == "lexical":
+            return None
+        if text not in self._vectors:
+            self._vectors[text] = self.runtime.embedder.embed_query(text).tolist()
+        return self._vectors[text]
 
     def rank_documents(
         self,
@@ -48,6 +57,7 @@ class StoreBackend:
         infer: InferRequest | None = None,
     ) -> list[tuple[str, float]]:
         infer_filter = OFF if infer is None else infer_options(infer)
+        vector = self._query_vector(text, mode)
 
         def run(chunks: int) -> ChunkHits:
             options = SearchOptions(
@@ -57,6 +67,7 @@ class StoreBackend:
                 top_k=chunks,
                 depth=chunks,
                 rrf_k=int(settings.get("rrf_k", 60)),  # type: ignore[call-overload]
+                query_vector=vector,
                 infer_filter=infer_filter,
                 scoring=self._scoring(settings),
             )

@@ -8,17 +8,22 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 import pytest
+from fastapi.testclient import TestClient
 
+from service.api.app import create_app
 from service.attributes import AttributeType, Schema, normalize_value
 from service.filters.inference.hints import AttributeHints
 from service.generation.chat_http import ChatEndpoint
 from service.generation.filter_proposal import FILTER_SYSTEM_PROMPT, ChatFilterProposer
 from service.index.collection_index import ChunkRecord, CollectionIndex, IndexSnapshot
 from service.usecases.inference import InferOptions, infer_for_request
+from service.usecases.runtime import Runtime
+from tests.api_helpers import Api, make_key
 from tests.chat_endpoint import FakeEndpoint, Step
 
 NOW = dt.datetime(2025, 3, 15, 12, tzinfo=dt.UTC)
@@ -168,3 +173,43 @@ def test_a_proposed_clause_is_settled_like_the_engines(endpoint: FakeEndpoint) -
     reasons = {d["clause"]["attribute"]: d["reason"] for d in shown["dropped"]}
     assert "request's own filter" in reasons["model_year"]
     assert reasons["tags"] == "the collection's hints exclude tags from inference"
+
+
+def test_the_api_uses_the_configured_endpoint_and_the_trace_says_when_it_fell_back(
+    endpoint: FakeEndpoint, make_runtime: Callable[..., Runtime]
+) -> None:
+    runtime = make_runtime(chat_url=endpoint.url, chat_model="tiny-chat", chat_max_retries=0)
+    with TestClient(create_app(runtime)) as client:
+        api = Api(client, make_key(runtime, "admin", name="admin"))
+        schema = {"attributes": {"model": {"type": "keyword"}, "model_year": {"type": "integer"}}}
+        assert api.put("/v1/collections/bikes", json=schema).status_code == 201
+        documents = [
+            {"id": f"fenwick-{year}", "text": "tyre pressure", "attributes": row}
+            for year, row in (
+                (2022, {"model": "Fenwick", "model_year": 2022}),
+                (2024, {"model": "Fenwick", "model_year": 2024}),
+            )
+        ]
+        response = api.post("/v1/collections/bikes/documents", json={"documents": documents})
+        assert response.status_code == 200, response.text
+        using_chat = {"mode": "apply", "using": "chat-http", "now": "2025-03-15T12:00:00Z"}
+
+        endpoint.script.append(reply(YEAR_2022))
+        body = api.post(
+            "/v1/collections/bikes/search", json={"query": QUESTION, "infer_filter": using_chat}
+        ).json()
+        assert body["inferred_filter"]["using"] == "chat-http"
+        assert {hit["document_id"] for hit in body["hits"]} == {"fenwick-2022"}
+
+        endpoint.script.append(reply("I think you mean the 2022 model."))
+        body = api.post(
+            "/v1/collections/bikes/search", json={"query": QUESTION, "infer_filter": using_chat}
+        ).json()
+        inferred = body["inferred_filter"]
+        assert inferred["using"] == "deterministic"
+        assert inferred["cql2_text"] == "model_year = 2022 AND model = 'Fenwick'"
+        trace = api.get(f"/v1/traces/{body['trace_id']}").json()
+        (stage,) = [s for s in trace["stages"] if s["stage"] == "filter"]
+        assert stage["inference_using"] == "deterministic"
+        assert "reply was not a usable filter" in stage["inference_fallback"]
+        assert "deterministic inference was used instead" in stage["inference_fallback"]

@@ -17,7 +17,7 @@ value found only in rows hidden from the caller is treated as unknown, so it rev
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -150,22 +150,27 @@ class Proposal:
 
 
 class _Masks:
-    """Each clause's rows, computed once per question."""
+    """Each clause's rows, computed once per question.
+
+    Keyed by the node's identity (hashing a tree costs more than the lookup saves); the node is
+    kept with its rows, so its identity cannot be reused while the question is read.
+    """
 
     def __init__(self, columns: AttributeColumns | None, length: int) -> None:
         self._columns = columns
         self._length = length
-        self._found: dict[Node, np.ndarray] = {}
+        self._found: dict[int, tuple[Node, np.ndarray]] = {}
 
     def of(self, node: Node) -> np.ndarray:
-        found = self._found.get(node)
-        if found is None:
-            if self._columns is None:
-                found = np.zeros(self._length, dtype=bool)
-            else:
-                found = evaluate(node, self._columns)
-            self._found[node] = found
-        return found
+        found = self._found.get(id(node))
+        if found is not None:
+            return found[1]
+        if self._columns is None:
+            rows = np.zeros(self._length, dtype=bool)
+        else:
+            rows = evaluate(node, self._columns)
+        self._found[id(node)] = (node, rows)
+        return rows
 
 
 def infer_clauses(question: str, lexicon: Lexicon, scope: InferenceScope) -> Inference:
@@ -212,7 +217,7 @@ def settle(
             if not proposal.names_value:
                 refused.append(DroppedClause(clause, "no document you can see matches it"))
             continue
-        if not np.any(rows & scope.allowed):
+        if scope.allowed is not scope.visible and not np.any(rows & scope.allowed):
             refused.append(
                 DroppedClause(clause, "no document matches it together with the request's filter")
             )
@@ -257,6 +262,8 @@ class _Reader:
         self.proposals: list[Proposal] = []
         self.dropped: list[DroppedClause] = []
         self.phrase_matches: list[_PhraseMatch] = []
+        self._near: dict[tuple[int, int], frozenset[str]] = {}
+        self._context: tuple[int, np.ndarray] | None = None
 
     # shared helpers -----------------------------------------------------------------------
 
@@ -274,20 +281,30 @@ class _Reader:
 
     def cues(self, facts: AttributeFacts, first: int, last: int) -> tuple[int, int]:
         """How many of the attribute's name words and description words are near a mention."""
-        near = (
-            self.words[max(0, first - CUE_WINDOW) : first]
-            + self.words[last + 1 : last + 1 + CUE_WINDOW]
-        )
-        keys = {word.key for word in near}
+        keys = self.near(first, last)
         return len(keys & facts.name_cues), len(keys & facts.description_cues)
 
+    def near(self, first: int, last: int) -> frozenset[str]:
+        """The keys of the words around a mention (``CUE_WINDOW`` each side)."""
+        found = self._near.get((first, last))
+        if found is None:
+            around = (
+                self.words[max(0, first - CUE_WINDOW) : first]
+                + self.words[last + 1 : last + 1 + CUE_WINDOW]
+            )
+            found = self._near[(first, last)] = frozenset(word.key for word in around)
+        return found
+
     def context_rows(self) -> np.ndarray:
-        """Allowed rows that the phrase clauses proposed so far select (when they select any)."""
+        """Allowed rows that the clauses proposed so far select (those that select any)."""
+        if self._context is not None and self._context[0] == len(self.proposals):
+            return self._context[1]
         rows = self.scope.allowed
         for proposal in self.proposals:
             narrowed = rows & self.masks.of(proposal.clause.node)
             if np.any(narrowed):
                 rows = narrowed
+        self._context = (len(self.proposals), rows)
         return rows
 
     def choose(
@@ -340,7 +357,7 @@ class _Reader:
         reason = (
             f"{evidence!r} could be {' or '.join(viable)}, and no word of the question says which"
         )
-        self.ambiguous(viable, evidence, reason, clauses[viable[0]].source)
+        self.ambiguous([clauses[name] for name in viable], reason)
         return None
 
     def named(self, first: int, last: int) -> set[str]:
@@ -351,21 +368,9 @@ class _Reader:
             if self.cues(facts, first, last)[0]
         }
 
-    def ambiguous(self, attributes: Iterable[str], evidence: str, reason: str, what: str) -> None:
-        for attribute in attributes:
-            self.dropped.append(
-                DroppedClause(
-                    InferredClause(
-                        attribute=attribute,
-                        op="?",
-                        value=evidence,
-                        evidence=evidence,
-                        source=what,
-                        node=_placeholder(attribute),
-                    ),
-                    reason,
-                )
-            )
+    def ambiguous(self, readings: Sequence[InferredClause], reason: str) -> None:
+        """Each reading of an undecided mention, dropped with the same reason."""
+        self.dropped.extend(DroppedClause(reading, reason) for reading in readings)
 
     # phrases: keyword values, aliases, boolean phrases ------------------------------------
 
@@ -401,11 +406,9 @@ class _Reader:
                 evidence = self.text(first, last)
                 names = sorted(by_attribute)
                 self.ambiguous(
-                    names,
-                    evidence,
+                    [self._value_clause(name, by_attribute[name][0], evidence) for name in names],
                     f"{evidence!r} is a value of {' and of '.join(names)}, and no word of the"
                     " question says which",
-                    _SOURCES[found[0].source],
                 )
                 return
         self.phrase_matches.append(
@@ -448,16 +451,29 @@ class _Reader:
             source = " and ".join(_SOURCES[s] for s in sorted(sources))
             if len(truths) > 1:
                 self.ambiguous(
-                    [attribute],
-                    evidence,
+                    [
+                        _boolean_clause(attribute, truth, evidence, source)
+                        for truth in (True, False)
+                    ],
                     f"the question says both true and false of {attribute}",
-                    source,
                 )
                 continue
-            truth = truths.pop()
-            node = Comparison(ComparisonOp.EQ, Property(attribute), BooleanLiteral(truth))
-            clause = InferredClause(attribute, "=", truth, evidence, source, node)
+            clause = _boolean_clause(attribute, truths.pop(), evidence, source)
             self.proposals.append(Proposal(clause, STRENGTH_PHRASE, readings[0][0].first))
+
+    def _value_clause(self, attribute: str, entry: Entry, evidence: str) -> InferredClause:
+        """The clause a phrase would give on one attribute (to show an undecided reading)."""
+        source = _SOURCES[entry.source]
+        if isinstance(entry.value, bool):
+            return _boolean_clause(attribute, entry.value, evidence, source)
+        prop, literal = Property(attribute), StringLiteral(entry.value)
+        if self.lexicon.schema[attribute] is AttributeType.KEYWORD_LIST:
+            node: Node = ArrayPredicate(ArrayOp.CONTAINS, prop, ArrayLiteral((literal,)))
+            return InferredClause(
+                attribute, ArrayOp.CONTAINS.value, [entry.value], evidence, source, node
+            )
+        node = Comparison(ComparisonOp.EQ, prop, literal)
+        return InferredClause(attribute, "=", entry.value, evidence, source, node)
 
     def _propose_keyword(
         self,
@@ -721,6 +737,11 @@ def _plain(expression: Expression | IntervalEnd) -> Any:
     return _plain(expression.arg)  # CASEI or ACCENTI around a string
 
 
+def _boolean_clause(attribute: str, truth: bool, evidence: str, source: str) -> InferredClause:
+    node = Comparison(ComparisonOp.EQ, Property(attribute), BooleanLiteral(truth))
+    return InferredClause(attribute, "=", truth, evidence, source, node)
+
+
 def _longest_entries(
     lexicon: Lexicon, words: Sequence[Word], position: int
 ) -> tuple[int, list[Entry]]:
@@ -785,8 +806,3 @@ def _range_node(
     assert stop is not None
     end = literal(stop)
     return Comparison(ComparisonOp.LT, prop, end), "<", _time_text(end.value)
-
-
-def _placeholder(attribute: str) -> Node:
-    """What an undecided clause would test: only that the attribute has a value."""
-    return Not(IsNull(Property(attribute)))

@@ -404,9 +404,31 @@ def _time_at(
 # numbers ----------------------------------------------------------------------------------
 
 
+def _by_last_word(
+    phrases: tuple[tuple[tuple[str, ...], str], ...],
+) -> dict[str, list[tuple[tuple[str, ...], str]]]:
+    index: dict[str, list[tuple[tuple[str, ...], str]]] = {}
+    for phrase, op in phrases:
+        index.setdefault(phrase[-1], []).append((phrase, op))
+    return index
+
+
+def _by_first_word(
+    phrases: tuple[tuple[tuple[str, ...], str], ...],
+) -> dict[str, list[tuple[tuple[str, ...], str]]]:
+    index: dict[str, list[tuple[tuple[str, ...], str]]] = {}
+    for phrase, op in phrases:
+        index.setdefault(phrase[0], []).append((phrase, op))
+    return index
+
+
+_BEFORE_BY_LAST = _by_last_word(_BEFORE_NUMBER)
+_AFTER_BY_FIRST = _by_first_word(_AFTER_NUMBER)
+
+
 def _phrase_before(words: Sequence[Word], end: int) -> tuple[str, int] | None:
     """The comparison phrase ending at ``words[end]``: its operator and its first word."""
-    for phrase, op in _BEFORE_NUMBER:
+    for phrase, op in _BEFORE_BY_LAST.get(words[end].folded, ()):
         first = end - len(phrase) + 1
         if first >= 0 and tuple(w.folded for w in words[first : end + 1]) == phrase:
             return op, first
@@ -414,7 +436,9 @@ def _phrase_before(words: Sequence[Word], end: int) -> tuple[str, int] | None:
 
 
 def _phrase_after(words: Sequence[Word], start: int) -> tuple[str, int] | None:
-    for phrase, op in _AFTER_NUMBER:
+    if start >= len(words):
+        return None
+    for phrase, op in _AFTER_BY_FIRST.get(words[start].folded, ()):
         last = start + len(phrase) - 1
         if last < len(words) and tuple(w.folded for w in words[start : last + 1]) == phrase:
             return op, last

@@ -43,7 +43,8 @@ def _stemmer() -> Stemmer.Stemmer:
 
 
 def fold(text: str) -> str:
-    return strip_accents(fold_case(text))
+    folded = fold_case(text)
+    return folded if folded.isascii() else strip_accents(folded)
 
 
 def stems(folded: Sequence[str]) -> list[str]:

@@ -131,27 +131,22 @@ def build_lexicon(
 
 
 def _entries(name: str, type_: AttributeType, hints: AttributeHints, column: object) -> list[Entry]:
-    found: list[Entry] = []
+    """Every phrase naming a value of the attribute: (text, value, source) analysed."""
+    named: list[tuple[str, str | bool, str]] = []
     if type_ in (AttributeType.KEYWORD, AttributeType.KEYWORD_LIST):
-        for value in _keyword_values(column):
-            entry = _entry(value, name, value, "value")
-            if entry is not None:
-                found.append(entry)
-        for value, aliases in hints.aliases.items():
-            for alias in aliases:
-                entry = _entry(alias, name, value, "alias")
-                if entry is not None:
-                    found.append(entry)
+        named += [(value, value, "value") for value in _keyword_values(column)]
+        named += [
+            (alias, value, "alias") for value, aliases in hints.aliases.items() for alias in aliases
+        ]
     elif type_ is AttributeType.BOOLEAN:
-        own_name = _entry(name.replace("_", " "), name, True, "name")
-        if own_name is not None:
-            found.append(own_name)
-        for truth, phrases in hints.phrases.items():
-            for phrase in phrases:
-                entry = _entry(phrase, name, truth, "phrase")
-                if entry is not None:
-                    found.append(entry)
-    return found
+        named.append((name.replace("_", " "), True, "name"))
+        named += [
+            (phrase, truth, "phrase")
+            for truth, phrases in hints.phrases.items()
+            for phrase in phrases
+        ]
+    found = (_entry(text, name, value, source) for text, value, source in named)
+    return [entry for entry in found if entry is not None]
 
 
 def _keyword_values(column: object) -> Sequence[str]:

@@ -404,26 +404,18 @@ def _time_at(
 # numbers ----------------------------------------------------------------------------------
 
 
-def _by_last_word(
-    phrases: tuple[tuple[tuple[str, ...], str], ...],
+def _indexed(
+    phrases: tuple[tuple[tuple[str, ...], str], ...], at: int
 ) -> dict[str, list[tuple[tuple[str, ...], str]]]:
+    """The phrases by their word at ``at`` (0 the first, -1 the last), longest first."""
     index: dict[str, list[tuple[tuple[str, ...], str]]] = {}
     for phrase, op in phrases:
-        index.setdefault(phrase[-1], []).append((phrase, op))
+        index.setdefault(phrase[at], []).append((phrase, op))
     return index
 
 
-def _by_first_word(
-    phrases: tuple[tuple[tuple[str, ...], str], ...],
-) -> dict[str, list[tuple[tuple[str, ...], str]]]:
-    index: dict[str, list[tuple[tuple[str, ...], str]]] = {}
-    for phrase, op in phrases:
-        index.setdefault(phrase[0], []).append((phrase, op))
-    return index
-
-
-_BEFORE_BY_LAST = _by_last_word(_BEFORE_NUMBER)
-_AFTER_BY_FIRST = _by_first_word(_AFTER_NUMBER)
+_BEFORE_BY_LAST = _indexed(_BEFORE_NUMBER, -1)
+_AFTER_BY_FIRST = _indexed(_AFTER_NUMBER, 0)
 
 
 def _phrase_before(words: Sequence[Word], end: int) -> tuple[str, int] | None:

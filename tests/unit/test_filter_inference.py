@@ -10,8 +10,11 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from service.attributes import AttributeType, Schema, normalize_value
+from service.filters.check import check_filter
 from service.filters.columns import AttributeColumns
 from service.filters.evaluate import evaluate
 from service.filters.inference.engine import (
@@ -402,3 +405,48 @@ def test_clauses_carry_cql2_text_and_json_ready_values() -> None:
     assert shown["value"] == ["2024-11-01T00:00:00Z", "2024-11-30T23:59:59.999999Z"]
     assert shown["evidence"] == "in November 2024"
     assert shown["cql2_text"].startswith("T_INTERSECTS(published")
+
+
+PIECES = [
+    *"0123456789 -,.'%",
+    "\u20ac",
+    "é",
+    "Fenwick",
+    "Brisa",
+    " in ",
+    " the last ",
+    " since ",
+    " March ",
+    " 2024",
+    " years",
+    " kg",
+    " Wh",
+    " more than ",
+    " between ",
+    " and ",
+    " not ",
+    " this year",
+    " recalled",
+    "9" * 30,
+    " last 9999 years",
+    " US",
+]
+
+
+@given(
+    question=st.lists(st.sampled_from(PIECES), max_size=20).map("".join),
+    now=st.sampled_from(
+        [NOW, dt.datetime(1, 1, 2, tzinfo=dt.UTC), dt.datetime(9999, 12, 31, tzinfo=dt.UTC)]
+    ),
+)
+@settings(max_examples=150, deadline=None)
+def test_any_question_gives_checked_clauses_and_never_an_error(
+    question: str, now: dt.datetime
+) -> None:
+    inference = infer(question, now=now)
+    if inference.node is not None:
+        assert check_filter(inference.node, SCHEMA) == inference.node
+        evaluate(inference.node, COLUMNS)
+    for clause in [*inference.clauses, *(d.clause for d in inference.dropped)]:
+        assert check_filter(clause.node, SCHEMA) == clause.node
+        assert clause.evidence in question

@@ -270,6 +270,10 @@ class _Reader:
     def text(self, first: int, last: int) -> str:
         return span_text(self.question, self.words, first, last)
 
+    def covering(self, mentions: Sequence[_PhraseMatch | NumberMention]) -> str:
+        """The question from the first mention's first word to the last one's last word."""
+        return self.text(min(m.first for m in mentions), max(m.last for m in mentions))
+
     def take(self, first: int, last: int) -> None:
         for position in range(first, last + 1):
             self.taken[position] = True
@@ -435,7 +439,7 @@ class _Reader:
             values = list(dict.fromkeys(str(e.value) for m in matches for e in m.entries))
             sources = {e.source for m in matches for e in m.entries}
             source = " and ".join(_SOURCES[s] for s in sorted(sources))
-            evidence = ", ".join(self.text(m.first, m.last) for m in matches)
+            evidence = self.covering(matches)
             position = matches[0].first
             if is_negated:
                 for value in values:
@@ -445,7 +449,7 @@ class _Reader:
             else:
                 self._propose_keyword(attribute, type_, values, False, evidence, source, position)
         for attribute, readings in booleans.items():
-            evidence = ", ".join(self.text(m.first, m.last) for m, _ in readings)
+            evidence = self.covering([m for m, _ in readings])
             truths = {truth for _, truth in readings}
             sources = {e.source for m, _ in readings for e in m.entries}
             source = " and ".join(_SOURCES[s] for s in sorted(sources))
@@ -569,10 +573,10 @@ class _Reader:
                 self.proposals.append(Proposal(clause, strength, mention.first))
         for attribute, found in equal.items():
             first_mention, first_clause = found[0]
-            if len(found) > 1:
-                values = list(dict.fromkeys(m.value for m, _ in found))
+            values = list(dict.fromkeys(m.value for m, _ in found))
+            if len(values) > 1:
                 node = In(Property(attribute), tuple(NumberLiteral(v) for v in values))
-                evidence = ", ".join(self.text(m.first, m.last) for m, _ in found)
+                evidence = self.covering([m for m, _ in found])
                 first_clause = InferredClause(
                     attribute, "in", values, evidence, first_clause.source, node
                 )

@@ -12,8 +12,10 @@ import datetime as dt
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
+from service.attributes import MAX_SAFE_INTEGER
 from service.filters.inference.lexicon import UNIT_WORDS
 from service.filters.inference.words import Word, number_at
+from service.filters.time_window import window_start
 
 MONTHS: Mapping[str, int] = {
     "january": 1, "jan": 1, "february": 2, "feb": 2, "march": 3, "mar": 3, "april": 4,
@@ -319,6 +321,17 @@ def _free(taken: Sequence[bool], first: int, last: int) -> bool:
 def _time_at(
     words: Sequence[Word], taken: Sequence[bool], i: int, now: dt.datetime
 ) -> TimeMention | None:
+    """The time expression starting at ``words[i]``; None also when it falls outside the
+    calendar (years 1 to 9999) from this ``now``."""
+    try:
+        return _time_from(words, taken, i, now)
+    except (ValueError, OverflowError):
+        return None
+
+
+def _time_from(
+    words: Sequence[Word], taken: Sequence[bool], i: int, now: dt.datetime
+) -> TimeMention | None:
     n = len(words)
     word = words[i].folded
     # "in the last 30 days", "over the past year", "within the previous six months"
@@ -339,6 +352,7 @@ def _time_at(
                 return TimeMention(
                     i, last, start, stop, how=f"the previous calendar {words[last].folded}"
                 )
+            window_start(text, now)  # raises when the window reaches before year 1
             return TimeMention(
                 i, last, None, None, duration=text, how="relative time, back from now"
             )
@@ -469,6 +483,9 @@ def find_numbers(text: str, words: Sequence[Word], taken: Sequence[bool]) -> lis
             i += 1
             continue
         value, number_last = parsed
+        if abs(value) > MAX_SAFE_INTEGER:
+            i = number_last + 1  # beyond what a filter compares exactly
+            continue
         unit = _unit_before(words, i)
         last = number_last
         unit_after = _unit_after(text, words, number_last)
@@ -491,7 +508,7 @@ def find_numbers(text: str, words: Sequence[Word], taken: Sequence[bool]) -> lis
         if ranged:
             start_second = join + 1 if words[join].folded in _RANGE_JOINS else join
             second = number_at(words, start_second) if start_second < n else None
-            if second is not None and second[0] >= value:
+            if second is not None and value <= second[0] <= MAX_SAFE_INTEGER:
                 high, number_last = second
                 last = number_last
                 second_unit = _unit_after(text, words, number_last)

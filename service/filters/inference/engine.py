@@ -3,8 +3,11 @@
 Three passes over the question's words, each leaving the words it used to the next: phrases
 that name a keyword value, an alias or a boolean (longest match first), times, then numbers.
 A number or a time is tied to the attribute whose unit, name words and description words
-surround it, among the attributes that have values in the rows the other clauses select; a
-phrase or number that fits several attributes equally is dropped with the reason.
+surround it best; where the best reading would select nothing among the rows the other clauses
+select, the next one of the same kind that selects some is taken (a number stays a number and a
+date a date), unless the question ties the mention to the attribute by name, unit or a value
+beside it. A phrase, number or time that fits several attributes equally is dropped, every
+reading with the reason.
 
 Settling keeps the caller in charge: a clause on an attribute the request's own filter names
 is dropped; clauses are then applied from the most plainly stated (values and aliases, then

@@ -259,6 +259,34 @@ def _filter_arg(value: str | None) -> str | dict[str, Any] | None:
     return value
 
 
+def _infer_arg(value: str) -> Any:
+    """``--infer-filter``: off, suggest, apply, or the request field's object form as JSON;
+    anything else is bad usage (exit status 2)."""
+    from service.usecases.inference import infer_options
+
+    text = value.strip()
+    try:
+        return infer_options(json.loads(text) if text.startswith("{") else text)
+    except json.JSONDecodeError as exc:
+        raise argparse.ArgumentTypeError(f"not JSON ({exc.msg})") from None
+    except ServiceError as exc:
+        raise argparse.ArgumentTypeError(exc.message) from None
+
+
+def _print_inferred(inferred: Any) -> None:
+    """The inferred filter and each clause's words, before the results it shaped."""
+    shown = None if inferred is None else inferred.as_json()
+    if shown is None:
+        return
+    print(f"inferred filter ({shown['using']}): {shown['cql2_text'] or 'none'}")
+    for clause in shown["clauses"]:
+        print(f"  {clause['cql2_text']}  <- {clause['evidence']!r} ({clause['source']})")
+    for dropped in shown["dropped"]:
+        print(f"  dropped {dropped['clause']['cql2_text']}: {dropped['reason']}")
+    if "fallback" in shown:
+        print(f"  {shown['fallback']}")
+
+
 def cmd_search(args: argparse.Namespace) -> int:
     from service.usecases import answering
     from service.usecases.callers import LOCAL_ADMIN
@@ -267,7 +295,11 @@ def cmd_search(args: argparse.Namespace) -> int:
     runtime = _runtime(args)
     try:
         options = SearchOptions(
-            query=args.query, filter=_filter_arg(args.filter), top_k=args.top_k, mode=args.mode
+            query=args.query,
+            filter=_filter_arg(args.filter),
+            top_k=args.top_k,
+            mode=args.mode,
+            infer_filter=args.infer_filter,
         )
         result = answering.search(runtime, LOCAL_ADMIN, args.collection, options)
     finally:
@@ -277,6 +309,7 @@ def cmd_search(args: argparse.Namespace) -> int:
 
         _print_json(search_json(result))
         return 0
+    _print_inferred(result.inferred_filter)
     print(f"{result.candidates} candidates; trace {result.trace_id}")
     print(f"{'rank':>4} {'score':>9} {'lex':>4} {'sem':>4}  {'document':<28} {'section':<24} text")
     for rank, hit in enumerate(result.hits, start=1):
@@ -296,7 +329,12 @@ def cmd_ask(args: argparse.Namespace) -> int:
 
     runtime = _runtime(args)
     try:
-        options = SearchOptions(query=args.question, filter=_filter_arg(args.filter), top_k=10)
+        options = SearchOptions(
+            query=args.question,
+            filter=_filter_arg(args.filter),
+            top_k=10,
+            infer_filter=args.infer_filter,
+        )
         result = answering.answer(
             runtime, LOCAL_ADMIN, args.collection, options, args.budget, args.generator
         )
@@ -307,6 +345,7 @@ def cmd_ask(args: argparse.Namespace) -> int:
 
         _print_json(answer_json(result))
         return 0
+    _print_inferred(result.inferred_filter)
     if result.answer is None:
         print(f"No answer ({result.reason}).")
     else:
@@ -377,16 +416,20 @@ def _set_options(values: list[str]) -> dict[str, list[str]]:
 
 def cmd_eval(args: argparse.Namespace) -> int:
     from service.evaluation.http_backend import SERVER_ONLY_SETTINGS, HttpBackend, ServerRefused
-    from service.evaluation.inputs import read_qrels, read_queries
+    from service.evaluation.inputs import inline_qrels, read_qrels, read_queries
     from service.evaluation.report import write_report
     from service.evaluation.runner import EvaluationBackend, evaluate, systems_from_options
     from service.usecases.evaluate import MAX_CHUNKS, StoreBackend
 
+    infer = _infer_request(args.infer_filter)
     try:
         queries = read_queries(args.queries)
-        qrels = read_qrels(args.qrels)
+        qrels = read_qrels(args.qrels) if args.qrels else inline_qrels(queries)
+        if not qrels:
+            raise ValueError("give --qrels, or queries that carry their own judgments")
         set_options = _set_options(args.set)
-        systems = systems_from_options(args.modes.split(","), set_options)
+        sources = ("labelled", "inferred", "none") if args.infer_filter.mode == "apply" else ()
+        systems = systems_from_options(args.modes.split(","), set_options, sources or ("labelled",))
         if args.url and any(name in set_options for name in SERVER_ONLY_SETTINGS):
             raise ValueError("--set k1 and b work only on the store directly, not with --url")
     except ValueError as exc:
@@ -409,6 +452,7 @@ def cmd_eval(args: argparse.Namespace) -> int:
             depth=args.depth,
             global_filter=args.filter,
             progress=not args.no_progress,
+            infer_filter=infer,
         )
     except (ServerRefused, ValueError) as exc:
         print(f"error: {exc}", file=sys.stderr)
@@ -420,7 +464,22 @@ def cmd_eval(args: argparse.Namespace) -> int:
     for system in result.systems:
         cells = ", ".join(f"{name} {system.summary[name].mean:.4f}" for name in result.measures)
         print(f"  {system.system.label}: {cells}")
+    agreement = result.filter_agreement
+    if agreement is not None:
+        print(
+            f"  inferred filters: same documents {agreement.exact_share:.3f}, a relevant"
+            f" document excluded {agreement.excluding_share:.3f}, mean Jaccard"
+            f" {agreement.mean_jaccard:.3f} ({len(agreement.per_query)} questions)"
+        )
     return 0
+
+
+def _infer_request(options: Any) -> dict[str, object] | None:
+    """``--infer-filter`` in the request field's object form, for each query of an evaluation."""
+    if not options.active:
+        return None
+    request = options.as_request()
+    return dict(request) if isinstance(request, dict) else {"mode": request}
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
@@ -482,6 +541,19 @@ def _common(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--database-url", help="database URL (EXCERPTA_DATABASE_URL)")
 
 
+def _infer_option(
+    parser: argparse.ArgumentParser,
+    modes: str = "off, suggest or apply a filter inferred from the question",
+) -> None:
+    parser.add_argument(
+        "--infer-filter",
+        type=_infer_arg,
+        default="off",
+        metavar="MODE",
+        help=f'{modes}; or a JSON object {{"mode", "now", "using"}}',
+    )
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="excerpta", description=__doc__.splitlines()[0])
     parser.add_argument("--version", action="version", version=f"excerpta {version('excerpta')}")
@@ -526,6 +598,7 @@ def build_parser() -> argparse.ArgumentParser:
     search.add_argument("collection")
     search.add_argument("query")
     search.add_argument("--filter")
+    _infer_option(search)
     search.add_argument("--mode", default="hybrid", choices=["hybrid", "lexical", "semantic"])
     search.add_argument("--top-k", type=int, default=10)
     search.add_argument("--json", action="store_true")
@@ -536,6 +609,7 @@ def build_parser() -> argparse.ArgumentParser:
     ask.add_argument("collection")
     ask.add_argument("question")
     ask.add_argument("--filter")
+    _infer_option(ask)
     ask.add_argument("--budget", type=int, default=1000)
     ask.add_argument("--generator")
     ask.add_argument("--json", action="store_true")
@@ -550,11 +624,19 @@ def build_parser() -> argparse.ArgumentParser:
     _common(evaluate)
     evaluate.add_argument("collection")
     evaluate.add_argument("--queries", required=True, help="TSV (qid<TAB>text) or JSONL")
-    evaluate.add_argument("--qrels", required=True, help="TREC qrels: qid 0 docid grade")
+    evaluate.add_argument(
+        "--qrels",
+        help="TREC qrels: qid 0 docid grade (optional when the JSONL queries carry their own)",
+    )
     evaluate.add_argument("--modes", default="lexical,semantic,hybrid")
     evaluate.add_argument("--k", type=int, default=10)
     evaluate.add_argument("--depth", type=int, default=100)
     evaluate.add_argument("--filter", help="a CQL2 filter applied to every query")
+    _infer_option(
+        evaluate,
+        "off; suggest compares filters inferred from each question with its labelled one;"
+        " apply also ranks with the inferred filters and with none",
+    )
     evaluate.add_argument(
         "--set", action="append", default=[], metavar="NAME=V1,V2", help="vary rrf_k, k1 or b"
     )

@@ -13,6 +13,7 @@ from service.usecases.answering import (
     HitView,
     SearchResult,
 )
+from service.usecases.inference import InferredFilter
 
 
 def hit_json(hit: HitView) -> dict[str, Any]:
@@ -28,11 +29,16 @@ def hit_json(hit: HitView) -> dict[str, Any]:
     }
 
 
+def inferred_json(inferred: InferredFilter | None) -> dict[str, Any] | None:
+    return None if inferred is None else inferred.as_json()
+
+
 def search_json(result: SearchResult) -> dict[str, Any]:
     return {
         "hits": [hit_json(hit) for hit in result.hits],
         "candidates": result.candidates,
         "trace_id": result.trace_id,
+        "inferred_filter": inferred_json(result.inferred_filter),
     }
 
 
@@ -57,6 +63,7 @@ def context_json(result: ContextResult) -> dict[str, Any]:
         "tokens_used": result.tokens_used,
         "token_budget": result.token_budget,
         "trace_id": result.trace_id,
+        "inferred_filter": inferred_json(result.inferred_filter),
     }
 
 
@@ -80,6 +87,7 @@ def answer_json(result: AnswerResult) -> dict[str, Any]:
         "generator": result.generator,
         "caution": result.caution,
         "trace_id": result.trace_id,
+        "inferred_filter": inferred_json(result.inferred_filter),
     }
     if result.reason is not None:
         body["reason"] = result.reason

@@ -23,8 +23,29 @@ class ErrorOut(BaseModel):
     error: ErrorBody
 
 
+def _absent(value: object) -> bool:
+    return value is None
+
+
+class PhrasesIn(Strict):
+    true: list[str] = []
+    false: list[str] = []
+
+
 class AttributeSpec(Strict):
+    """An attribute's type, and the optional hints that filter inference reads."""
+
     type: str
+    description: str | None = Field(None, exclude_if=_absent)
+    aliases: dict[str, list[str]] | None = Field(
+        None, exclude_if=_absent, description="Other names for values: {value: [alias, ...]}"
+    )
+    phrases: PhrasesIn | None = Field(
+        None, exclude_if=_absent, description="Phrases meaning true or false (booleans)"
+    )
+    infer: bool | None = Field(
+        None, exclude_if=_absent, description="false keeps the attribute out of inference"
+    )
 
 
 class ChunkingIn(Strict):
@@ -179,6 +200,17 @@ def _not_a_boolean(value: Any) -> Any:
 Count = Annotated[int, BeforeValidator(_not_a_boolean)]
 
 
+InferMode = Literal["off", "suggest", "apply"]
+
+
+class InferFilterIn(Strict):
+    mode: InferMode
+    now: str | None = Field(
+        None, description="ISO 8601 instant with an offset that relative times resolve against"
+    )
+    using: Literal["deterministic", "chat-http"] = "deterministic"
+
+
 class SearchIn(Strict):
     query: str = Field(min_length=1)
     filter: FilterValue = None
@@ -188,6 +220,11 @@ class SearchIn(Strict):
     rrf_k: Count = Field(60, ge=1, le=10_000)
     depth: Count = Field(100, ge=1)
     query_vector: list[float] | None = None
+    infer_filter: InferMode | InferFilterIn = Field(
+        "off",
+        description="Infer a filter from the query: suggest reports it, apply also ANDs it with"
+        " the request's filter",
+    )
 
 
 class ContextIn(SearchIn):
@@ -214,10 +251,34 @@ class HitOut(BaseModel):
     attributes: dict[str, Any]
 
 
+class InferredClauseOut(BaseModel):
+    attribute: str
+    op: str
+    value: Any
+    evidence: str
+    source: str
+    cql2_text: str
+
+
+class DroppedClauseOut(BaseModel):
+    clause: InferredClauseOut
+    reason: str
+
+
+class InferredFilterOut(BaseModel):
+    cql2_text: str | None
+    cql2_json: Any
+    clauses: list[InferredClauseOut]
+    dropped: list[DroppedClauseOut]
+    using: Literal["deterministic", "chat-http"]
+    fallback: str | None = None
+
+
 class SearchOut(BaseModel):
     hits: list[HitOut]
     candidates: int
     trace_id: str
+    inferred_filter: InferredFilterOut | None = None
 
 
 class PassageOut(BaseModel):
@@ -238,6 +299,7 @@ class ContextOut(BaseModel):
     tokens_used: int
     token_budget: int
     trace_id: str
+    inferred_filter: InferredFilterOut | None = None
 
 
 class CitationOut(BaseModel):
@@ -258,6 +320,7 @@ class AnswerOut(BaseModel):
     generator: str
     caution: str | None = None
     trace_id: str
+    inferred_filter: InferredFilterOut | None = None
 
 
 class TraceOut(BaseModel):

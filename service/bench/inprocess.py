@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from service.bench.inference import time_inference
 from service.bench.references import (
     Bm25sLucene,
     NumpyFullScan,
@@ -194,6 +195,7 @@ def run_size(
             **summary.as_dict(),
         }
     notes["filter_mask_by_type"] = by_type
+    stages["filter inference"], notes["filter_inference"] = time_inference(snapshot, count)
 
     stages["lexical"], lexical = time_each(
         tokens, lambda t: lexical_ranking(snapshot, t, live, top_k)

@@ -15,6 +15,7 @@ Write = Callable[[str], None]
 _STAGE_LABELS = {
     "filter parse+check": "filter parse + check (3 clauses)",
     "filter mask": "filter mask (3 clauses)",
+    "filter inference": "filter inference (one question)",
     "lexical": "lexical, smoothed idf, top k",
     "lexical okapi": "lexical, okapi idf, top k",
     "lexical depth": "lexical, smoothed idf, at depth",

@@ -156,6 +156,17 @@ def targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
             limit=mask_limit,
         )
     )
+    inference = figures["stages"]["filter inference"]["median_ms"]
+    found.append(
+        _target(
+            "filter inference at most 0.5 ms per question",
+            at_target,
+            inference <= 0.5,
+            f"{inference:.3f} ms (limit 0.5 ms)",
+            value=inference,
+            limit=0.5,
+        )
+    )
     hybrid = by_name["hybrid / (lexical + semantic) at depth"]
     hybrid_limit = 1.2 * hybrid["denominator_ms"] + 1.0
     found.append(

@@ -15,6 +15,7 @@ import httpx
 
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
+from service.evaluation.runner import InferRequest
 
 # The server's own limit on top_k and depth, by default.
 CHUNK_LIMIT = 1000
@@ -62,6 +63,7 @@ class HttpBackend:
         filter: FilterSpec,
         depth: int,
         settings: Mapping[str, object],
+        infer: InferRequest | None = None,
     ) -> list[tuple[str, float]]:
         unsupported = [name for name in SERVER_ONLY_SETTINGS if name in settings]
         if unsupported:
@@ -79,12 +81,33 @@ class HttpBackend:
             }
             if filter is not None:
                 request["filter"] = filter
+            if infer is not None:
+                request["infer_filter"] = dict(infer)
             body = self._send("POST", f"/v1/collections/{self.collection}/search", json=request)
             return [(hit["document_id"], float(hit["score"])) for hit in body["hits"]]
 
         return DocumentRanking(run, CHUNK_LIMIT).rank(depth)
 
+    def inferred_filter(
+        self, text: str, *, infer: InferRequest, filter: FilterSpec
+    ) -> dict[str, object] | None:
+        request: dict[str, Any] = {
+            "query": text,
+            "mode": "lexical",
+            "top_k": 1,
+            "infer_filter": dict(infer),
+        }
+        if filter is not None:
+            request["filter"] = filter
+        body = self._send("POST", f"/v1/collections/{self.collection}/search", json=request)
+        inferred: dict[str, object] | None = body["inferred_filter"]
+        return inferred
+
     def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
+        passing = self.documents_passing(filter)
+        return {doc for doc in doc_ids if doc not in passing}
+
+    def documents_passing(self, filter: FilterSpec) -> set[str]:
         passing: set[str] = set()
         after: str | None = None
         while True:
@@ -98,7 +121,7 @@ class HttpBackend:
             after = page["next_after"]
             if after is None:
                 break
-        return {doc for doc in doc_ids if doc not in passing}
+        return passing
 
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
         return settings_in_effect(self._send("GET", f"/v1/collections/{self.collection}"), settings)

@@ -1,13 +1,16 @@
 """Labeled queries and relevance judgments in the trade's plain file formats.
 
-Queries come as TSV (``qid<TAB>text``) or JSON Lines (``{"id", "text", "filter"?}``), chosen by
-the file's extension; judgments as TREC qrels (``qid iteration docid grade``). Every problem is
-reported with the file and line, because these files are written by hand and a silent skip
+Queries come as TSV (``qid<TAB>text``) or JSON Lines (``{"id", "text", "filter"?, "now"?,
+"qrels"?}``), chosen by the file's extension; judgments as TREC qrels (``qid iteration docid
+grade``), or inline in the JSON Lines as ``"qrels": {docid: grade}``. ``now`` is the moment a
+question was asked, against which inferred filters resolve "the last six months". Every problem
+is reported with the file and line, because these files are written by hand and a silent skip
 would change the numbers.
 """
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 from dataclasses import dataclass
 from pathlib import Path
@@ -33,6 +36,8 @@ class LabeledQuery:
     qid: str
     text: str
     filter: FilterSpec = None
+    now: str | None = None
+    qrels: dict[str, int] | None = None
 
 
 def read_queries(path: str | Path) -> list[LabeledQuery]:
@@ -96,6 +101,11 @@ def read_qrels(path: str | Path) -> dict[str, dict[str, int]]:
     return qrels
 
 
+def inline_qrels(queries: list[LabeledQuery]) -> dict[str, dict[str, int]]:
+    """The judgments the queries carry themselves; a query without any has none."""
+    return {query.qid: dict(query.qrels) for query in queries if query.qrels is not None}
+
+
 def _content_lines(path: Path) -> list[tuple[int, str]]:
     try:
         text = path.read_text(encoding="utf-8-sig")
@@ -146,4 +156,33 @@ def _parse_jsonl_query(path: Path, line_number: int, line: str) -> LabeledQuery:
             line_number,
             f"query {qid!r}: 'filter' must be CQL2 text, a CQL2 JSON object or null",
         )
-    return LabeledQuery(qid, text.strip(), query_filter)
+    now = record.get("now")
+    if now is not None and not _is_instant(now):
+        raise LabelFileError(
+            path,
+            line_number,
+            f"query {qid!r}: 'now' must be an ISO 8601 instant with an offset, such as"
+            " 2025-03-15T12:00:00Z",
+        )
+    qrels = record.get("qrels")
+    if qrels is not None and not (
+        isinstance(qrels, dict)
+        and all(
+            isinstance(doc, str) and isinstance(grade, int) and not isinstance(grade, bool)
+            for doc, grade in qrels.items()
+        )
+    ):
+        raise LabelFileError(
+            path, line_number, f"query {qid!r}: 'qrels' must map document ids to integer grades"
+        )
+    return LabeledQuery(qid, text.strip(), query_filter, now, qrels)
+
+
+def _is_instant(value: object) -> bool:
+    if not isinstance(value, str):
+        return False
+    try:
+        moment = dt.datetime.fromisoformat(value.replace("Z", "+00:00"))
+    except ValueError:
+        return False
+    return moment.tzinfo is not None

@@ -19,6 +19,7 @@ from matplotlib.axes import Axes
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from service.evaluation.filter_agreement import FilterAgreement
 from service.evaluation.runner import EvaluationResult, SystemResult
 
 WORST_QUERY_COUNT = 10
@@ -144,6 +145,8 @@ def _metrics_document(
             }
             for system_result in result.systems
         ],
+        "infer_filter": None if result.infer_filter is None else dict(result.infer_filter),
+        "filter_agreement": _agreement_document(result.filter_agreement),
         "comparisons": [
             {
                 "first": comparison.first,
@@ -157,6 +160,28 @@ def _metrics_document(
     }
 
 
+def _agreement_document(agreement: FilterAgreement | None) -> dict[str, object] | None:
+    if agreement is None:
+        return None
+    return {
+        "exact_share": agreement.exact_share,
+        "excluding_relevant_share": agreement.excluding_share,
+        "mean_jaccard": agreement.mean_jaccard,
+        "per_query": {
+            qid: {
+                "labelled": c.labelled,
+                "inferred": c.inferred,
+                "labelled_documents": c.labelled_documents,
+                "inferred_documents": c.inferred_documents,
+                "exact": c.exact,
+                "excluded_relevant": list(c.excluded_relevant),
+                "jaccard": c.jaccard,
+            }
+            for qid, c in agreement.per_query.items()
+        },
+    }
+
+
 def _markdown(
     result: EvaluationResult,
     title: str,
@@ -167,6 +192,7 @@ def _markdown(
     lines = [f"# {title}", ""]
     lines += _setup_section(result)
     lines += _measures_section(result)
+    lines += _filter_agreement_section(result)
     lines += _comparisons_section(result)
     lines += [f"![Measures with 95% intervals and per-query differences]({picture_name})", ""]
     lines += _settings_section(result)
@@ -217,6 +243,44 @@ def _measures_section(result: EvaluationResult) -> list[str]:
         ]
         lines.append(f"| {_cell(system_result.system.label)} | " + " | ".join(cells) + " |")
     lines.append("")
+    return lines
+
+
+def _filter_agreement_section(result: EvaluationResult) -> list[str]:
+    agreement = result.filter_agreement
+    if agreement is None:
+        return []
+    count = len(agreement.per_query)
+    exact = sum(c.exact for c in agreement.per_query.values())
+    excluding = sum(bool(c.excluded_relevant) for c in agreement.per_query.values())
+    lines = [
+        "## Filter agreement",
+        "",
+        f"Filters inferred from the question (`infer_filter`: `{_compact(result.infer_filter)}`)"
+        " against the labelled ones, compared by the documents each selects.",
+        "",
+        f"- same documents: {agreement.exact_share:.3f} ({exact} of {count} questions)",
+        f"- a relevant document excluded: {agreement.excluding_share:.3f}"
+        f" ({excluding} of {count} questions)",
+        f"- mean Jaccard of the two document sets: {agreement.mean_jaccard:.3f}",
+        "",
+    ]
+    differing = [(qid, c) for qid, c in agreement.per_query.items() if not c.exact]
+    if differing:
+        lines += [
+            "| query | labelled | inferred | documents (labelled / inferred) | Jaccard |"
+            " relevant excluded |",
+            "|---|---|---|---|---|---|",
+        ]
+        for qid, c in differing:
+            labelled = "none" if c.labelled is None else f"`{_cell(_compact(c.labelled))}`"
+            inferred = "none" if c.inferred is None else f"`{_cell(_compact(c.inferred))}`"
+            excluded = ", ".join(f"`{doc}`" for doc in c.excluded_relevant) or "-"
+            lines.append(
+                f"| {qid} | {labelled} | {inferred} | {c.labelled_documents} /"
+                f" {c.inferred_documents} | {c.jaccard:.3f} | {excluded} |"
+            )
+        lines.append("")
     return lines
 
 

@@ -16,6 +16,12 @@ from typing import NamedTuple, Protocol
 
 from tqdm import tqdm
 
+from service.evaluation.filter_agreement import (
+    FilterAgreement,
+    FilterComparison,
+    compare_filters,
+    summarise,
+)
 from service.evaluation.inputs import FilterSpec, LabeledQuery
 from service.evaluation.measures import measure_names, query_measures, relevant_count
 from service.evaluation.significance import bootstrap_interval, paired_randomization_test
@@ -29,6 +35,13 @@ SETTING_MODES: Mapping[str, tuple[str, ...]] = {
 }
 """Per-query settings that ``--set`` may vary, and the modes whose ranking they change."""
 
+FILTER_SOURCES = ("labelled", "inferred", "none")
+"""Which filter a system's queries carry: their own (and the global one), the one inferred from
+the question (and the global one), or the global one alone."""
+
+InferRequest = Mapping[str, object]
+"""The object form of a request's ``infer_filter``: ``{"mode", "now", "using"}``."""
+
 
 class EvaluationBackend(Protocol):
     """The search a collection offers, seen by document."""
@@ -41,12 +54,26 @@ class EvaluationBackend(Protocol):
         filter: FilterSpec,
         depth: int,
         settings: Mapping[str, object],
+        infer: InferRequest | None = None,
     ) -> list[tuple[str, float]]:
-        """Distinct document ids with the score of their best chunk, best first, at most depth."""
+        """Distinct document ids with the score of their best chunk, best first, at most depth.
+
+        ``infer`` asks the search to infer a filter from the text as well (``infer_filter``).
+        """
         ...
 
     def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
         """Those of ``doc_ids`` that the filter excludes (missing documents included)."""
+        ...
+
+    def documents_passing(self, filter: FilterSpec) -> set[str]:
+        """Every document the filter selects (all of them when it is None)."""
+        ...
+
+    def inferred_filter(
+        self, text: str, *, infer: InferRequest, filter: FilterSpec
+    ) -> dict[str, object] | None:
+        """The ``inferred_filter`` a search with ``filter`` reports for the text, or None."""
         ...
 
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
@@ -58,6 +85,8 @@ class System(NamedTuple):
     label: str
     mode: str
     settings: Mapping[str, object]
+    filters: str = "labelled"
+    """One of ``FILTER_SOURCES``."""
 
 
 class Interval(NamedTuple):
@@ -107,12 +136,18 @@ class EvaluationResult:
     """Per query with a filter, the judged documents (any grade) that failed it, when any."""
     dropped_relevant: int
     """How many of the dropped judgments had a positive grade."""
+    infer_filter: InferRequest | None = None
+    filter_agreement: FilterAgreement | None = None
+    """Inferred against labelled filters, when filters were inferred."""
 
 
 def systems_from_options(
-    modes: Sequence[str], set_options: Mapping[str, Sequence[str]]
+    modes: Sequence[str],
+    set_options: Mapping[str, Sequence[str]],
+    filter_sources: Sequence[str] = ("labelled",),
 ) -> list[System]:
-    """One system per mode, times every combination of the ``--set`` values that apply to it.
+    """One system per mode, times every combination of the ``--set`` values that apply to it,
+    times each of ``filter_sources``.
 
     ``rrf_k`` only changes hybrid rankings, so ``--modes lexical,hybrid --set rrf_k=10,60``
     gives one lexical row and two hybrid rows; a setting that applies to none of the modes is an
@@ -140,7 +175,9 @@ def systems_from_options(
         for combination in combinations:
             settings = dict(zip(applicable, combination, strict=True))
             label = " ".join([mode, *(f"{name}={value}" for name, value in settings.items())])
-            systems.append(System(label, mode, settings))
+            for source in filter_sources:
+                named = label if source == "labelled" else f"{label} filter={source}"
+                systems.append(System(named, mode, settings, source))
     return systems
 
 
@@ -154,12 +191,19 @@ def evaluate(
     depth: int = 100,
     global_filter: FilterSpec = None,
     progress: bool = True,
+    infer_filter: InferRequest | None = None,
 ) -> EvaluationResult:
     """Measures of every system on every query that has a positive judgment left.
 
     A judged document that fails the query's filter (the global one and its own) could never be
     retrieved, so it is dropped from that query's judgments rather than counted as a miss; a
-    query left without any relevant document is skipped and counted.
+    query left without any relevant document is skipped and counted. Every system is measured
+    against those same judgments, whatever filter its queries carry.
+
+    With ``infer_filter`` (the object form of the request field), each evaluated query's filter
+    is also inferred from its text, with the global filter as the request's own filter and the
+    query's ``now`` (when it has one), and compared with its labelled filter by the documents
+    both select; systems whose ``filters`` is ``inferred`` search with it applied.
     """
     if not 1 <= k <= depth:
         raise ValueError(f"need 1 <= k <= depth, got k={k} and depth={depth}")
@@ -178,6 +222,9 @@ def evaluate(
     dropped_relevant = 0
     rankings: list[dict[str, list[tuple[str, float]]]] = [{} for _ in systems]
     per_query: list[dict[str, dict[str, float]]] = [{} for _ in systems]
+    if any(system.filters == "inferred" for system in systems) and infer_filter is None:
+        raise ValueError("systems with inferred filters need infer_filter")
+    agreement = _AgreementCounter(backend, global_filter) if infer_filter is not None else None
 
     for query in tqdm(
         queries, desc="evaluating", unit="query", file=sys.stderr, disable=not progress
@@ -198,13 +245,17 @@ def evaluate(
                 continue
         evaluated[query.qid] = query
         effective_judgments[query.qid] = judgments
+        asked = _asked(infer_filter, query)
+        if agreement is not None and asked is not None:
+            agreement.compare(query, asked, judgments)
         for index, system in enumerate(systems):
             ranked = backend.rank_documents(
                 query.text,
                 mode=system.mode,
-                filter=query_filter,
+                filter=query_filter if system.filters == "labelled" else global_filter,
                 depth=depth,
                 settings=system.settings,
+                **({"infer": asked} if system.filters == "inferred" else {}),
             )
             ranked = _checked_ranking(ranked, system.label, query.qid, depth)
             rankings[index][query.qid] = ranked
@@ -241,7 +292,57 @@ def evaluate(
         skipped_after_filter=skipped_after_filter,
         dropped_judgments=dropped_judgments,
         dropped_relevant=dropped_relevant,
+        infer_filter=infer_filter,
+        filter_agreement=None if agreement is None else summarise(agreement.per_query),
     )
+
+
+def _asked(infer_filter: InferRequest | None, query: LabeledQuery) -> InferRequest | None:
+    """The request's ``infer_filter`` for one query: anchored at the query's own ``now``."""
+    if infer_filter is None:
+        return None
+    if query.now is None:
+        return infer_filter
+    return {**infer_filter, "now": query.now}
+
+
+class _AgreementCounter:
+    """Compares each query's inferred filter with its labelled one, by document sets."""
+
+    def __init__(self, backend: EvaluationBackend, global_filter: FilterSpec) -> None:
+        self.backend = backend
+        self.global_filter = global_filter
+        self.per_query: dict[str, FilterComparison] = {}
+        self._passing: dict[str, set[str]] = {}
+
+    def compare(
+        self, query: LabeledQuery, asked: InferRequest, judgments: Mapping[str, int]
+    ) -> None:
+        inferred = self.backend.inferred_filter(
+            query.text, infer={**asked, "mode": "suggest"}, filter=self.global_filter
+        )
+        # In the encoding of the global filter, so that the two can be combined.
+        as_json = isinstance(self.global_filter, dict)
+        inferred_spec: FilterSpec = None
+        if inferred is not None:
+            found = inferred["cql2_json" if as_json else "cql2_text"]
+            if not isinstance(found, str | dict):
+                raise ValueError(f"query {query.qid!r}: the inferred filter has no CQL2 form")
+            inferred_spec = found
+        labelled = combine_filters(self.global_filter, query.filter)
+        self.per_query[query.qid] = compare_filters(
+            query.filter,
+            inferred_spec,
+            self.passing(labelled),
+            self.passing(combine_filters(self.global_filter, inferred_spec)),
+            judgments,
+        )
+
+    def passing(self, filter: FilterSpec) -> set[str]:
+        key = repr(filter)
+        if key not in self._passing:
+            self._passing[key] = self.backend.documents_passing(filter)
+        return self._passing[key]
 
 
 def combine_filters(first: FilterSpec, second: FilterSpec) -> FilterSpec:

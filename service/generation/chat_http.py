@@ -56,18 +56,14 @@ def build_messages(question: str, passages: Sequence[Passage]) -> list[dict[str,
     return [{"role": "system", "content": SYSTEM_PROMPT}, {"role": "user", "content": user}]
 
 
-class ChatHttpGenerator:
+class ChatEndpoint:
     """Posts ``{"model", "messages"}`` and reads ``choices[0].message.content``.
 
     Connect errors, timeouts, 429 and 5xx are retried up to ``max_retries`` times with a
     doubling backoff from ``backoff_seconds`` (a 429's ``Retry-After`` is honoured up to two
     seconds); any other failure, or the last retry's, raises ``GeneratorUnavailable``. The key
     travels only in the ``Authorization`` header: it is kept out of logs, messages and repr.
-    ``evidence_score`` is 1.0 when the endpoint answers and 0.0 when it declines, since the
-    endpoint reports no graded support.
     """
-
-    name = "chat-http"
 
     def __init__(
         self,
@@ -75,7 +71,6 @@ class ChatHttpGenerator:
         model: str,
         api_key: str | None,
         *,
-        token_margin: float,
         timeout_seconds: float,
         max_retries: int,
         client: httpx.Client | None = None,
@@ -86,7 +81,6 @@ class ChatHttpGenerator:
             raise ValueError("max_retries must not be negative")
         self.url = url
         self.model = model
-        self.token_margin = token_margin
         self.timeout_seconds = timeout_seconds
         self.max_retries = max_retries
         self.backoff_seconds = backoff_seconds
@@ -94,21 +88,98 @@ class ChatHttpGenerator:
         self._client = client if client is not None else httpx.Client()
         self._owns_client = client is None
         self._sleep = sleep
-        self._endpoint = _endpoint_label(url)
+        self.label = _endpoint_label(url)
 
     def __repr__(self) -> str:
-        return f"ChatHttpGenerator(endpoint={self._endpoint!r}, model={self.model!r})"
+        return f"ChatEndpoint(endpoint={self.label!r}, model={self.model!r})"
 
     def close(self) -> None:
         if self._owns_client:
             self._client.close()
 
+    def complete(self, messages: list[dict[str, str]]) -> tuple[str, int]:
+        """The reply's text and how many attempts it took."""
+        reply, attempts = self._post({"model": self.model, "messages": messages})
+        return _reply_content(reply, self.label), attempts
+
+    def _post(self, body: dict[str, Any]) -> tuple[Any, int]:
+        headers = {"Content-Type": "application/json"}
+        if self._api_key:
+            headers["Authorization"] = f"Bearer {self._api_key}"
+        attempts = self.max_retries + 1
+        attempt = 0
+        while True:
+            attempt += 1
+            delay = self.backoff_seconds * 2 ** (attempt - 1)
+            try:
+                response = self._client.post(
+                    self.url, json=body, headers=headers, timeout=self.timeout_seconds
+                )
+            except _RETRYABLE_TRANSPORT as exc:
+                failure = type(exc).__name__
+                if attempt == attempts:
+                    raise self._gave_up(attempts, failure) from exc
+            except (httpx.HTTPError, httpx.InvalidURL) as exc:
+                raise GeneratorUnavailable(
+                    f"The generator at {self.label} could not be reached ({type(exc).__name__})."
+                ) from exc
+            else:
+                status = response.status_code
+                if status < 300:
+                    try:
+                        return response.json(), attempt
+                    except ValueError as exc:
+                        raise GeneratorUnavailable(
+                            f"The generator at {self.label} replied with invalid JSON."
+                        ) from exc
+                failure = f"status {status}"
+                if status != 429 and status < 500:
+                    raise GeneratorUnavailable(
+                        f"The generator at {self.label} rejected the request with {failure}."
+                    )
+                if attempt == attempts:
+                    raise self._gave_up(attempts, failure)
+                delay = _retry_after(response, default=delay)
+            delay = min(delay, MAX_BACKOFF_SECONDS)
+            logger.warning(
+                "generator %s attempt %d/%d failed (%s); retrying in %.2fs",
+                self.label,
+                attempt,
+                attempts,
+                failure,
+                delay,
+            )
+            self._sleep(delay)
+
+    def _gave_up(self, attempts: int, failure: str) -> GeneratorUnavailable:
+        return GeneratorUnavailable(
+            f"The generator at {self.label} failed after {attempts} attempt(s) ({failure})."
+        )
+
+
+class ChatHttpGenerator:
+    """Answers through a ``ChatEndpoint`` (see there for retries and the key).
+
+    ``evidence_score`` is 1.0 when the endpoint answers and 0.0 when it declines, since the
+    endpoint reports no graded support.
+    """
+
+    name = "chat-http"
+
+    def __init__(self, endpoint: ChatEndpoint, token_margin: float) -> None:
+        self.endpoint = endpoint
+        self.token_margin = token_margin
+
+    def __repr__(self) -> str:
+        return f"ChatHttpGenerator(endpoint={self.endpoint.label!r}, model={self.endpoint.model!r})"
+
+    def close(self) -> None:
+        self.endpoint.close()
+
     def generate(self, question: str, passages: Sequence[Passage]) -> GeneratedAnswer:
         started = time.perf_counter()
-        body = {"model": self.model, "messages": build_messages(question, passages)}
-        reply, attempts = self._post(body)
+        content, attempts = self.endpoint.complete(build_messages(question, passages))
         notes = [f"{attempts} attempt(s)"] if attempts > 1 else []
-        content = _reply_content(reply, self._endpoint)
         if content.strip().strip(".").upper() == DECLINE_WORD or not content.strip():
             return GeneratedAnswer(
                 answer=None,
@@ -131,61 +202,6 @@ class ChatHttpGenerator:
             evidence_score=1.0,
             notes=tuple(notes),
             milliseconds=(time.perf_counter() - started) * 1000.0,
-        )
-
-    def _post(self, body: dict[str, Any]) -> tuple[Any, int]:
-        headers = {"Content-Type": "application/json"}
-        if self._api_key:
-            headers["Authorization"] = f"Bearer {self._api_key}"
-        attempts = self.max_retries + 1
-        attempt = 0
-        while True:
-            attempt += 1
-            delay = self.backoff_seconds * 2 ** (attempt - 1)
-            try:
-                response = self._client.post(
-                    self.url, json=body, headers=headers, timeout=self.timeout_seconds
-                )
-            except _RETRYABLE_TRANSPORT as exc:
-                failure = type(exc).__name__
-                if attempt == attempts:
-                    raise self._gave_up(attempts, failure) from exc
-            except (httpx.HTTPError, httpx.InvalidURL) as exc:
-                raise GeneratorUnavailable(
-                    f"The generator at {self._endpoint} could not be reached "
-                    f"({type(exc).__name__})."
-                ) from exc
-            else:
-                status = response.status_code
-                if status < 300:
-                    try:
-                        return response.json(), attempt
-                    except ValueError as exc:
-                        raise GeneratorUnavailable(
-                            f"The generator at {self._endpoint} replied with invalid JSON."
-                        ) from exc
-                failure = f"status {status}"
-                if status != 429 and status < 500:
-                    raise GeneratorUnavailable(
-                        f"The generator at {self._endpoint} rejected the request with {failure}."
-                    )
-                if attempt == attempts:
-                    raise self._gave_up(attempts, failure)
-                delay = _retry_after(response, default=delay)
-            delay = min(delay, MAX_BACKOFF_SECONDS)
-            logger.warning(
-                "generator %s attempt %d/%d failed (%s); retrying in %.2fs",
-                self._endpoint,
-                attempt,
-                attempts,
-                failure,
-                delay,
-            )
-            self._sleep(delay)
-
-    def _gave_up(self, attempts: int, failure: str) -> GeneratorUnavailable:
-        return GeneratorUnavailable(
-            f"The generator at {self._endpoint} failed after {attempts} attempt(s) ({failure})."
         )
 
 

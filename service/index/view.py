@@ -3,9 +3,11 @@ the facts it needs beside the index, so that a query reads nothing from the stor
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 
 from service.attributes import Schema
+from service.filters.inference.hints import AttributeHints
 from service.index.analyzer import Analyzer
 from service.index.collection_index import IndexSnapshot
 from service.index.lexical import LexicalScoring
@@ -17,6 +19,7 @@ class CollectionFacts:
     schema: Schema
     cite_attributes: tuple[str, ...]
     answer_caution: str | None
+    inference_hints: Mapping[str, AttributeHints] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)

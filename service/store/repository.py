@@ -112,11 +112,14 @@ def bump_revision(
 
 def collection_state(
     session: Session, collection_id: int
-) -> Row[int, list[str], str | None] | None:
+) -> Row[int, list[str], str | None, dict[str, Any]] | None:
     """The parts of a collection a query reads that can change without a new revision."""
     return session.execute(
         select(
-            CollectionRow.revision, CollectionRow.cite_attributes, CollectionRow.answer_caution
+            CollectionRow.revision,
+            CollectionRow.cite_attributes,
+            CollectionRow.answer_caution,
+            CollectionRow.settings,
         ).where(CollectionRow.id == collection_id)
     ).first()
 

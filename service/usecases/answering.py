@@ -20,6 +20,7 @@ from service.index.view import IndexView
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import RetrievalResult, retrieve
 from service.usecases.callers import Caller, Role
+from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions, check_limits, prepare_query
 from service.usecases.traces import TraceRecorder
@@ -48,6 +49,7 @@ class SearchResult:
     hits: tuple[HitView, ...]
     candidates: int
     trace_id: str
+    inferred_filter: InferredFilter | None = None
 
 
 @dataclass(frozen=True)
@@ -57,6 +59,7 @@ class ContextResult:
     tokens_used: int
     token_budget: int
     trace_id: str
+    inferred_filter: InferredFilter | None = None
 
 
 @dataclass(frozen=True)
@@ -81,6 +84,7 @@ class AnswerResult:
     generator: str
     caution: str | None
     trace_id: str
+    inferred_filter: InferredFilter | None = None
 
 
 @dataclass(frozen=True)
@@ -88,6 +92,7 @@ class _Retrieval:
     view: IndexView
     result: RetrievalResult
     recorder: TraceRecorder
+    inferred: InferredFilter | None
 
 
 def _retrieve(
@@ -104,8 +109,14 @@ def _retrieve(
     check_limits(options, runtime.settings, runtime.embedder.dimensions)
     caller.require_collection(collection)
     view = runtime.indexes.view(collection)
+    using_chat = options.infer_filter.active and options.infer_filter.using == "chat-http"
     prepared = prepare_query(
-        options, view, runtime.embedder, caller.visible_groups, whole_ranking=whole_ranking
+        options,
+        view,
+        runtime.embedder,
+        caller.visible_groups,
+        whole_ranking=whole_ranking,
+        proposer=runtime.generators.filter_proposer() if using_chat else None,
     )
     result = retrieve(view.snapshot, prepared.retrieval)
     for stage in result.stages:
@@ -117,7 +128,7 @@ def _retrieve(
                 prepared.embedding_milliseconds,
                 source=prepared.embedding_source,
             )
-    return _Retrieval(view, result, recorder)
+    return _Retrieval(view, result, recorder, prepared.inferred)
 
 
 def _hit(view: IndexView, row: int, score: float, ranks: Mapping[str, int | None]) -> HitView:
@@ -147,10 +158,11 @@ def search(
     retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=False)
     hits = tuple(_hit(retrieval.view, h.row, h.score, h.ranks) for h in retrieval.result.hits)
     candidates = retrieval.result.candidates
+    inferred = retrieval.inferred
     if not keep_trace:
-        return SearchResult(hits, candidates, "")
+        return SearchResult(hits, candidates, "", inferred)
     recorder.save(runtime.traces, caller, hits=[h.chunk_id for h in hits], candidates=candidates)
-    return SearchResult(hits, candidates, recorder.trace_id)
+    return SearchResult(hits, candidates, recorder.trace_id, inferred)
 
 
 def _check_budget(runtime: Runtime, token_budget: int) -> None:
@@ -218,13 +230,16 @@ def _pack(
     return packed
 
 
-def _context_result(packed: PackedContext, trace_id: str) -> ContextResult:
+def _context_result(
+    packed: PackedContext, trace_id: str, inferred: InferredFilter | None
+) -> ContextResult:
     return ContextResult(
         context=packed.context,
         passages=packed.passages,
         tokens_used=packed.tokens_used,
         token_budget=packed.token_budget,
         trace_id=trace_id,
+        inferred_filter=inferred,
     )
 
 
@@ -242,7 +257,7 @@ def build_context(
     retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
     packed = _pack(runtime, retrieval, token_budget, 1.0)
     recorder.save(runtime.traces, caller, tokens_used=packed.tokens_used)
-    return _context_result(packed, recorder.trace_id)
+    return _context_result(packed, recorder.trace_id, retrieval.inferred)
 
 
 def answer(
@@ -273,6 +288,7 @@ def answer(
             generator=generator.name,
             caution=facts.answer_caution,
             trace_id=recorder.trace_id,
+            inferred_filter=retrieval.inferred,
         )
 
     if retrieval.result.candidates == 0 or not retrieval.result.hits:
@@ -283,7 +299,7 @@ def answer(
     except GeneratorUnavailable as exc:
         recorder.save(runtime.traces, caller, generator_error=exc.message)
         raise GeneratorUnavailable(
-            exc.message, context=_context_result(packed, recorder.trace_id)
+            exc.message, context=_context_result(packed, recorder.trace_id, retrieval.inferred)
         ) from exc
     if generated.answer is None:
         return declined(generated.reason or "insufficient_evidence", packed.passages)
@@ -296,6 +312,7 @@ def answer(
         generator=generator.name,
         caution=facts.answer_caution,
         trace_id=recorder.trace_id,
+        inferred_filter=retrieval.inferred,
     )
 
 

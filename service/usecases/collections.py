@@ -17,6 +17,7 @@ from service.attributes import (
     parse_schema,
 )
 from service.errors import CollectionNotFound, Conflict, InvalidRequest, quoted_names
+from service.filters.inference.hints import HINT_KEYS, HintError, parse_attribute_hints
 from service.store import repository
 from service.store.tables import CollectionRow
 from service.usecases.callers import Caller, Role
@@ -138,6 +139,27 @@ def _checked_retrieval(raw: dict[str, Any], current: dict[str, Any]) -> dict[str
     return merged
 
 
+def _checked_hints(
+    attributes: dict[str, Any], schema: Schema, current: dict[str, Any]
+) -> dict[str, Any]:
+    """The stored hints after a PUT: an attribute the PUT names gets exactly the hints it
+    gives (none when it gives none); the others keep theirs."""
+    hints = {name: given for name, given in current.items() if name in schema}
+    for name, spec in attributes.items():
+        raw = {key: spec[key] for key in HINT_KEYS if isinstance(spec, dict) and key in spec}
+        try:
+            shown = parse_attribute_hints(schema[name], raw).as_json()
+        except HintError as exc:
+            raise InvalidRequest(
+                f"attributes.{name}.{exc.field}: {exc}.", field=f"attributes.{name}.{exc.field}"
+            ) from None
+        if shown:
+            hints[name] = shown
+        else:
+            hints.pop(name, None)
+    return hints
+
+
 def put_collection(
     runtime: Runtime, caller: Caller, name: str, spec: CollectionSpec
 ) -> tuple[bool, dict[str, Any]]:
@@ -198,6 +220,9 @@ def _put_collection(
         )
         current_settings = dict(row.settings) if row else {}
         retrieval = _checked_retrieval(spec.retrieval or {}, current_settings.get("retrieval", {}))
+        hints = _checked_hints(
+            spec.attributes or {}, schema, current_settings.get("inference_hints", {})
+        )
         cite = (
             spec.cite_attributes
             if spec.cite_attributes is not None
@@ -219,7 +244,7 @@ def _put_collection(
                 chunking=chunking,
                 cite_attributes=list(cite),
                 answer_caution=spec.answer_caution,
-                settings={"retrieval": retrieval},
+                settings={"retrieval": retrieval, "inference_hints": hints},
                 embedder=runtime.embedder.name,
                 chunk_generation=0,
                 revision=0,
@@ -240,7 +265,7 @@ def _put_collection(
                 row.answer_caution = spec.answer_caution or None
             row.attributes = schema_json
             row.cite_attributes = list(cite)
-            settings = {**current_settings, "retrieval": retrieval}
+            settings = {**current_settings, "retrieval": retrieval, "inference_hints": hints}
             if rebuild_needed:
                 if chunking == row.chunking:
                     settings.pop("pending_chunking", None)
@@ -325,7 +350,7 @@ def collection_view(
     view: dict[str, Any] = {
         "name": row.name,
         "description": row.description,
-        "attributes": row.attributes,
+        "attributes": _attributes_with_hints(row),
         "chunking": pending or row.chunking,
         "cite_attributes": row.cite_attributes,
         "answer_caution": row.answer_caution,
@@ -342,6 +367,11 @@ def collection_view(
     if pending is not None and caller.visible_groups is None:
         view["rebuild"] = {"done": row.rebuild_done or 0, "total": row.rebuild_total or 0}
     return view
+
+
+def _attributes_with_hints(row: CollectionRow) -> dict[str, Any]:
+    hints = row.settings.get("inference_hints", {})
+    return {name: {**spec, **hints.get(name, {})} for name, spec in row.attributes.items()}
 
 
 def get_collection(runtime: Runtime, caller: Caller, name: str) -> dict[str, Any]:

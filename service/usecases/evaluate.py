@@ -13,6 +13,7 @@ from typing import cast
 
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
+from service.evaluation.runner import InferRequest
 from service.filters.check import check_filter
 from service.filters.parse import parse_filter
 from service.index.lexical import LexicalScoring
@@ -22,6 +23,7 @@ from service.store.filter_sql import compile_filter
 from service.usecases import answering
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.collections import attribute_schema, get_collection, load_collection
+from service.usecases.inference import OFF, infer_options
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions
 
@@ -34,6 +36,15 @@ class StoreBackend:
     def __init__(self, runtime: Runtime, collection: str) -> None:
         self.runtime = runtime
         self.collection = collection
+        self._vectors: dict[str, list[float]] = {}
+
+    def _query_vector(self, text: str, mode: str) -> list[float] | None:
+        """The text's query vector, embedded once for all the searches and systems that ask."""
+        if mode == "lexical":
+            return None
+        if text not in self._vectors:
+            self._vectors[text] = self.runtime.embedder.embed_query(text).tolist()
+        return self._vectors[text]
 
     def rank_documents(
         self,
@@ -43,7 +54,11 @@ class StoreBackend:
         filter: FilterSpec,
         depth: int,
         settings: Mapping[str, object],
+        infer: InferRequest | None = None,
     ) -> list[tuple[str, float]]:
+        infer_filter = OFF if infer is None else infer_options(infer)
+        vector = self._query_vector(text, mode)
+
         def run(chunks: int) -> ChunkHits:
             options = SearchOptions(
                 query=text,
@@ -52,6 +67,8 @@ class StoreBackend:
                 top_k=chunks,
                 depth=chunks,
                 rrf_k=int(settings.get("rrf_k", 60)),  # type: ignore[call-overload]
+                query_vector=vector,
+                infer_filter=infer_filter,
                 scoring=self._scoring(settings),
             )
             result = answering.search(
@@ -75,6 +92,10 @@ class StoreBackend:
         )
 
     def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
+        passing = self.documents_passing(filter)
+        return {doc for doc in doc_ids if doc not in passing}
+
+    def documents_passing(self, filter: FilterSpec) -> set[str]:
         with self.runtime.transaction() as session:
             row = load_collection(session, LOCAL_ADMIN, self.collection)
             if filter is None:
@@ -82,13 +103,29 @@ class StoreBackend:
             else:
                 schema = attribute_schema(row)
                 condition = compile_filter(check_filter(parse_filter(filter), schema), schema)
-            passing = {
+            return {
                 ext
                 for _, ext in repository.matching_document_ids(
                     session, row.id, groups=None, condition=condition
                 )
             }
-        return {doc for doc in doc_ids if doc not in passing}
+
+    def inferred_filter(
+        self, text: str, *, infer: InferRequest, filter: FilterSpec
+    ) -> dict[str, object] | None:
+        """What a search with ``filter`` infers from the text (lexical: nothing to embed)."""
+        options = SearchOptions(
+            query=text,
+            filter=filter,
+            mode="lexical",
+            top_k=1,
+            depth=1,
+            infer_filter=infer_options(infer),
+        )
+        result = answering.search(
+            self.runtime, LOCAL_ADMIN, self.collection, options, keep_trace=False
+        )
+        return None if result.inferred_filter is None else result.inferred_filter.as_json()
 
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
         view = get_collection(self.runtime, LOCAL_ADMIN, self.collection)

@@ -8,8 +8,9 @@ from service.config import Settings
 from service.embedding.base import Embedder
 from service.errors import InvalidRequest
 from service.generation.base import Generator
-from service.generation.chat_http import ChatHttpGenerator
+from service.generation.chat_http import ChatEndpoint, ChatHttpGenerator
 from service.generation.extractive import ExtractiveGenerator
+from service.generation.filter_proposal import ChatFilterProposer
 from service.index.analyzer import Analyzer
 from service.logging_setup import register_secret
 
@@ -23,6 +24,7 @@ class GeneratorRegistry:
         self._settings = settings
         self._embedder = embedder
         self._built: dict[str, Generator] = {}
+        self._proposer: ChatFilterProposer | None = None
         self._lock = threading.Lock()
 
     def get(self, name: str | None) -> Generator:
@@ -36,6 +38,30 @@ class GeneratorRegistry:
                 self._built[chosen] = self._build(chosen)
             return self._built[chosen]
 
+    def filter_proposer(self) -> ChatFilterProposer:
+        """The chat endpoint as asked for filters (``infer_filter`` using chat-http)."""
+        with self._lock:
+            if self._proposer is None:
+                self._proposer = ChatFilterProposer(
+                    self._chat_endpoint("infer_filter.using", "Filter inference with chat-http")
+                )
+            return self._proposer
+
+    def _chat_endpoint(self, field: str, what: str) -> ChatEndpoint:
+        settings = self._settings
+        if not settings.chat_url:
+            raise InvalidRequest(f"{what} is not configured (set EXCERPTA_CHAT_URL).", field=field)
+        api_key = settings.chat_api_key.get_secret_value() if settings.chat_api_key else None
+        if api_key:
+            register_secret(api_key)
+        return ChatEndpoint(
+            settings.chat_url,
+            settings.chat_model,
+            api_key,
+            timeout_seconds=settings.chat_timeout_seconds,
+            max_retries=settings.chat_max_retries,
+        )
+
     def _build(self, name: str) -> Generator:
         settings = self._settings
         embedder = self._embedder
@@ -46,19 +72,5 @@ class GeneratorRegistry:
                 analyzer_tokens=Analyzer.english().tokens,
                 max_sentences=settings.extractive_max_sentences,
             )
-        if not settings.chat_url:
-            raise InvalidRequest(
-                "The chat-http generator is not configured (set EXCERPTA_CHAT_URL).",
-                field="generator",
-            )
-        api_key = settings.chat_api_key.get_secret_value() if settings.chat_api_key else None
-        if api_key:
-            register_secret(api_key)
-        return ChatHttpGenerator(
-            settings.chat_url,
-            settings.chat_model,
-            api_key,
-            token_margin=settings.chat_token_margin,
-            timeout_seconds=settings.chat_timeout_seconds,
-            max_retries=settings.chat_max_retries,
-        )
+        endpoint = self._chat_endpoint("generator", "The chat-http generator")
+        return ChatHttpGenerator(endpoint, settings.chat_token_margin)

@@ -23,6 +23,7 @@ import numpy as np
 
 from service.attributes import AttributeValue, Schema, normalize_value, parse_schema
 from service.errors import CollectionNotFound
+from service.filters.inference.hints import AttributeHints, stored_hints
 from service.index.analyzer import Analyzer, english_stopwords
 from service.index.collection_index import ChunkRecord, CollectionIndex
 from service.index.document_text import gaps_between
@@ -70,6 +71,7 @@ class CollectionUpdate:
     cite_attributes: tuple[str, ...]
     answer_caution: str | None
     revision: int
+    inference_hints: Mapping[str, AttributeHints] = field(default_factory=dict)
     reset: bool = False
     documents: dict[str, list[ChunkRecord]] = field(default_factory=dict)
 
@@ -206,6 +208,7 @@ class IndexRegistry:
             entry.facts,
             cite_attributes=update.cite_attributes,
             answer_caution=update.answer_caution,
+            inference_hints=update.inference_hints,
         )
         entry.checked_at = time.monotonic()
         if update.reset:
@@ -291,6 +294,7 @@ class StoreIndexSource:
                     schema=schema,
                     cite_attributes=tuple(row.cite_attributes),
                     answer_caution=row.answer_caution,
+                    inference_hints=stored_hints(schema, row.settings),
                 ),
                 generation=row.chunk_generation,
                 revision=row.revision,
@@ -321,6 +325,7 @@ class StoreIndexSource:
                 cite_attributes=tuple(state.cite_attributes),
                 answer_caution=state.answer_caution,
                 revision=revision,
+                inference_hints=stored_hints(schema, state.settings),
             )
             if state.revision == revision:
                 return unchanged

@@ -19,13 +19,16 @@ from service.config import Settings
 from service.embedding.base import Embedder
 from service.errors import InvalidRequest, LimitExceeded
 from service.filters.check import check_filter
+from service.filters.inference.engine import node_attributes
 from service.filters.parse import parse_filter
 from service.filters.render import to_text
 from service.filters.syntax import Node, conjunction
 from service.filters.time_window import resolve_time_window
+from service.generation.filter_proposal import ChatFilterProposer
 from service.index.lexical import LexicalScoring
 from service.index.view import IndexView
 from service.retrieval.query import Mode, RetrievalQuery
+from service.usecases.inference import OFF, InferOptions, InferredFilter, infer_for_request
 
 FilterSpec = str | dict[str, Any] | None
 TRACE_TOP_ENTRIES = 20
@@ -54,6 +57,7 @@ class SearchOptions:
     rrf_k: int = 60
     depth: int = 100
     query_vector: Sequence[float] | None = None
+    infer_filter: InferOptions = OFF
     scoring: LexicalScoring | None = None
 
     def as_request(self) -> dict[str, Any]:
@@ -71,6 +75,7 @@ class SearchOptions:
             "query_vector": None
             if self.query_vector is None
             else f"{len(self.query_vector)} floats",
+            "infer_filter": self.infer_filter.as_request(),
         }
 
 
@@ -82,6 +87,7 @@ class PreparedQuery:
     filter_notes: dict[str, Any]
     embedding_milliseconds: float | None
     embedding_source: str
+    inferred: InferredFilter | None = None
 
 
 def check_limits(options: SearchOptions, limits: Settings, dimensions: int) -> None:
@@ -170,13 +176,32 @@ def prepare_query(
     groups: frozenset[str] | None,
     *,
     whole_ranking: bool,
+    proposer: ChatFilterProposer | None = None,
 ) -> PreparedQuery:
     """The checked request as the core's query: filter, query terms and query vector.
 
     ``whole_ranking`` keeps every fused hit up to depth (for packing) instead of ``top_k``.
-    ``check_limits`` must have passed.
+    With ``infer_filter`` on, the filter inferred from the question is found here (with
+    ``proposer`` when it asks for chat-http) and, in ``apply`` mode, ANDed with the request's
+    own filter. ``check_limits`` must have passed.
     """
     node, notes = candidate_filter(options, view)
+    inferred = None
+    if options.infer_filter.active:
+        inferred = infer_for_request(
+            options.query,
+            options.infer_filter,
+            snapshot=view.snapshot,
+            schema=view.facts.schema,
+            hints=view.facts.inference_hints,
+            groups=groups,
+            explicit=node,
+            explicit_attributes=frozenset(node_attributes(node) if node is not None else ()),
+            proposer=proposer,
+        )
+        notes.update(inferred.trace())
+        if options.infer_filter.mode == "apply" and inferred.node is not None:
+            node = inferred.node if node is None else conjunction([node, inferred.node])
     depth = max(options.depth, options.top_k)
     vector = None
     milliseconds = None
@@ -202,4 +227,4 @@ def prepare_query(
         scoring=options.scoring or view.scoring,
         trace_top=TRACE_TOP_ENTRIES,
     )
-    return PreparedQuery(query, notes, milliseconds, source)
+    return PreparedQuery(query, notes, milliseconds, source, inferred)

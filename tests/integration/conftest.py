@@ -28,6 +28,7 @@ from service.config import Settings
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
 from service.usecases.runtime import Runtime
 from tests.api_helpers import Api, make_key
+from tests.chat_endpoint import FakeEndpoint
 
 DEMO_CORPUS = Path(__file__).resolve().parents[2] / "corpus_example"
 DEMO_COLLECTION = "bikes"
@@ -266,3 +267,10 @@ def cranfield_corpus(cranfield_dir: Path) -> dict[str, dict[str, Any]]:
             record = json.loads(line)
             records[record["id"]] = record
     return records
+
+
+@pytest.fixture
+def endpoint() -> Iterator[FakeEndpoint]:
+    """A scripted chat-completions endpoint on 127.0.0.1."""
+    with FakeEndpoint() as running:
+        yield running

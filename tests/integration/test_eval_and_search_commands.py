@@ -10,7 +10,7 @@ from typing import Any
 import pytest
 
 from service.evaluation.inputs import read_qrels, read_queries
-from tests.integration.conftest import CRANFIELD_COLLECTION, DEMO_COLLECTION, CliRun
+from tests.integration.conftest import CRANFIELD_COLLECTION, DEMO_COLLECTION, DEMO_CORPUS, CliRun
 
 pytestmark = [pytest.mark.model]
 
@@ -102,7 +102,8 @@ def test_search_command_prints_a_table_and_json_with_the_routes_body(
         ]
     )
     body = json.loads(as_json.stdout)
-    assert set(body) == {"hits", "candidates", "trace_id"}
+    assert set(body) == {"hits", "candidates", "trace_id", "inferred_filter"}
+    assert body["inferred_filter"] is None
     assert body["hits"][0]["document_id"] == "ridgeline-2022-manual"
     assert all(hit["attributes"]["model_year"] == 2022 for hit in body["hits"])
 
@@ -129,3 +130,61 @@ def test_ask_command_prints_a_cited_answer_with_the_caution(
     assert body["caution"]
     markers = {c["marker"] for c in body["citations"]}
     assert all(f"[{m}]" in body["answer"] for m in markers)
+
+
+def test_search_and_ask_infer_the_filter_and_show_its_words(
+    run_cli: Callable[[list[str]], CliRun], demo: Any
+) -> None:
+    data_dir = str(demo.runtime.settings.data_dir)
+    query = "What tyre pressure should I run on my 2022 Ridgeline?"
+    table = run_cli(
+        ["search", DEMO_COLLECTION, query, "--infer-filter", "apply", "--data-dir", data_dir]
+    )
+    assert table.code == 0, table.stderr[-2000:]
+    lines = table.stdout.splitlines()
+    assert lines[0] == "inferred filter (deterministic): model_year = 2022 AND model = 'Ridgeline'"
+    assert lines[1] == "  model_year = 2022  <- '2022' (year)"
+    assert lines[2] == "  model = 'Ridgeline'  <- 'Ridgeline' (value in the index)"
+    answer = run_cli(
+        ["ask", DEMO_COLLECTION, query, "--infer-filter", "apply", "--json", "--data-dir", data_dir]
+    )
+    assert answer.code == 0, answer.stderr[-2000:]
+    body = json.loads(answer.stdout)
+    assert body["inferred_filter"]["cql2_text"] == "model_year = 2022 AND model = 'Ridgeline'"
+    assert {c["document_id"] for c in body["citations"]} <= {"ridgeline-2022-manual", "sb-2022-03"}
+
+
+def test_inferred_filters_agree_with_the_labelled_ones_and_rank_as_well_on_the_demo(
+    run_cli: Callable[[list[str]], CliRun], demo: Any, tmp_path: Path
+) -> None:
+    """The demo's labelled filter questions: inferred filters select the labelled documents in
+    at least 85% of questions, exclude a relevant document in at most 5%, and hybrid nDCG@10
+    with them is within 0.03 of the labelled filters' and at least 0.10 above no filter."""
+    out = tmp_path / "report"
+    result = run_cli(
+        [
+            "eval",
+            DEMO_COLLECTION,
+            "--data-dir",
+            str(demo.runtime.settings.data_dir),
+            "--queries",
+            str(DEMO_CORPUS / "filter_questions.jsonl"),
+            "--modes",
+            "hybrid",
+            "--infer-filter",
+            "apply",
+            "--out",
+            str(out),
+            "--no-progress",
+        ]
+    )
+    assert result.code == 0, result.stderr[-2000:]
+    metrics = json.loads((out / "metrics.json").read_text(encoding="utf-8"))
+    agreement = metrics["filter_agreement"]
+    assert len(agreement["per_query"]) == len(read_queries(DEMO_CORPUS / "filter_questions.jsonl"))
+    assert agreement["exact_share"] >= 0.85
+    assert agreement["excluding_relevant_share"] <= 0.05
+    ndcg = {system["label"]: system["summary"]["nDCG@10"]["mean"] for system in metrics["systems"]}
+    assert ndcg["hybrid filter=inferred"] >= ndcg["hybrid"] - 0.03
+    assert ndcg["hybrid filter=inferred"] >= ndcg["hybrid filter=none"] + 0.10
+    assert "inferred filters: same documents" in result.stdout

@@ -69,6 +69,7 @@ def test_bench_reports_every_stage_and_reference_at_a_small_size(
     expected_stages = {
         "filter parse+check",
         "filter mask",
+        "filter inference",
         "lexical",
         "lexical okapi",
         "lexical depth",

@@ -20,6 +20,15 @@ COLLECTION_VIEW = {
 }
 
 
+INFERRED = {
+    "cql2_text": "model_year = 2022",
+    "cql2_json": {"op": "=", "args": [{"property": "model_year"}, 2022]},
+    "clauses": [],
+    "dropped": [],
+    "using": "deterministic",
+}
+
+
 class FakeServer:
     def __init__(self, hits: list[tuple[str, float]], document_ids: list[str]) -> None:
         self.hits = hits
@@ -32,7 +41,11 @@ class FakeServer:
         if path == "/v1/collections/bikes/search":
             body = json.loads(request.content)
             hits = [{"document_id": d, "score": s} for d, s in self.hits[: body["top_k"]]]
-            return httpx.Response(200, json={"hits": hits, "candidates": len(self.hits)})
+            inferred = INFERRED if body.get("infer_filter") else None
+            return httpx.Response(
+                200,
+                json={"hits": hits, "candidates": len(self.hits), "inferred_filter": inferred},
+            )
         if path == "/v1/collections/bikes/documents":
             after = request.url.params.get("after")
             rest = [d for d in self.document_ids if after is None or d > after]
@@ -142,3 +155,17 @@ def test_a_server_that_cannot_be_reached_is_reported_as_such() -> None:
 
     with pytest.raises(ServerRefused, match=r"^cannot reach http://excerpta\.test: "):
         backend(unreachable).describe_settings({})
+
+
+def test_an_inferred_filter_is_asked_for_with_the_request_field_and_read_back() -> None:
+    server = FakeServer([("a", 0.9)], ["a", "b", "c"])
+    http = backend(server)
+    asked = {"mode": "suggest", "now": "2025-03-15T12:00:00Z"}
+    assert http.inferred_filter("my 2022 bike", infer=asked, filter="region = 'EU'") == INFERRED
+    sent = json.loads(server.requests[-1].content)
+    assert sent["infer_filter"] == asked and sent["filter"] == "region = 'EU'"
+    http.rank_documents(
+        "my 2022 bike", mode="hybrid", filter=None, depth=1, settings={}, infer={"mode": "apply"}
+    )
+    assert json.loads(server.requests[-1].content)["infer_filter"] == {"mode": "apply"}
+    assert http.documents_passing(None) == {"a", "b", "c"}

@@ -4,7 +4,13 @@ from pathlib import Path
 
 import pytest
 
-from service.evaluation.inputs import LabeledQuery, LabelFileError, read_qrels, read_queries
+from service.evaluation.inputs import (
+    LabeledQuery,
+    LabelFileError,
+    inline_qrels,
+    read_qrels,
+    read_queries,
+)
 
 
 def write(tmp_path: Path, name: str, text: str) -> Path:
@@ -39,6 +45,28 @@ def test_jsonl_queries_carry_text_filters_json_filters_and_none(tmp_path: Path) 
     ]
 
 
+def test_jsonl_queries_may_carry_their_moment_and_their_judgments(tmp_path: Path) -> None:
+    path = write(
+        tmp_path,
+        "q.jsonl",
+        '{"id": "a", "text": "recalls this year", "now": "2025-03-15T12:00:00Z",'
+        ' "qrels": {"sb-1": 2, "sb-2": 0}}\n'
+        '{"id": "b", "text": "no judgments here"}\n',
+    )
+    queries = read_queries(path)
+    assert queries[0] == LabeledQuery(
+        "a", "recalls this year", None, "2025-03-15T12:00:00Z", {"sb-1": 2, "sb-2": 0}
+    )
+    assert inline_qrels(queries) == {"a": {"sb-1": 2, "sb-2": 0}}
+
+
+def test_the_demo_filter_questions_are_read_with_their_judgments() -> None:
+    path = Path(__file__).resolve().parents[2] / "corpus_example" / "filter_questions.jsonl"
+    queries = read_queries(path)
+    assert len(queries) >= 60
+    assert all(query.qrels for query in queries)
+
+
 @pytest.mark.parametrize(
     ("name", "text", "problem"),
     [
@@ -52,6 +80,9 @@ def test_jsonl_queries_carry_text_filters_json_filters_and_none(tmp_path: Path) 
         ("q.jsonl", '{"id": true, "text": "boolean id"}\n', "'id'"),
         ("q.jsonl", '{"id": "1", "text": ""}\n', "'text'"),
         ("q.jsonl", '{"id": "1", "text": "t", "filter": 3}\n', "'filter'"),
+        ("q.jsonl", '{"id": "1", "text": "t", "now": "2025-03-15T12:00"}\n', "'now'"),
+        ("q.jsonl", '{"id": "1", "text": "t", "qrels": {"d": "2"}}\n', "'qrels'"),
+        ("q.jsonl", '{"id": "1", "text": "t", "qrels": ["d"]}\n', "'qrels'"),
     ],
 )
 def test_a_bad_queries_line_is_reported_with_file_and_line(

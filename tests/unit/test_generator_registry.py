@@ -51,6 +51,18 @@ def test_chat_http_is_built_from_its_settings_and_its_key_is_kept_out_of_logs() 
     )
     chosen = generators.get(None)
     assert isinstance(chosen, ChatHttpGenerator)
-    assert (chosen.url, chosen.model) == ("http://127.0.0.1:9/v1/chat", "velo-writer")
-    assert (chosen.timeout_seconds, chosen.max_retries) == (3.5, 1)
+    endpoint = chosen.endpoint
+    assert (endpoint.url, endpoint.model) == ("http://127.0.0.1:9/v1/chat", "velo-writer")
+    assert (endpoint.timeout_seconds, endpoint.max_retries) == (3.5, 1)
     assert redact("sent sk-registry-test-9f2c") == "sent [redacted]"
+
+
+def test_filter_inference_with_chat_http_needs_the_endpoint_and_shares_its_settings() -> None:
+    with pytest.raises(InvalidRequest) as refused:
+        registry().filter_proposer()
+    assert refused.value.extra == {"field": "infer_filter.using"}
+    generators = registry(chat_url="http://127.0.0.1:9/v1/chat", chat_model="velo-writer")
+    proposer = generators.filter_proposer()
+    assert proposer.endpoint.url == "http://127.0.0.1:9/v1/chat"
+    assert proposer.endpoint.model == "velo-writer"
+    assert generators.filter_proposer() is proposer

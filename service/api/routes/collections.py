@@ -27,7 +27,7 @@ def put_collection(
         attributes=(
             None
             if body.attributes is None
-            else {k: v.model_dump() for k, v in body.attributes.items()}
+            else {k: v.model_dump(exclude_none=True) for k, v in body.attributes.items()}
         ),
         remove_attributes=body.remove_attributes,
         chunking=None if body.chunking is None else body.chunking.model_dump(),

@@ -26,6 +26,7 @@ from service.api.schemas import (
     SearchOut,
 )
 from service.usecases import answering
+from service.usecases.inference import infer_options
 from service.usecases.search import SearchOptions, TimeWindow
 
 router = APIRouter(
@@ -51,6 +52,11 @@ def _options(body: SearchIn) -> SearchOptions:
         rrf_k=body.rrf_k,
         depth=body.depth,
         query_vector=body.query_vector,
+        infer_filter=infer_options(
+            body.infer_filter
+            if isinstance(body.infer_filter, str)
+            else body.infer_filter.model_dump(exclude_none=True)
+        ),
     )
 
 

@@ -3,9 +3,17 @@
 The packer is greedy: chunks are taken by descending score (ties by chunk id) and each one is
 either dropped as a near-duplicate of what the context already holds, merged into a passage of
 its own document that it touches, started as a new passage, or skipped because the result would
-not fit. Every decision is made on the fully rendered context, recounted with the collection's
-tokenizer, because a tokenizer may merge tokens across a separator and per-part sums would then
-drift from the count the caller reports.
+not fit.
+
+The context is passages joined by a blank line, each a header line ``[n] label`` joined to its
+text by a line break. The collection's tokenizer (BERT's WordPiece: a normalizer that works one
+character at a time, then a split at whitespace and punctuation before the word pieces) never
+joins characters across a space, tab or line break and counts those as nothing, so text cut
+where one side is such a character counts as the sum of its parts. The packer relies on that:
+it counts each marker ``[n]`` and each header label once, a chunk's text once (not at all when
+the caller passes its stored count), and on a merge only the text the merge adds; it never
+renders or counts the whole context while deciding. ``count_tokens`` must have this property;
+the property tests hold ``tokens_used`` to the real tokenizer's count of the context.
 """
 
 from __future__ import annotations
@@ -23,12 +31,21 @@ Outcome = Literal["included", "merged", "budget", "duplicate"]
 
 HEADER_SEPARATOR = " — "
 PASSAGE_SEPARATOR = "\n\n"
+_MARKER_JOINT = " "
+_HEADER_JOINT = "\n"
 _WHITESPACE = re.compile(r"\s+")
+# Characters the tokenizer splits words at and counts as nothing; other characters Python calls
+# whitespace may be deleted by its normalizer instead (U+000B, U+001C, U+0085), joining words.
+_SPLITS = frozenset(" \t\n\r")
 
 
 @dataclass(frozen=True)
 class PackCandidate:
-    """One ranked chunk offered to the packer; ``vector`` is unit-normalised when present."""
+    """One ranked chunk offered to the packer; ``vector`` is unit-normalised when present.
+
+    ``tokens`` is ``count_tokens(text)`` when the caller already has it (the index stores it
+    for every chunk); the packer counts the text itself when it is None.
+    """
 
     chunk_id: str
     document_id: str
@@ -40,6 +57,7 @@ class PackCandidate:
     char_end: int
     score: float
     vector: npt.NDArray[np.float32] | None = field(default=None, compare=False)
+    tokens: int | None = None
 
 
 @dataclass(frozen=True)
@@ -76,51 +94,73 @@ class PackedContext:
     considered: tuple[PackOutcome, ...]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Draft:
-    """A passage while packing; chunks are kept in document order."""
+    """A passage while packing: its chunks in document order, its text, the tokens of its
+    header label and of its text; ``slot`` is its place among the passages."""
 
     chunks: tuple[PackCandidate, ...]
     text: str
+    label_tokens: int
+    text_tokens: int
+    slot: int
+    char_start: int
+    char_end: int
+    ordinals: frozenset[int]
+
+    @classmethod
+    def of(
+        cls,
+        chunks: tuple[PackCandidate, ...],
+        text: str,
+        tokens: tuple[int, int],
+        slot: int,
+    ) -> _Draft:
+        return cls(
+            chunks=chunks,
+            text=text,
+            label_tokens=tokens[0],
+            text_tokens=tokens[1],
+            slot=slot,
+            char_start=min(c.char_start for c in chunks),
+            char_end=max(c.char_end for c in chunks),
+            ordinals=frozenset(c.ordinal for c in chunks),
+        )
 
     @property
-    def document_id(self) -> str:
-        return self.chunks[0].document_id
-
-    @property
-    def char_start(self) -> int:
-        return min(chunk.char_start for chunk in self.chunks)
-
-    @property
-    def char_end(self) -> int:
-        return max(chunk.char_end for chunk in self.chunks)
+    def body(self) -> int:
+        return self.label_tokens + self.text_tokens
 
     def touches(self, chunk: PackCandidate) -> bool:
-        """Adjacent ordinals or overlapping (or abutting) character spans of the same document."""
-        if chunk.document_id != self.document_id:
-            return False
-        ordinals = {c.ordinal for c in self.chunks}
-        if chunk.ordinal - 1 in ordinals or chunk.ordinal + 1 in ordinals:
-            return True
-        return chunk.char_start <= self.char_end and chunk.char_end >= self.char_start
+        """Adjacent ordinals or overlapping (or abutting) character spans; the caller has
+        already matched the document."""
+        return (
+            chunk.ordinal - 1 in self.ordinals
+            or chunk.ordinal + 1 in self.ordinals
+            or (chunk.char_start <= self.char_end and chunk.char_end >= self.char_start)
+        )
 
 
 def normalize_for_duplicates(text: str) -> str:
     """Casefolded with whitespace collapsed, so reflowed copies of one text compare equal."""
-    return _WHITESPACE.sub(" ", text).strip().casefold()
+    return " ".join(text.split()).casefold()
 
 
-def header_line(marker: int, title: str, section: str | None) -> str:
-    """``[n] Title — section``; line breaks in either part are flattened to keep one line."""
+def header_label(title: str, section: str | None) -> str:
+    """``Title — section``; line breaks in either part are flattened to keep one line."""
     title_line = _WHITESPACE.sub(" ", title).strip()
     section_line = _WHITESPACE.sub(" ", section).strip() if section else ""
     if section_line:
-        return f"[{marker}] {title_line}{HEADER_SEPARATOR}{section_line}"
-    return f"[{marker}] {title_line}"
+        return f"{title_line}{HEADER_SEPARATOR}{section_line}"
+    return title_line
+
+
+def header_line(marker: int, title: str, section: str | None) -> str:
+    return f"[{marker}]{_MARKER_JOINT}{header_label(title, section)}"
 
 
 def render_passage(marker: int, title: str, section: str | None, text: str) -> str:
-    return f"{header_line(marker, title, section)}\n{text}"
+    return f"{header_line(marker, title, section)}{_HEADER_JOINT}{text}"
 
 
 def join_by_offsets(chunks: Sequence[PackCandidate]) -> str:
@@ -148,6 +188,145 @@ def join_by_offsets(chunks: Sequence[PackCandidate]) -> str:
     return "".join(pieces)
 
 
+class _PartCounts:
+    """Token counts of the context's parts, each counted once per packing."""
+
+    def __init__(self, count_tokens: Callable[[str], int]) -> None:
+        self.count = count_tokens
+        self.joints = count_tokens(_MARKER_JOINT) + count_tokens(_HEADER_JOINT)
+        self.separator = count_tokens(PASSAGE_SEPARATOR)
+        self._marker_totals = [0]
+        self._labels: dict[tuple[str, str | None], int] = {}
+
+    def markers(self, passages: int) -> int:
+        """Tokens of the markers ``[1]`` to ``[passages]`` together."""
+        totals = self._marker_totals
+        while len(totals) <= passages:
+            totals.append(totals[-1] + self.count(f"[{len(totals)}]"))
+        return totals[passages]
+
+    def label(self, chunk: PackCandidate) -> int:
+        key = (chunk.title, chunk.section)
+        tokens = self._labels.get(key)
+        if tokens is None:
+            tokens = self._labels[key] = self.count(header_label(chunk.title, chunk.section))
+        return tokens
+
+    def text(self, chunk: PackCandidate) -> int:
+        return chunk.tokens if chunk.tokens is not None else self.count(chunk.text)
+
+    def merged(self, text: str, start: int, touched: Sequence[_Draft]) -> int:
+        """Tokens of a merged passage's ``text``, which begins at ``start`` in its document.
+
+        Where the touched passages' texts lie at their own offsets in ``text``, each cut
+        between them and the new text around them has splitting whitespace on one side, and
+        they do not overlap, only the new text is counted; otherwise all of it is.
+        """
+        pieces: list[tuple[int, int]] = []
+        known = 0
+        cursor = 0
+        for draft in sorted(touched, key=lambda d: d.char_start):
+            offset = draft.char_start - start
+            if (
+                offset < cursor
+                or offset + len(draft.text) > len(text)
+                or text[offset : offset + len(draft.text)] != draft.text
+            ):
+                return self.count(text)
+            pieces.append((cursor, offset))
+            cursor = offset + len(draft.text)
+            known += draft.text_tokens
+        pieces.append((cursor, len(text)))
+        cuts = {cut for piece in pieces for cut in piece} - {0, len(text)}
+        if any(text[cut - 1] not in _SPLITS and text[cut] not in _SPLITS for cut in cuts):
+            return self.count(text)
+        return known + sum(self.count(text[a:b]) for a, b in pieces if b > a)
+
+    def context(self, passages: int, bodies: int) -> int:
+        """Tokens of a context of ``passages`` passages whose labels and texts hold ``bodies``."""
+        if passages == 0:
+            return 0
+        return (
+            self.markers(passages)
+            + passages * self.joints
+            + bodies
+            + (passages - 1) * self.separator
+        )
+
+    def passage(self, marker: int, body: int) -> int:
+        return self.markers(marker) - self.markers(marker - 1) + self.joints + body
+
+
+class _PackedChunks:
+    """What the duplicate test compares a candidate with: the chunks packed before it.
+
+    Texts: two texts can be equal after normalising only if their first and last words are, so
+    a candidate's text is normalised in full only when its end words match a packed chunk's.
+
+    Vectors: every candidate is known in advance, in the order it will be considered, so the
+    cosines are computed a block of candidates at a time: one matrix product of the block with
+    the chunks packed before it, and for each chunk packed inside the block one product with
+    the block's later candidates. Each candidate is compared with exactly the chunks packed
+    before it, at the cost of a few matrix products instead of one per candidate.
+    """
+
+    BLOCK = 64
+
+    def __init__(self, ordered: Sequence[PackCandidate], duplicate_cosine: float) -> None:
+        self._threshold = duplicate_cosine
+        self._texts: set[str] = set()
+        self._ends: set[tuple[str, str]] = set()
+        with_vectors = [position for position, c in enumerate(ordered) if c.vector is not None]
+        self._row_of = [-1] * len(ordered)
+        for row, position in enumerate(with_vectors):
+            self._row_of[position] = row
+        vectors = [c.vector for c in ordered if c.vector is not None]
+        self._matrix = np.zeros((0, 0), dtype=np.float32)
+        if vectors:
+            self._matrix = np.stack(vectors).astype(np.float32, copy=False)
+        self._packed_rows: list[int] = []
+        self._block_start = self._block_end = 0
+        self._best: list[float] = []
+
+    def hold_a_copy_of(self, position: int, chunk: PackCandidate) -> bool:
+        if (
+            _end_words(chunk.text) in self._ends
+            and normalize_for_duplicates(chunk.text) in self._texts
+        ):
+            return True
+        row = self._row_of[position]
+        if row < 0 or not self._packed_rows:
+            return False
+        if row >= self._block_end:
+            end = min(row + self.BLOCK, len(self._matrix))
+            packed = self._matrix[self._packed_rows]
+            self._best = (self._matrix[row:end] @ packed.T).max(axis=1).tolist()
+            self._block_start, self._block_end = row, end
+        return self._best[row - self._block_start] >= self._threshold
+
+    def add(self, position: int, chunk: PackCandidate) -> None:
+        self._texts.add(normalize_for_duplicates(chunk.text))
+        self._ends.add(_end_words(chunk.text))
+        row = self._row_of[position]
+        if row < 0:
+            return
+        self._packed_rows.append(row)
+        if row + 1 < self._block_end:
+            later = self._matrix[row + 1 : self._block_end] @ self._matrix[row]
+            best, offset = self._best, row + 1 - self._block_start
+            for index, similarity in enumerate(later.tolist(), start=offset):
+                if similarity > best[index]:
+                    best[index] = similarity
+
+
+def _end_words(text: str) -> tuple[str, str]:
+    """The first and last words of ``normalize_for_duplicates(text)``."""
+    head = text.split(maxsplit=1)
+    if not head:
+        return ("", "")
+    return (head[0].casefold(), text.rsplit(maxsplit=1)[-1].casefold())
+
+
 def pack_context(
     candidates: Sequence[PackCandidate],
     *,
@@ -170,89 +349,98 @@ def pack_context(
         raise ValueError("token_budget must not be negative")
     if token_margin <= 0:
         raise ValueError("token_margin must be positive")
+    empty = count_tokens("")
+    if empty != 0:
+        raise ValueError(f"count_tokens('') is {empty}: the counter must not pad")
 
     def fits(tokens: int) -> bool:
         return math.ceil(tokens * token_margin) <= token_budget
 
-    drafts: list[_Draft] = []
-    decisions: list[tuple[PackCandidate, Outcome]] = []
-    seen_texts: set[str] = set()
-    seen_vectors: list[npt.NDArray[np.float32]] = []
-
-    def is_duplicate(chunk: PackCandidate) -> bool:
-        if normalize_for_duplicates(chunk.text) in seen_texts:
-            return True
-        if chunk.vector is None or not seen_vectors:
-            return False
-        similarities = np.stack(seen_vectors) @ chunk.vector.astype(np.float32)
-        return bool(np.max(similarities) >= duplicate_cosine)
-
-    def merged_text(chunks: tuple[PackCandidate, ...]) -> str:
-        start = min(c.char_start for c in chunks)
-        end = max(c.char_end for c in chunks)
-        span = document_span(chunks[0].document_id, start, end)
-        return span if span is not None else join_by_offsets(chunks)
-
-    tokens_used = count_tokens("")
-    if not fits(tokens_used):
-        raise ValueError(f"count_tokens('') is {tokens_used}: the counter must not pad")
+    parts = _PartCounts(count_tokens)
     ordered = sorted(candidates, key=lambda c: (-c.score, c.chunk_id))
-    for chunk in ordered:
-        if is_duplicate(chunk):
+    packed = _PackedChunks(ordered, duplicate_cosine)
+    slots: list[_Draft | None] = []
+    by_document: dict[str, list[_Draft]] = {}
+    decisions: list[tuple[PackCandidate, Outcome]] = []
+    passages = bodies = tokens_used = 0
+    for position, chunk in enumerate(ordered):
+        if packed.hold_a_copy_of(position, chunk):
             decisions.append((chunk, "duplicate"))
             continue
-        touched = [index for index, draft in enumerate(drafts) if draft.touches(chunk)]
+        family = by_document.setdefault(chunk.document_id, [])
+        touched = sorted((d for d in family if d.touches(chunk)), key=lambda d: d.slot)
+        outcome: Outcome
         if touched:
-            absorbed = [c for index in touched for c in drafts[index].chunks]
-            chunks = tuple(sorted([*absorbed, chunk], key=lambda c: (c.char_start, c.ordinal)))
-            merged = _Draft(chunks=chunks, text=merged_text(chunks))
-            trial = [draft for index, draft in enumerate(drafts) if index not in touched[1:]]
-            trial[touched[0]] = merged
-            outcome: Outcome = "merged"
+            chunks = tuple(
+                sorted(
+                    [*(c for d in touched for c in d.chunks), chunk],
+                    key=lambda c: (c.char_start, c.ordinal),
+                )
+            )
+            start = min(c.char_start for c in chunks)
+            end = max(c.char_end for c in chunks)
+            text = document_span(chunk.document_id, start, end)
+            if text is None:
+                text = join_by_offsets(chunks)
+            tokens = (parts.label(chunks[0]), parts.merged(text, start, touched))
+            trial_passages = passages - len(touched) + 1
+            trial_bodies = bodies - sum(d.body for d in touched) + sum(tokens)
+            trial_tokens = parts.context(trial_passages, trial_bodies)
+            if not fits(trial_tokens):
+                decisions.append((chunk, "budget"))
+                continue
+            draft = _Draft.of(chunks, text, tokens, touched[0].slot)
+            for old in touched:
+                slots[old.slot] = None
+                family.remove(old)
+            slots[draft.slot] = draft
+            outcome = "merged"
         else:
-            trial = [*drafts, _Draft(chunks=(chunk,), text=chunk.text)]
+            text_tokens = parts.text(chunk)
+            trial_passages = passages + 1
+            # Without the label the count is a lower bound: most chunks that do not fit are
+            # turned away before their header is counted.
+            if not fits(parts.context(trial_passages, bodies + text_tokens)):
+                decisions.append((chunk, "budget"))
+                continue
+            tokens = (parts.label(chunk), text_tokens)
+            trial_bodies = bodies + sum(tokens)
+            trial_tokens = parts.context(trial_passages, trial_bodies)
+            if not fits(trial_tokens):
+                decisions.append((chunk, "budget"))
+                continue
+            draft = _Draft.of((chunk,), chunk.text, tokens, len(slots))
+            slots.append(draft)
             outcome = "included"
-        trial_tokens = count_tokens(_render(trial))
-        if not fits(trial_tokens):
-            decisions.append((chunk, "budget"))
-            continue
-        drafts = trial
-        tokens_used = trial_tokens
+        family.append(draft)
+        passages, bodies, tokens_used = trial_passages, trial_bodies, trial_tokens
         decisions.append((chunk, outcome))
-        seen_texts.add(normalize_for_duplicates(chunk.text))
-        if chunk.vector is not None:
-            seen_vectors.append(chunk.vector.astype(np.float32))
+        packed.add(position, chunk)
 
-    context = _render(drafts)
-    passages = tuple(
+    drafts = [draft for draft in slots if draft is not None]
+    result = tuple(
         Passage(
             marker=marker,
-            document_id=draft.document_id,
+            document_id=draft.chunks[0].document_id,
             title=draft.chunks[0].title,
             section=draft.chunks[0].section,
             chunk_ids=tuple(c.chunk_id for c in draft.chunks),
             text=draft.text,
-            tokens=count_tokens(
-                render_passage(marker, draft.chunks[0].title, draft.chunks[0].section, draft.text)
-            ),
+            tokens=parts.passage(marker, draft.body),
             char_start=draft.char_start,
             char_end=draft.char_end,
         )
         for marker, draft in enumerate(drafts, start=1)
     )
+    context = PASSAGE_SEPARATOR.join(
+        render_passage(p.marker, p.title, p.section, p.text) for p in result
+    )
     return PackedContext(
         context=context,
-        passages=passages,
+        passages=result,
         tokens_used=tokens_used,
         token_budget=token_budget,
-        considered=_outcomes(decisions, passages),
-    )
-
-
-def _render(drafts: Sequence[_Draft]) -> str:
-    return PASSAGE_SEPARATOR.join(
-        render_passage(marker, draft.chunks[0].title, draft.chunks[0].section, draft.text)
-        for marker, draft in enumerate(drafts, start=1)
+        considered=_outcomes(decisions, result),
     )
 
 

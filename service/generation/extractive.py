@@ -30,6 +30,11 @@ from service.packing.packer import Passage
 DEFAULT_EVIDENCE_THRESHOLD = 0.45
 DEFAULT_TERM_WEIGHT = 0.1
 DEFAULT_KEEP_RATIO = 0.8
+# At most this many sentences are embedded per answer. Embedding is the generator's cost (on the
+# development machine tens of sentences a second), while a context at the largest budget holds
+# hundreds of sentences. On the demo questions a 1,000-token context (the default budget) held
+# at most 44 distinct sentences, so answers at the default budget never meet the bound.
+DEFAULT_MAX_EMBEDDED_SENTENCES = 48
 
 # A sentence ends at ., ! or ? (optionally followed by closing quotes or brackets) when
 # whitespace and then an upper-case letter, a digit or an opening quote follow.
@@ -145,9 +150,12 @@ class ExtractiveGenerator:
         evidence_threshold: float = DEFAULT_EVIDENCE_THRESHOLD,
         term_weight: float = DEFAULT_TERM_WEIGHT,
         keep_ratio: float = DEFAULT_KEEP_RATIO,
+        max_embedded_sentences: int = DEFAULT_MAX_EMBEDDED_SENTENCES,
     ) -> None:
         if max_sentences < 1:
             raise ValueError("max_sentences must be at least 1")
+        if max_embedded_sentences < max_sentences:
+            raise ValueError("max_embedded_sentences must be at least max_sentences")
         if not 0.0 <= term_weight <= 1.0:
             raise ValueError("term_weight must lie in [0, 1]")
         self._embed_query = embed_query
@@ -157,6 +165,7 @@ class ExtractiveGenerator:
         self.evidence_threshold = evidence_threshold
         self.term_weight = term_weight
         self.keep_ratio = keep_ratio
+        self.max_embedded_sentences = max_embedded_sentences
 
     def score_sentences(
         self, question: str, passages: Sequence[Passage]
@@ -177,14 +186,8 @@ class ExtractiveGenerator:
                 sentences.append(_Sentence(passage.marker, position, text))
         if not sentences:
             return sentences, np.zeros(0, dtype=np.float64)
-        query_vector = _unit(np.asarray(self._embed_query(question), dtype=np.float64))
-        sentence_vectors = np.asarray(
-            self._embed_texts([s.text for s in sentences]), dtype=np.float64
-        )
-        norms = np.linalg.norm(sentence_vectors, axis=1, keepdims=True)
-        sentence_vectors = sentence_vectors / np.where(norms > 0, norms, 1.0)
-        semantic = sentence_vectors @ query_vector
         question_terms = set(self._analyzer_tokens(question))
+        overlap = np.zeros(len(sentences), dtype=np.float64)
         if question_terms:
             overlap = np.array(
                 [
@@ -193,8 +196,17 @@ class ExtractiveGenerator:
                 ],
                 dtype=np.float64,
             )
-        else:
-            overlap = np.zeros(len(sentences), dtype=np.float64)
+        if len(sentences) > self.max_embedded_sentences:
+            kept = np.sort(np.argsort(-overlap, kind="stable")[: self.max_embedded_sentences])
+            sentences = [sentences[i] for i in kept]
+            overlap = overlap[kept]
+        query_vector = _unit(np.asarray(self._embed_query(question), dtype=np.float64))
+        sentence_vectors = np.asarray(
+            self._embed_texts([s.text for s in sentences]), dtype=np.float64
+        )
+        norms = np.linalg.norm(sentence_vectors, axis=1, keepdims=True)
+        sentence_vectors = sentence_vectors / np.where(norms > 0, norms, 1.0)
+        semantic = sentence_vectors @ query_vector
         scores = (1.0 - self.term_weight) * semantic + self.term_weight * overlap
         return sentences, scores
 

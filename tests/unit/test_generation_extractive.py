@@ -153,3 +153,39 @@ def test_a_sentence_score_mixes_similarity_and_term_overlap_as_documented():
     terms = set(analyzer_tokens(question))
     overlap = len(terms & set(analyzer_tokens(first))) / len(terms)
     assert scores[0] == pytest.approx(0.75 * cosine + 0.25 * overlap)
+
+
+def test_only_the_bounded_number_of_sentences_is_embedded_chosen_by_term_overlap():
+    """Sixty filler sentences and, in the last passage, the one that answers: the bound keeps
+    every sentence sharing a question term, fills up with the earliest others, and the answer
+    is still found."""
+    filler = " ".join(f"Section {n} lists part number {n}." for n in range(30))
+    passages = [
+        passage(1, filler, "parts-a"),
+        passage(2, filler.replace("Section", "Table"), "parts-b"),
+        passage(3, "Replace brake pads when they are worn to 1 mm.", "brakes"),
+    ]
+    embedded: list[str] = []
+
+    def counting_embed_texts(texts: Sequence[str]) -> np.ndarray:
+        embedded.extend(texts)
+        return embed_texts(texts)
+
+    gen = ExtractiveGenerator(
+        embed,
+        counting_embed_texts,
+        analyzer_tokens,
+        evidence_threshold=0.5,
+        max_embedded_sentences=10,
+    )
+    sentences, _ = gen.score_sentences("When are brake pads worn?", passages)
+    assert len(embedded) == len(sentences) == 10
+    assert embedded[-1] == "Replace brake pads when they are worn to 1 mm."
+    assert embedded[:9] == [f"Section {n} lists part number {n}." for n in range(9)]
+    answer = gen.generate("When are brake pads worn?", passages)
+    assert answer.answer == "Replace brake pads when they are worn to 1 mm [3]."
+
+
+def test_a_sentence_bound_below_the_answer_length_is_refused():
+    with pytest.raises(ValueError, match="max_embedded_sentences"):
+        generator(max_sentences=4, max_embedded_sentences=3)

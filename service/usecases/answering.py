@@ -196,6 +196,7 @@ def _pack(
                 char_end=chunk.char_end,
                 score=hit.score,
                 vector=snapshot.vector(hit.row),
+                tokens=chunk.tokens,
             )
         )
     # Merged spans come from the snapshot that ranked the chunks, never from the store, which

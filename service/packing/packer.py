@@ -320,11 +320,20 @@ class _PackedChunks:
 
 
 def _end_words(text: str) -> tuple[str, str]:
-    """The first and last words of ``normalize_for_duplicates(text)``."""
-    head = text.split(maxsplit=1)
-    if not head:
-        return ("", "")
-    return (head[0].casefold(), text.rsplit(maxsplit=1)[-1].casefold())
+    """The first and last words of ``normalize_for_duplicates(text)``.
+
+    Each is looked for in the text's first or last 64 characters, and in the whole text only
+    when no whitespace ends it there.
+    """
+    head = text[:64].split(maxsplit=1)
+    if len(head) < 2:
+        head = text.split(maxsplit=1)
+        if not head:
+            return ("", "")
+    tail = text[-64:].rsplit(maxsplit=1)
+    if len(tail) < 2:
+        tail = text.rsplit(maxsplit=1)
+    return (head[0].casefold(), tail[-1].casefold())
 
 
 def pack_context(
@@ -368,7 +377,9 @@ def pack_context(
             decisions.append((chunk, "duplicate"))
             continue
         family = by_document.setdefault(chunk.document_id, [])
-        touched = sorted((d for d in family if d.touches(chunk)), key=lambda d: d.slot)
+        touched = []
+        if family:
+            touched = sorted((d for d in family if d.touches(chunk)), key=lambda d: d.slot)
         outcome: Outcome
         if touched:
             chunks = tuple(

@@ -110,6 +110,13 @@ class RowPrefix(Sequence[T]):
         for position in range(self._length):
             yield self._items[position]
 
+    def take(self, rows: Sequence[int]) -> list[T]:
+        """The items at ``rows`` (each within the prefix), without a call per item."""
+        if rows and not (0 <= min(rows) and max(rows) < self._length):
+            raise IndexError("a row lies outside the prefix")
+        items = self._items
+        return [items[row] for row in rows]
+
 
 @dataclass(frozen=True)
 class AccessGroups:

@@ -9,16 +9,17 @@ recorded in the trace before the result is returned.
 from __future__ import annotations
 
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
 from service.generation.base import GeneratedAnswer, Generator
+from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
-from service.retrieval.query import RetrievalResult, retrieve
+from service.retrieval.query import Hit, RetrievalResult, retrieve
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
@@ -175,30 +176,48 @@ def _check_budget(runtime: Runtime, token_budget: int) -> None:
         )
 
 
+def pack_candidates(snapshot: IndexSnapshot, hits: Sequence[Hit]) -> list[PackCandidate]:
+    """The packer's view of ranked hits: each chunk's text, place, stored token count and
+    vector, read from the snapshot the hits came from (the bench packs the same way)."""
+    rows = [hit.row for hit in hits]
+    vectors = snapshot.vectors.rows
+    return [
+        PackCandidate(
+            chunk_id=chunk_id,
+            document_id=document_id,
+            title=title,
+            section=section,
+            text=text,
+            ordinal=ordinal,
+            char_start=char_start,
+            char_end=char_end,
+            score=hit.score,
+            vector=vectors[hit.row],
+            tokens=tokens,
+        )
+        for hit, chunk_id, document_id, title, section, text, ordinal, char_start, char_end, tokens in zip(
+            hits,
+            snapshot.chunk_ids.take(rows),
+            snapshot.document_ids.take(rows),
+            snapshot.titles.take(rows),
+            snapshot.sections.take(rows),
+            snapshot.texts.take(rows),
+            snapshot.ordinals[rows].tolist(),
+            snapshot.char_starts[rows].tolist(),
+            snapshot.char_ends[rows].tolist(),
+            snapshot.token_counts[rows].tolist(),
+            strict=True,
+        )
+    ]
+
+
 def _pack(
     runtime: Runtime, retrieval: _Retrieval, token_budget: int, token_margin: float
 ) -> PackedContext:
     """Pack the fused ranking, best first, into the budget."""
-    snapshot = retrieval.view.snapshot
     started = time.perf_counter()
-    candidates = []
-    for hit in retrieval.result.hits:
-        chunk = snapshot.record(hit.row)
-        candidates.append(
-            PackCandidate(
-                chunk_id=chunk.chunk_id,
-                document_id=chunk.document_id,
-                title=chunk.title,
-                section=chunk.section,
-                text=chunk.text,
-                ordinal=chunk.ordinal,
-                char_start=chunk.char_start,
-                char_end=chunk.char_end,
-                score=hit.score,
-                vector=snapshot.vector(hit.row),
-                tokens=chunk.tokens,
-            )
-        )
+    snapshot = retrieval.view.snapshot
+    candidates = pack_candidates(snapshot, retrieval.result.hits)
     # Merged spans come from the snapshot that ranked the chunks, never from the store, which
     # may hold a newer version of the document by now.
     packed = pack_context(

@@ -1,8 +1,9 @@
 import threading
 
 import numpy as np
+import pytest
 
-from service.index.collection_index import ChunkRecord, CollectionIndex
+from service.index.collection_index import ChunkRecord, CollectionIndex, RowPrefix
 from service.retrieval.query import candidate_mask
 from service.retrieval.ranking import lexical_ranking
 
@@ -142,3 +143,14 @@ def test_a_query_during_a_replace_sees_exactly_the_old_or_the_new_chunks() -> No
         reader.join(timeout=10)
     assert seen and not inconsistent
     assert set(seen) <= {("old text",) * 3, ("new text",) * 5}
+
+
+def test_a_row_prefix_takes_rows_inside_it_and_refuses_rows_a_later_snapshot_added():
+    items = ["a", "b", "c", "d"]
+    prefix = RowPrefix(items, 3)
+    assert prefix.take([2, 0, 2]) == ["c", "a", "c"]
+    assert prefix.take([]) == []
+    with pytest.raises(IndexError):
+        prefix.take([1, 3])
+    with pytest.raises(IndexError):
+        prefix.take([-1])

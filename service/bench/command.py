@@ -1,7 +1,8 @@
 """``excerpta bench``: argument parsing and the run that prints and returns every figure.
 
 Exit status: 0 when the run completed (targets are reported, not enforced, in process),
-1 when the HTTP run saw an error or could not run, 2 on bad arguments.
+1 when the HTTP run saw an error or could not run or the in-process run's reference libraries
+(the ``bench`` extra) are missing, 2 on bad arguments.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ from typing import Any
 
 from threadpoolctl import threadpool_limits
 
+from service.bench.references import require_reference_libraries
 from service.bench.report import machine, print_http, print_machine, print_model, print_size
 from service.bench.synthetic import check_parameters, make_queries
 from service.bench.verdicts import http_targets, model_targets, ratios, targets
@@ -93,6 +95,8 @@ def _progress(line: str) -> None:
 
 def run_bench(args: argparse.Namespace) -> dict[str, Any]:
     """Run what ``args`` ask for, print it, and return every figure."""
+    if not args.http:
+        require_reference_libraries()
     info = machine()
     print_machine(info, print)
     results: dict[str, Any] = {

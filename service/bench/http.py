@@ -1,10 +1,12 @@
 """``excerpta bench --http``: the real server, a scratch store, and concurrent clients.
 
-The collection is written straight through the store layer with random unit vectors stored as
-its chunks' embeddings, so ingest needs no model; requests carry ``query_vector`` so queries need
-none either (the server still loads its model at start). Each concurrency level runs its
-clients, one thread and one keep-alive connection each, for a bounded time; the server is
-stopped at the end whatever happens.
+The collection is created by the service's own use case; its synthetic rows (made by the index's
+row builder, see ``service.bench.synthetic``) are then written straight through the store layer
+with random unit vectors stored as their embeddings, so nothing is embedded (the runtime that
+creates the collection loads the model all the same, as the server does at start); requests
+carry ``query_vector`` so queries need no embedding either.
+Each concurrency level runs its clients, one thread and one keep-alive connection each, for a
+bounded time; the server is stopped at the end whatever happens.
 """
 
 from __future__ import annotations
@@ -30,26 +32,26 @@ from sqlalchemy.orm import Session
 from threadpoolctl import threadpool_limits
 
 from service.bench.client import KeepAliveClient, ProtocolError, build_request
-from service.bench.inprocess import hybrid_query
+from service.bench.inprocess import SERVICE_BLAS_THREADS, hybrid_query
 from service.bench.synthetic import (
     CHUNKS_PER_DOCUMENT,
     QuerySet,
     SyntheticCollection,
-    document_id_of,
+    collection_analyzer,
+    document_text,
     make_collection,
 )
 from service.bench.timing import WARMUP_CALLS, Summary
 from service.config import Settings
-from service.index.analyzer import Analyzer
-from service.index.collection_index import ChunkRecord, CollectionIndex
+from service.index.collection_index import CollectionIndex
 from service.store import repository
-from service.store.db import make_engine, migrate, session_factory, unit_of_work
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
 from service.usecases import keys
-from service.usecases.collections import DEFAULT_CHUNKING, DEFAULT_RETRIEVAL
+from service.usecases.callers import LOCAL_ADMIN
+from service.usecases.collections import CollectionSpec, put_collection
+from service.usecases.runtime import Runtime, load_embedder
 
 COLLECTION = "bench"
-EMBEDDER_NAME = "minilm"
 EMBEDDER_DIMENSIONS = 384
 READY_TIMEOUT_SECONDS = 300.0
 FIRST_QUERY_TIMEOUT_SECONDS = 600.0
@@ -57,7 +59,6 @@ REQUEST_TIMEOUT_SECONDS = 60.0
 STOP_TIMEOUT_SECONDS = 15.0
 ERROR_SAMPLES = 5
 ROUND_SECONDS = 1.0
-SERVER_BLAS_THREADS = Settings().blas_threads or None
 _INSERT_BATCH = 5_000
 
 Progress = Callable[[str], None]
@@ -73,35 +74,31 @@ def _chunk_hash(chunk_id: str) -> str:
     return hashlib.sha256(f"bench:{chunk_id}".encode()).hexdigest()
 
 
-def write_collection(session: Session, collection: SyntheticCollection) -> None:
-    """The synthetic rows as documents, chunks and stored embeddings of one collection."""
-    now = repository.utcnow()
-    row = CollectionRow(
-        name=COLLECTION,
-        description="Synthetic benchmark collection",
-        attributes={},
-        chunking=dict(DEFAULT_CHUNKING),
-        cite_attributes=[],
-        answer_caution=None,
-        settings={"retrieval": dict(DEFAULT_RETRIEVAL)},
-        embedder=EMBEDDER_NAME,
-        chunk_generation=0,
-        revision=0,
-        created_at=now,
-        updated_at=now,
+def write_collection(runtime: Runtime, collection: SyntheticCollection) -> None:
+    """A collection of default settings made by the service, then the synthetic rows as its
+    documents, chunks and stored embeddings."""
+    put_collection(
+        runtime, LOCAL_ADMIN, COLLECTION, CollectionSpec(description="Synthetic bench collection")
     )
-    session.add(row)
-    session.flush()
+    with runtime.transaction() as session:
+        row = repository.collection_by_name(session, COLLECTION)
+        assert row is not None
+        _write_rows(session, row, collection)
+        repository.bump_revision(session, row, [(None, "reset")])
+
+
+def _write_rows(session: Session, row: CollectionRow, collection: SyntheticCollection) -> None:
+    now = repository.utcnow()
     records = collection.records
     documents = []
     for first in range(0, len(records), CHUNKS_PER_DOCUMENT):
         chunks = records[first : first + CHUNKS_PER_DOCUMENT]
-        text = " ".join(r.text for r in chunks)
+        text = document_text(collection, chunks[0].document_id)
         documents.append(
             {
                 "id": first // CHUNKS_PER_DOCUMENT + 1,
                 "collection_id": row.id,
-                "external_id": document_id_of(first // CHUNKS_PER_DOCUMENT),
+                "external_id": chunks[0].document_id,
                 "title": chunks[0].title,
                 "media_type": "text/plain",
                 "source_url": None,
@@ -122,7 +119,7 @@ def write_collection(session: Session, collection: SyntheticCollection) -> None:
         [
             {
                 "document_id": index // CHUNKS_PER_DOCUMENT + 1,
-                "generation": 0,
+                "generation": row.chunk_generation,
                 "ordinal": r.ordinal,
                 "text": r.text,
                 "char_start": r.char_start,
@@ -139,7 +136,7 @@ def write_collection(session: Session, collection: SyntheticCollection) -> None:
         EmbeddingRow,
         [
             {
-                "embedder": EMBEDDER_NAME,
+                "embedder": row.embedder,
                 "text_hash": _chunk_hash(r.chunk_id),
                 "dimensions": collection.dimension,
                 "vector": np.asarray(r.vector, dtype=np.float32).tobytes(),
@@ -147,7 +144,6 @@ def write_collection(session: Session, collection: SyntheticCollection) -> None:
             for r in records
         ],
     )
-    repository.bump_revision(session, row, [(None, "reset")])
 
 
 def _insert(session: Session, table: type, rows: Sequence[dict[str, Any]]) -> None:
@@ -155,29 +151,9 @@ def _insert(session: Session, table: type, rows: Sequence[dict[str, Any]]) -> No
         session.execute(insert(table), list(rows[start : start + _INSERT_BATCH]))
 
 
-def analysed_index(collection: SyntheticCollection, analyzer: Analyzer) -> CollectionIndex:
-    """The index the server builds from the store: title, section and text through the analyzer."""
-    records = [
-        ChunkRecord(
-            chunk_id=r.chunk_id,
-            document_id=r.document_id,
-            ordinal=r.ordinal,
-            title=r.title,
-            section=r.section,
-            text=r.text,
-            char_start=r.char_start,
-            char_end=r.char_end,
-            tokens=r.tokens,
-            lexical_tokens=analyzer.tokens("\n".join(p for p in (r.title, r.section, r.text) if p)),
-            vector=r.vector,
-        )
-        for r in collection.records
-    ]
-    return CollectionIndex.build(records, metric="cosine", dimension=collection.dimension)
-
-
 class InProcessHybrid:
-    """The hybrid query on the index the server builds, with the queries it analyses.
+    """The hybrid query on the index the server builds (the same rows, from the same row
+    builder and analyzer), with the queries analysed as the server does.
 
     It is timed in rounds between the one-client rounds over HTTP, so that both figures come
     from the same stretches of time on a machine whose speed drifts.
@@ -186,20 +162,23 @@ class InProcessHybrid:
     def __init__(
         self, collection: SyntheticCollection, queries: QuerySet, *, top_k: int, depth: int
     ) -> None:
-        analyzer = Analyzer.english()
-        self._snapshot = analysed_index(collection, analyzer).snapshot()
+        analyzer = collection_analyzer()
+        index = CollectionIndex.build(
+            collection.records, metric="cosine", dimension=collection.dimension
+        )
+        self._snapshot = index.snapshot()
         self._tokens = [analyzer.tokens(text) for text in queries.texts]
         self._vectors = list(queries.vectors)
         self._top_k = top_k
         self._depth = depth
         self.timings: list[float] = []
-        with threadpool_limits(limits=SERVER_BLAS_THREADS):
+        with threadpool_limits(limits=SERVICE_BLAS_THREADS):
             for i in range(min(WARMUP_CALLS, len(self._tokens))):
                 self._query(i)
 
     def time_round(self) -> None:
         # With the BLAS threads the server gives each query, so the two agree.
-        with threadpool_limits(limits=SERVER_BLAS_THREADS):
+        with threadpool_limits(limits=SERVICE_BLAS_THREADS):
             for i in range(len(self._tokens)):
                 started = time.perf_counter_ns()
                 self._query(i)
@@ -233,7 +212,7 @@ class Server:
                 "EXCERPTA_HOST": "127.0.0.1",
                 "EXCERPTA_PORT": str(self.port),
                 "EXCERPTA_AUTH": "required",
-                "EXCERPTA_BLAS_THREADS": str(SERVER_BLAS_THREADS),
+                "EXCERPTA_BLAS_THREADS": str(SERVICE_BLAS_THREADS),
                 "EXCERPTA_RATE_LIMIT_PER_SECOND": "0",
             }
         )
@@ -431,18 +410,18 @@ def run_http(
 
     with tempfile.TemporaryDirectory(prefix="excerpta-bench-") as scratch:
         data_dir = Path(scratch)
-        engine = make_engine(f"sqlite:///{(data_dir / 'excerpta.db').as_posix()}")
+        settings = Settings(
+            data_dir=data_dir, database_url=f"sqlite:///{(data_dir / 'excerpta.db').as_posix()}"
+        )
+        runtime = Runtime(settings, load_embedder(settings))
         try:
-            migrate(engine)
-            sessions = session_factory(engine)
-            with unit_of_work(sessions) as session:
-                write_collection(session, collection)
-            with unit_of_work(sessions) as session:
+            write_collection(runtime, collection)
+            with runtime.transaction() as session:
                 key, _ = keys.create_key(
                     session, role="reader", groups=[], collections=None, name="bench"
                 )
         finally:
-            engine.dispose()
+            runtime.close()
         progress(f"{chunks:,} chunks written to the scratch store; starting the server")
         server = Server(data_dir, free_port())
         levels = []

@@ -5,6 +5,11 @@ references run in the same process, on the same token lists and vectors, with th
 thread pool. Lexical and semantic stages are timed at ``top_k`` (the depth the references
 return); the hybrid query runs at the service's default depth, and its comparison uses the
 lexical and semantic stages timed at that depth too.
+
+The packing stages pack each query's hybrid ranking, retrieved by the service's retrieval entry
+at the stage's depth, as the context route does: candidates read from the snapshot with their
+stored token counts (``pack_candidates``), the bundled model's WordPiece tokenizer, the
+documents' texts for merges, and the BLAS threads the server gives a query.
 """
 
 from __future__ import annotations
@@ -12,11 +17,12 @@ from __future__ import annotations
 import gc
 import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from functools import partial
 from typing import Any
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from service.bench.inference import time_inference
 from service.bench.references import (
@@ -31,24 +37,30 @@ from service.bench.synthetic import (
     SELECTIVITIES_PER_MILLE,
     THREE_CLAUSE_FILTER,
     QuerySet,
+    SyntheticCollection,
+    document_text,
     make_collection,
+    model_token_counter,
     selected_rows,
     selectivity_filters,
     selectivity_label,
 )
 from service.bench.timing import Summary, resident_bytes, time_each
+from service.bench.verdicts import PACKING_TARGETS, packing_key
+from service.config import Settings
 from service.filters.check import check_filter
 from service.filters.evaluate import evaluate
 from service.filters.parse import parse_filter
 from service.filters.syntax import Node
 from service.index.collection_index import CollectionIndex, IndexSnapshot
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalScoring
-from service.packing.packer import PackCandidate, PackedContext, pack_context
-from service.retrieval.query import RetrievalQuery, RetrievalResult, retrieve
+from service.packing.packer import PackedContext, pack_context
+from service.retrieval.query import Hit, RetrievalQuery, RetrievalResult, retrieve
 from service.retrieval.ranking import Ranking, fuse_rrf, lexical_ranking, semantic_ranking
+from service.usecases.answering import pack_candidates
 
 RRF_K = 60
-TOKEN_BUDGET = 1000
+SERVICE_BLAS_THREADS = Settings().blas_threads or None
 RANK_BM25_MAX_CHUNKS = 100_000
 OKAPI = LexicalScoring(variant="okapi")
 
@@ -72,34 +84,25 @@ def _top(ranking: Ranking) -> TopK:
     return TopK(ranking.rows, ranking.scores)
 
 
-def count_words(text: str) -> int:
-    """Whitespace words: the packer's token counter when no model tokenizer is loaded."""
-    return len(text.split())
+def pack_hits(
+    collection: SyntheticCollection,
+    snapshot: IndexSnapshot,
+    hits: Sequence[Hit],
+    token_budget: int,
+) -> PackedContext:
+    """Pack ranked hits as the context route does; each document's text is looked up once."""
+    texts: dict[str, str] = {}
 
+    def document_span(document_id: str, start: int, end: int) -> str:
+        if document_id not in texts:
+            texts[document_id] = document_text(collection, document_id)
+        return texts[document_id][start:end]
 
-def pack_ranking(snapshot: IndexSnapshot, ranking: Ranking) -> PackedContext:
-    """Pack a fused ranking as the context route does, with texts and vectors from the index."""
-    vectors = snapshot.vectors.rows
-    candidates = [
-        PackCandidate(
-            chunk_id=snapshot.chunk_ids[row],
-            document_id=snapshot.document_ids[row],
-            title=snapshot.titles[row],
-            section=snapshot.sections[row],
-            text=snapshot.texts[row],
-            ordinal=int(snapshot.ordinals[row]),
-            char_start=int(snapshot.char_starts[row]),
-            char_end=int(snapshot.char_ends[row]),
-            score=float(score),
-            vector=vectors[row],
-        )
-        for row, score in zip(ranking.rows.tolist(), ranking.scores.tolist(), strict=True)
-    ]
     return pack_context(
-        candidates,
-        token_budget=TOKEN_BUDGET,
-        count_tokens=count_words,
-        document_span=lambda document_id, start, end: None,
+        pack_candidates(snapshot, hits),
+        token_budget=token_budget,
+        count_tokens=model_token_counter().count,
+        document_span=document_span,
     )
 
 
@@ -110,8 +113,10 @@ def hybrid_query(
     *,
     top_k: int,
     depth: int,
+    keep: int | None = None,
 ) -> RetrievalResult:
-    """The whole in-process hybrid query over every live row, as the search route runs it."""
+    """The whole in-process hybrid query over every live row, as the search route runs it
+    (``keep=depth`` returns the whole fused ranking, as the context route asks)."""
     query = RetrievalQuery(
         mode="hybrid",
         tokens=tuple(tokens),
@@ -121,7 +126,7 @@ def hybrid_query(
         top_k=top_k,
         depth=depth,
         rrf_k=RRF_K,
-        keep=top_k,
+        keep=top_k if keep is None else keep,
         scoring=LexicalScoring(),
     )
     return retrieve(snapshot, query)
@@ -220,13 +225,18 @@ def run_size(
         vectors, lambda v: semantic_ranking(snapshot, v, live, depth)
     )
     pairs = list(zip(lexical_deep, semantic_deep, strict=True))
-    stages["fusion"], fused = time_each(pairs, lambda pair: fuse_rrf(list(pair), RRF_K, depth))
-    stages["packing"], packed = time_each(fused, lambda ranking: pack_ranking(snapshot, ranking))
-    notes["packing"] = {
-        "token_budget": TOKEN_BUDGET,
-        "token_counter": "whitespace words",
-        "median_passages": float(np.median([len(p.passages) for p in packed])),
-    }
+    stages["fusion"], _ = time_each(pairs, lambda pair: fuse_rrf(list(pair), RRF_K, depth))
+    for candidates, budget, _ in PACKING_TARGETS:
+        key = packing_key(candidates, budget)
+        found = [
+            hybrid_query(snapshot, t, v, top_k=candidates, depth=candidates, keep=candidates).hits
+            for t, v in zip(tokens, vectors, strict=True)
+        ]
+        with threadpool_limits(limits=SERVICE_BLAS_THREADS):
+            stages[key], packed = time_each(
+                found, partial(pack_hits, collection, snapshot, token_budget=budget)
+            )
+        notes[key] = _packing_notes(found, packed, budget)
     stages["hybrid"], _ = time_each(
         range(count),
         lambda i: hybrid_query(snapshot, tokens[i], vectors[i], top_k=top_k, depth=depth),
@@ -276,6 +286,25 @@ def run_size(
         "references": {name: summary.as_dict() for name, summary in references.items()},
         "rankings": rankings,
         "notes": notes,
+    }
+
+
+def _packing_notes(
+    found: Sequence[Sequence[Hit]], packed: Sequence[PackedContext], budget: int
+) -> dict[str, Any]:
+    def median_of(values: list[int]) -> float:
+        return float(np.median(values))
+
+    return {
+        "token_budget": budget,
+        "token_counter": "the bundled model's WordPiece tokenizer",
+        "blas_threads": SERVICE_BLAS_THREADS,
+        "median_candidates": median_of([len(hits) for hits in found]),
+        "median_passages": median_of([len(p.passages) for p in packed]),
+        "median_tokens_used": median_of([p.tokens_used for p in packed]),
+        "median_merged": median_of(
+            [sum(o.outcome == "merged" for o in p.considered) for p in packed]
+        ),
     }
 
 

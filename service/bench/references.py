@@ -12,10 +12,29 @@
 
 from __future__ import annotations
 
+import importlib
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+
+REFERENCE_LIBRARIES = ("rank_bm25", "bm25s")
+
+
+def require_reference_libraries() -> None:
+    """Refuse to start without the libraries the in-process run compares with."""
+    missing = []
+    for module in REFERENCE_LIBRARIES:
+        try:
+            importlib.import_module(module)
+        except ImportError:
+            missing.append(module)
+    if missing:
+        raise RuntimeError(
+            f"the bench compares with {' and '.join(missing)}, which "
+            f"{'is' if len(missing) == 1 else 'are'} not installed; install the bench extra: "
+            "pip install -e '.[bench]' (in a checkout) or pip install 'excerpta[bench]'"
+        )
 
 
 def top_k(scores: np.ndarray, k: int) -> np.ndarray:

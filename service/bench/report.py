@@ -21,7 +21,8 @@ _STAGE_LABELS = {
     "lexical depth": "lexical, smoothed idf, at depth",
     "semantic depth": "semantic 100%, at depth",
     "fusion": "fusion (RRF of both at depth)",
-    "packing": "packing (fused ranking)",
+    "packing 100 into 1,000": "packing 100 candidates, 1,000 tokens",
+    "packing 1,000 into 32,768": "packing 1,000 candidates, 32,768 tokens",
     "hybrid": "hybrid query, whole, in process",
 }
 
@@ -110,6 +111,14 @@ def print_size(figures: dict[str, Any], write: Write) -> None:
         f"  three-clause filter: {figures['notes']['filter']['text']} "
         f"({figures['notes']['filter']['selected']:,} rows)"
     )
+    for name, note in figures["notes"].items():
+        if name.startswith("packing "):
+            write(
+                f"  {name} tokens: median {note['median_candidates']:g} candidates, "
+                f"{note['median_passages']:g} passages, {note['median_tokens_used']:g} tokens "
+                f"used, {note['median_merged']:g} chunks merged ({note['token_counter']}; "
+                f"BLAS threads {note['blas_threads'] or 'the library default'})"
+            )
     write("  ratios (our median / reference median):")
     for entry in figures["ratios"]:
         write(

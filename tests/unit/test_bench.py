@@ -11,6 +11,7 @@ import contextlib
 import io
 import json
 import math
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -24,6 +25,7 @@ from service.bench.synthetic import (
     SELECTIVITIES_PER_MILLE,
     make_collection,
     make_queries,
+    model_token_counter,
     selected_rows,
     selectivity_filters,
 )
@@ -75,7 +77,8 @@ def test_bench_reports_every_stage_and_reference_at_a_small_size(
         "lexical depth",
         "semantic depth",
         "fusion",
-        "packing",
+        "packing 100 into 1,000",
+        "packing 1,000 into 32,768",
         "hybrid",
         *(f"semantic {p / 10:g}%" for p in SELECTIVITIES_PER_MILLE),
     }
@@ -119,6 +122,14 @@ def test_target_verdicts_follow_the_reported_figures(small_run: tuple[dict[str, 
     hybrid_target = by_name["hybrid in process at most 1.2x (lexical + semantic) + 1 ms"]
     assert hybrid_target["limit"] == pytest.approx(1.2 * parts + 1.0)
     assert hybrid_target["met"] is (hybrid <= 1.2 * parts + 1.0)
+    for candidates, budget, limit in ((100, 1_000, 1.0), (1_000, 32_768, 50.0)):
+        packing = _median(size, f"stages/packing {candidates:,} into {budget:,}")
+        target = by_name[
+            f"packing {candidates:,} candidates into {budget:,} tokens at most {limit:g} ms"
+        ]
+        assert (target["value"], target["limit"]) == (packing, limit)
+        assert target["met"] is (packing <= limit)
+        assert f"{packing:.3f} ms (limit {limit:g} ms)" in printed
     memory = size["memory"]
     memory_ratio = memory["rss_delta_bytes"] / (
         memory["raw_vector_bytes"] + memory["postings_bytes"]
@@ -128,6 +139,33 @@ def test_target_verdicts_follow_the_reported_figures(small_run: tuple[dict[str, 
     for target in size["targets"]:
         mark = "[met]" if target["met"] else "[NOT MET]"
         assert f"{mark}" in printed and target["target"] in printed
+
+
+def test_packing_stages_pack_the_whole_ranking_with_the_model_tokenizer(
+    small_run: tuple[dict[str, Any], str],
+) -> None:
+    results, printed = small_run
+    (size,) = results["sizes"]
+    for candidates, budget in ((100, 1_000), (1_000, 32_768)):
+        note = size["notes"][f"packing {candidates:,} into {budget:,}"]
+        assert note["median_candidates"] == candidates
+        assert 0 < note["median_tokens_used"] <= budget
+        assert note["median_passages"] >= 1
+        assert "WordPiece" in note["token_counter"]
+    assert "packing 1,000 into 32,768 tokens: median 1000 candidates" in printed
+
+
+def test_stored_token_counts_are_the_model_tokenizers_counts_of_the_text() -> None:
+    collection = make_collection(40, 4, seed=2)
+    counter = model_token_counter()
+    for record in collection.records[::7]:
+        assert record.tokens == counter.count(record.text)
+        assert record.chunk_id == f"{record.document_id}#{record.ordinal:04d}"
+        assert record.lexical_tokens == [
+            "document",
+            record.document_id[3:].lstrip("0") or "0",
+            *record.text.split(),
+        ]
 
 
 def test_lexical_and_semantic_rankings_agree_with_the_references(
@@ -197,3 +235,16 @@ def test_summary_percentiles_interpolate_linearly() -> None:
     summary = Summary.of([float(v) for v in range(1, 102)])
     assert (summary.median_ms, summary.p95_ms, summary.p99_ms) == (51.0, 96.0, 100.0)
     assert math.isclose(Summary.of([2.0]).p99_ms, 2.0)
+
+
+@pytest.mark.parametrize("missing", ["bm25s", "rank_bm25"])
+def test_without_a_reference_library_the_bench_names_the_extra_and_exits_1(
+    missing: str, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    monkeypatch.setitem(sys.modules, missing, None)  # makes ``import`` raise ImportError
+    code = run_bench_command(_parse(["--chunks", "2000", "--queries", "3"]))
+    captured = capsys.readouterr()
+    assert code == 1
+    assert missing in captured.err
+    assert "pip install -e '.[bench]'" in captured.err
+    assert captured.out == ""

@@ -280,13 +280,15 @@ ODD_TITLES = ["Manual", "", "Quick\nstart", "  Straße & Café — guide ", "自
 ODD_SECTIONS = [None, "", "Brakes > Pads", "Wartung\tund\nPflege", " Σ "]
 
 
+Span = Callable[[str, int, int], str | None]
+
+
 @st.composite
-def odd_candidate_sets(
-    draw: st.DrawFn,
-) -> tuple[list[PackCandidate], dict[str, str]]:
+def odd_candidate_sets(draw: st.DrawFn) -> tuple[list[PackCandidate], Span]:
     """Documents of odd words and gaps, cut into overlapping or gapped windows that may start
     or end anywhere, some texts copied in reflowed and recased form under another document,
-    some vectors near copies of others, some stored counts passed in."""
+    some vectors near copies of others, some stored counts passed in; the documents' texts are
+    available to merges or not."""
     documents: dict[str, str] = {}
     candidates: list[PackCandidate] = []
     rng = np.random.default_rng(draw(st.integers(0, 2**16)))
@@ -341,6 +343,11 @@ def odd_candidate_sets(
             vectors[position] = vectors[draw(st.integers(0, len(candidates) - 1))]
             vectors[position] += rng.normal(scale=0.01, size=6).astype(np.float32)
     vectors /= np.linalg.norm(vectors, axis=1, keepdims=True)
+    available = draw(st.booleans())
+
+    def span(document_id: str, start: int, end: int) -> str | None:
+        return documents[document_id][start:end] if available else None
+
     return [
         replace(
             candidate,
@@ -348,14 +355,11 @@ def odd_candidate_sets(
             tokens=count_tokens(candidate.text) if draw(st.booleans()) else None,
         )
         for position, candidate in enumerate(candidates)
-    ], documents
+    ], span
 
 
 def pack_both(
-    candidates: list[PackCandidate],
-    budget: int,
-    margin: float,
-    span: Callable[[str, int, int], str | None],
+    candidates: list[PackCandidate], span: Span, budget: int, margin: float
 ) -> tuple[PackedContext, PackedContext]:
     """The packer's result and the reference's, on the same input."""
     packed = pack_context(
@@ -376,24 +380,11 @@ def pack_both(
 
 
 @settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(
-    odd_candidate_sets(),
-    st.integers(0, 400),
-    st.sampled_from([1.0, 1.1, 1.25]),
-    st.booleans(),
-)
+@given(odd_candidate_sets(), st.integers(0, 400), st.sampled_from([1.0, 1.1, 1.25]))
 def test_packing_by_parts_decides_as_the_whole_context_recount_and_counts_what_it_returns(
-    generated: tuple[list[PackCandidate], dict[str, str]],
-    budget: int,
-    margin: float,
-    documents_available: bool,
+    generated: tuple[list[PackCandidate], Span], budget: int, margin: float
 ):
-    candidates, documents = generated
-
-    def span(document_id: str, start: int, end: int) -> str | None:
-        return documents[document_id][start:end] if documents_available else None
-
-    packed, expected = pack_both(candidates, budget, margin, span)
+    packed, expected = pack_both(*generated, budget, margin)
 
     assert packed.tokens_used == count_tokens(packed.context)
     assert math.ceil(packed.tokens_used * margin) <= budget
@@ -421,7 +412,7 @@ def test_many_passages_count_their_markers_past_one_digit():
         for number in range(120)
     ]
     for budget in (0, 700, 5000, 100_000):
-        packed, expected = pack_both(candidates, budget, 1.0, lambda d, s, e: None)
+        packed, expected = pack_both(candidates, lambda d, s, e: None, budget, 1.0)
         assert packed == expected
         assert packed.tokens_used == count_tokens(packed.context) <= budget
     assert len(packed.passages) > 100

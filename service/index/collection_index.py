@@ -112,7 +112,7 @@ class RowPrefix(Sequence[T]):
 
     def take(self, rows: Sequence[int]) -> list[T]:
         """The items at ``rows`` (each within the prefix), without a call per item."""
-        if rows and not (0 <= min(rows) and max(rows) < self._length):
+        if rows and (min(rows) < 0 or max(rows) >= self._length):
             raise IndexError("a row lies outside the prefix")
         items = self._items
         return [items[row] for row in rows]

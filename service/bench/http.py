@@ -34,6 +34,7 @@ from threadpoolctl import threadpool_limits
 from service.bench.client import KeepAliveClient, ProtocolError, build_request
 from service.bench.inprocess import SERVICE_BLAS_THREADS, hybrid_query
 from service.bench.synthetic import (
+    BENCH_RETRIEVAL,
     CHUNKS_PER_DOCUMENT,
     QuerySet,
     SyntheticCollection,
@@ -75,11 +76,10 @@ def _chunk_hash(chunk_id: str) -> str:
 
 
 def write_collection(runtime: Runtime, collection: SyntheticCollection) -> None:
-    """A collection of default settings made by the service, then the synthetic rows as its
-    documents, chunks and stored embeddings."""
-    put_collection(
-        runtime, LOCAL_ADMIN, COLLECTION, CollectionSpec(description="Synthetic bench collection")
-    )
+    """The collection made by the service with the bench's settings, then the synthetic rows
+    as its documents, chunks and stored embeddings."""
+    spec = CollectionSpec(description="Synthetic bench collection", retrieval=BENCH_RETRIEVAL)
+    put_collection(runtime, LOCAL_ADMIN, COLLECTION, spec)
     with runtime.transaction() as session:
         row = repository.collection_by_name(session, COLLECTION)
         assert row is not None

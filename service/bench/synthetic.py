@@ -162,9 +162,12 @@ def _term_tokens() -> np.ndarray:
     return np.asarray(counts, dtype=np.int64)
 
 
+BENCH_RETRIEVAL = {**DEFAULT_RETRIEVAL, "stemming": False}
+
+
 def collection_analyzer() -> Analyzer:
-    """The analyzer of a collection created with the default settings."""
-    return analyzer_for(DEFAULT_RETRIEVAL)
+    """The analyzer of a collection created with ``BENCH_RETRIEVAL``."""
+    return analyzer_for(BENCH_RETRIEVAL)
 
 
 def row_attributes(places: np.ndarray, rng: np.random.Generator) -> list[dict[str, AttributeValue]]:
@@ -230,7 +233,7 @@ def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection
             chunk=span,
             vector=vectors[row],
         )
-        lexical = [shared.setdefault(token, token) for token in record.lexical_tokens]
+        lexical = list(map(shared.setdefault, record.lexical_tokens, record.lexical_tokens))
         records.append(replace(record, lexical_tokens=lexical))
         char_start += len(text) + 1
     return SyntheticCollection(size, dimension, vectors, places, records)

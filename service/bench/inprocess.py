@@ -8,8 +8,8 @@ lexical and semantic stages timed at that depth too.
 
 The packing stages pack each query's hybrid ranking, retrieved by the service's retrieval entry
 at the stage's depth, as the context route does: candidates read from the snapshot with their
-stored token counts (``pack_candidates``), the bundled model's WordPiece tokenizer, the
-documents' texts for merges, and the BLAS threads the server gives a query.
+stored token counts (``pack_candidates``), the bundled model's WordPiece tokenizer, merged
+spans rebuilt from the snapshot, and the BLAS threads the server gives a query.
 """
 
 from __future__ import annotations
@@ -37,8 +37,6 @@ from service.bench.synthetic import (
     SELECTIVITIES_PER_MILLE,
     THREE_CLAUSE_FILTER,
     QuerySet,
-    SyntheticCollection,
-    document_text,
     make_collection,
     model_token_counter,
     selected_rows,
@@ -84,25 +82,13 @@ def _top(ranking: Ranking) -> TopK:
     return TopK(ranking.rows, ranking.scores)
 
 
-def pack_hits(
-    collection: SyntheticCollection,
-    snapshot: IndexSnapshot,
-    hits: Sequence[Hit],
-    token_budget: int,
-) -> PackedContext:
-    """Pack ranked hits as the context route does; each document's text is looked up once."""
-    texts: dict[str, str] = {}
-
-    def document_span(document_id: str, start: int, end: int) -> str:
-        if document_id not in texts:
-            texts[document_id] = document_text(collection, document_id)
-        return texts[document_id][start:end]
-
+def pack_hits(snapshot: IndexSnapshot, hits: Sequence[Hit], token_budget: int) -> PackedContext:
+    """Pack ranked hits as the context route does."""
     return pack_context(
         pack_candidates(snapshot, hits),
         token_budget=token_budget,
         count_tokens=model_token_counter().count,
-        document_span=document_span,
+        document_span=snapshot.document_span,
     )
 
 
@@ -234,7 +220,7 @@ def run_size(
         ]
         with threadpool_limits(limits=SERVICE_BLAS_THREADS):
             stages[key], packed = time_each(
-                found, partial(pack_hits, collection, snapshot, token_budget=budget)
+                found, partial(pack_hits, snapshot, token_budget=budget)
             )
         notes[key] = _packing_notes(found, packed, budget)
     stages["hybrid"], _ = time_each(

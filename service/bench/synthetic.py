@@ -237,6 +237,7 @@ def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection
             access=(),
             chunk=span,
             vector=vectors[row],
+            gap_after=" " if ordinal < CHUNKS_PER_DOCUMENT - 1 and row < size - 1 else "",
         )
         lexical = list(map(shared.setdefault, record.lexical_tokens, record.lexical_tokens))
         records.append(replace(record, lexical_tokens=lexical))
@@ -245,7 +246,7 @@ def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection
 
 
 def document_text(collection: SyntheticCollection, document_id: str) -> str:
-    """A document's text: its chunks joined by one space, as their offsets say."""
+    """A document's text: its chunks joined by one space, as their offsets and gaps say."""
     document = int(document_id.removeprefix("doc"))
     first = document * CHUNKS_PER_DOCUMENT
     return " ".join(r.text for r in collection.records[first : first + CHUNKS_PER_DOCUMENT])

@@ -180,6 +180,18 @@ def pack_candidates(snapshot: IndexSnapshot, hits: Sequence[Hit]) -> list[PackCa
     """The packer's view of ranked hits: each chunk's text, place, stored token count and
     vector, read from the snapshot the hits came from (the bench packs the same way)."""
     rows = [hit.row for hit in hits]
+    columns = zip(
+        snapshot.chunk_ids.take(rows),
+        snapshot.document_ids.take(rows),
+        snapshot.titles.take(rows),
+        snapshot.sections.take(rows),
+        snapshot.texts.take(rows),
+        snapshot.ordinals[rows].tolist(),
+        snapshot.char_starts[rows].tolist(),
+        snapshot.char_ends[rows].tolist(),
+        snapshot.token_counts[rows].tolist(),
+        strict=True,
+    )
     vectors = snapshot.vectors.rows
     return [
         PackCandidate(
@@ -189,24 +201,14 @@ def pack_candidates(snapshot: IndexSnapshot, hits: Sequence[Hit]) -> list[PackCa
             section=section,
             text=text,
             ordinal=ordinal,
-            char_start=char_start,
-            char_end=char_end,
+            char_start=start,
+            char_end=end,
             score=hit.score,
             vector=vectors[hit.row],
             tokens=tokens,
         )
-        for hit, chunk_id, document_id, title, section, text, ordinal, char_start, char_end, tokens in zip(
-            hits,
-            snapshot.chunk_ids.take(rows),
-            snapshot.document_ids.take(rows),
-            snapshot.titles.take(rows),
-            snapshot.sections.take(rows),
-            snapshot.texts.take(rows),
-            snapshot.ordinals[rows].tolist(),
-            snapshot.char_starts[rows].tolist(),
-            snapshot.char_ends[rows].tolist(),
-            snapshot.token_counts[rows].tolist(),
-            strict=True,
+        for hit, (chunk_id, document_id, title, section, text, ordinal, start, end, tokens) in zip(
+            hits, columns, strict=True
         )
     ]
 

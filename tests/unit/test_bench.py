@@ -23,6 +23,7 @@ from service.bench.references import TopK, agreement, top_k
 from service.bench.synthetic import (
     SCHEMA,
     SELECTIVITIES_PER_MILLE,
+    document_text,
     make_collection,
     make_queries,
     model_token_counter,
@@ -34,6 +35,7 @@ from service.filters.check import check_filter
 from service.filters.columns import AttributeColumns
 from service.filters.evaluate import evaluate
 from service.filters.parse import parse_filter
+from service.index.collection_index import CollectionIndex
 
 
 def _parse(argv: list[str]) -> argparse.Namespace:
@@ -153,6 +155,14 @@ def test_packing_stages_pack_the_whole_ranking_with_the_model_tokenizer(
         assert note["median_passages"] >= 1
         assert "WordPiece" in note["token_counter"]
     assert "packing 1,000 into 32,768 tokens: median 1000 candidates" in printed
+
+
+def test_the_snapshot_rebuilds_each_synthetic_document_as_the_store_holds_it() -> None:
+    collection = make_collection(25, 4, seed=1)
+    snapshot = CollectionIndex.build(collection.records, metric="cosine", dimension=4).snapshot()
+    for document_id in ("doc00000000", "doc00000001", "doc00000002"):
+        text = document_text(collection, document_id)
+        assert snapshot.document_span(document_id, 0, len(text)) == text
 
 
 def test_stored_token_counts_are_the_model_tokenizers_counts_of_the_text() -> None:

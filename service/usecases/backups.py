@@ -23,6 +23,10 @@ from service.store.opening import cause
 from service.usecases.callers import Caller, Role
 from service.usecases.runtime import Runtime
 
+SQLITE_MEDIA_TYPE = "application/vnd.sqlite3"
+POSTGRES_MEDIA_TYPE = "application/gzip"
+BACKUP_MEDIA_TYPES = (SQLITE_MEDIA_TYPE, POSTGRES_MEDIA_TYPE)
+
 
 @dataclass(frozen=True)
 class BackupFile:
@@ -51,7 +55,7 @@ def make_backup(runtime: Runtime, caller: Caller) -> BackupFile:
     except BaseException:
         shutil.rmtree(folder, ignore_errors=True)
         raise
-    media_type = "application/vnd.sqlite3" if is_sqlite else "application/gzip"
+    media_type = SQLITE_MEDIA_TYPE if is_sqlite else POSTGRES_MEDIA_TYPE
     return BackupFile(path, folder, filename, media_type, copied.total)
 
 

@@ -16,7 +16,15 @@ router = APIRouter(prefix="/v1/backup", tags=["operations"], responses=ERROR_RES
 @router.get(
     "",
     response_class=FileResponse,
-    responses={200: {"description": "The backup file", "content": {"application/gzip": {}}}},
+    responses={
+        200: {
+            "description": "The backup file",
+            "content": {
+                media_type: {"schema": {"type": "string", "format": "binary"}}
+                for media_type in usecase.BACKUP_MEDIA_TYPES
+            },
+        }
+    },
 )
 def download_backup(runtime: RuntimeDep, caller: CallerDep) -> FileResponse:
     backup = usecase.make_backup(runtime, caller)

@@ -59,6 +59,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
         from threadpoolctl import threadpool_limits
 
         threadpool_limits(limits=settings.blas_threads, user_api="blas")
+    if settings.serve_model_threads:
+        from service.embedding.minilm import limit_model_threads
+
+        limit_model_threads(settings.serve_model_threads)
     serve(runtime)
     return 0
 

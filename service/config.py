@@ -23,6 +23,9 @@ class Settings(BaseSettings):
     # One BLAS thread per query: on a small CPU server concurrent queries already use every
     # core, and a matrix-vector product split over threads pays more in hand-offs than it gains.
     blas_threads: int = Field(1, ge=0, description="0 keeps the BLAS library's own default")
+    # The serving process embeds one short question per request; spread over every core, the
+    # model's threads wait on each other whenever another query holds a core.
+    serve_model_threads: int = Field(1, ge=0, description="0 keeps torch's own default")
     compact_after_deleted_rows: int = Field(1024, ge=1)
 
     # A write that loses a race against another writer is tried this many times in all, after

@@ -12,6 +12,13 @@ import numpy as np
 from service.ingest.tokenizer import ModelTokenCounter
 
 
+def limit_model_threads(threads: int) -> None:
+    """Caps the threads of every model in this process (torch's setting is process-wide)."""
+    import torch
+
+    torch.set_num_threads(threads)
+
+
 class MiniLmEmbedder:
     name = "minilm"
     dimensions = 384

@@ -24,6 +24,10 @@ def packing_key(candidates: int, budget: int) -> str:
     return f"packing {candidates:,} into {budget:,}"
 
 
+def reading_key(candidates: int) -> str:
+    return f"reading {candidates:,} candidates"
+
+
 def median(figures: dict[str, Any], path: str) -> float:
     section, name = path.split("/", 1)
     return float(figures[section][name]["median_ms"])

@@ -21,8 +21,8 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
-from typing import Literal
+from dataclasses import dataclass
+from typing import Literal, NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -39,12 +39,12 @@ _WHITESPACE = re.compile(r"\s+")
 _SPLITS = frozenset(" \t\n\r")
 
 
-@dataclass(frozen=True)
-class PackCandidate:
+class PackCandidate(NamedTuple):
     """One ranked chunk offered to the packer; ``vector`` is unit-normalised when present.
 
     ``tokens`` is ``count_tokens(text)`` when the caller already has it (the index stores it
-    for every chunk); the packer counts the text itself when it is None.
+    for every chunk); the packer counts the text itself when it is None. A named tuple, like
+    ``PackOutcome``: one is made for every ranked chunk a context or answer considers.
     """
 
     chunk_id: str
@@ -56,7 +56,7 @@ class PackCandidate:
     char_start: int
     char_end: int
     score: float
-    vector: npt.NDArray[np.float32] | None = field(default=None, compare=False)
+    vector: npt.NDArray[np.float32] | None = None
     tokens: int | None = None
 
 
@@ -75,9 +75,12 @@ class Passage:
     char_end: int
 
 
-@dataclass(frozen=True)
-class PackOutcome:
-    """What happened to one considered chunk; ``marker`` is set for included and merged ones."""
+class PackOutcome(NamedTuple):
+    """What happened to one considered chunk; ``marker`` is set for included and merged ones.
+
+    A named tuple rather than a frozen dataclass: one is made for every candidate, and a frozen
+    dataclass costs several times as much to make.
+    """
 
     chunk_id: str
     outcome: Outcome
@@ -372,6 +375,10 @@ def pack_context(
     by_document: dict[str, list[_Draft]] = {}
     decisions: list[tuple[PackCandidate, Outcome]] = []
     passages = bodies = tokens_used = 0
+    # A context's count grows one for one with its bodies' tokens, so the count of the context
+    # with one more passage is this floor plus that passage's body; it changes only when a
+    # chunk is packed.
+    next_passage_floor = parts.context(1, 0)
     for position, chunk in enumerate(ordered):
         if packed.hold_a_copy_of(position, chunk):
             decisions.append((chunk, "duplicate"))
@@ -411,7 +418,7 @@ def pack_context(
             trial_passages = passages + 1
             # Without the label the count is a lower bound: most chunks that do not fit are
             # turned away before their header is counted.
-            if not fits(parts.context(trial_passages, bodies + text_tokens)):
+            if not fits(next_passage_floor + text_tokens):
                 decisions.append((chunk, "budget"))
                 continue
             tokens = (parts.label(chunk), text_tokens)
@@ -425,6 +432,7 @@ def pack_context(
             outcome = "included"
         family.append(draft)
         passages, bodies, tokens_used = trial_passages, trial_bodies, trial_tokens
+        next_passage_floor = parts.context(passages + 1, bodies)
         decisions.append((chunk, outcome))
         packed.add(position, chunk)
 

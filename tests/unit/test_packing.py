@@ -66,7 +66,7 @@ def chunks_of(document_id: str, text: str, size: int, step: int) -> list[PackCan
 
 def with_scores(chunks: list[PackCandidate], scores: list[float]) -> list[PackCandidate]:
     return [
-        PackCandidate(**{**c.__dict__, "score": s}) for c, s in zip(chunks, scores, strict=True)
+        PackCandidate(**{**c._asdict(), "score": s}) for c, s in zip(chunks, scores, strict=True)
     ]
 
 
@@ -262,7 +262,9 @@ def candidate_sets(draw: st.DrawFn) -> tuple[list[PackCandidate], dict[str, str]
                 raw = rng.normal(size=4).astype(np.float32)
                 vector = raw / np.linalg.norm(raw)
             score = float(draw(st.integers(0, 5)))
-            candidates.append(PackCandidate(**{**piece.__dict__, "score": score, "vector": vector}))
+            candidates.append(
+                PackCandidate(**{**piece._asdict(), "score": score, "vector": vector})
+            )
     return candidates, documents
 
 

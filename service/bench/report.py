@@ -21,9 +21,9 @@ _STAGE_LABELS = {
     "lexical depth": "lexical, smoothed idf, at depth",
     "semantic depth": "semantic 100%, at depth",
     "fusion": "fusion (RRF of both at depth)",
-    "reading 100 candidates": "reading 100 candidates from the snapshot",
+    "reading 100 candidates": "reading 100 candidates",
     "packing 100 into 1,000": "packing 100 candidates, 1,000 tokens",
-    "reading 1,000 candidates": "reading 1,000 candidates from the snapshot",
+    "reading 1,000 candidates": "reading 1,000 candidates",
     "packing 1,000 into 32,768": "packing 1,000 candidates, 32,768 tokens",
     "hybrid": "hybrid query, whole, in process",
 }

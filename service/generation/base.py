@@ -23,11 +23,24 @@ _REPEATED_SPACES = re.compile(r"[ \t]{2,}")
 
 
 @dataclass(frozen=True)
+class ConsideredSpan:
+    """A span of a passage the generator weighed: its text, its score, and whether the answer
+    uses it."""
+
+    marker: int
+    text: str
+    score: float
+    chosen: bool
+
+
+@dataclass(frozen=True)
 class GeneratedAnswer:
     """A generator's result: an answer, or ``answer=None`` with the ``reason`` it declined.
 
     ``evidence_score`` is the generator's own measure of support (see each generator);
     ``notes`` are short plain remarks for the trace; ``milliseconds`` is the generation time.
+    ``considered`` lists the spans it weighed, or is None for a generator that cannot say
+    (a chat model is handed whole passages).
     """
 
     answer: str | None
@@ -36,6 +49,7 @@ class GeneratedAnswer:
     evidence_score: float
     notes: tuple[str, ...]
     milliseconds: float
+    considered: tuple[ConsideredSpan, ...] | None = None
 
     def __post_init__(self) -> None:
         if self.answer is None:

@@ -16,6 +16,7 @@ import numpy.typing as npt
 
 from service.generation.base import (
     INSUFFICIENT_EVIDENCE,
+    ConsideredSpan,
     GeneratedAnswer,
     settle_markers,
     strip_marker_like,
@@ -228,6 +229,7 @@ class ExtractiveGenerator:
                 evidence_score=best,
                 notes=tuple(notes),
                 milliseconds=_elapsed_ms(started),
+                considered=_considered(sentences, scores, ()),
             )
         floor = max(self.evidence_threshold, self.keep_ratio * best)
         ranked = sorted(range(len(sentences)), key=lambda i: (-scores[i], i))
@@ -244,7 +246,18 @@ class ExtractiveGenerator:
             evidence_score=best,
             notes=tuple(notes),
             milliseconds=_elapsed_ms(started),
+            considered=_considered(sentences, scores, chosen),
         )
+
+
+def _considered(
+    sentences: Sequence[_Sentence], scores: npt.NDArray[np.float64], chosen: Collection[int]
+) -> tuple[ConsideredSpan, ...]:
+    picked = set(chosen)
+    return tuple(
+        ConsideredSpan(sentence.marker, sentence.text, float(score), index in picked)
+        for index, (sentence, score) in enumerate(zip(sentences, scores.tolist(), strict=True))
+    )
 
 
 def _unit(vector: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:

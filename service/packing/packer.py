@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Literal, NamedTuple
 
@@ -76,7 +76,9 @@ class Passage:
 
 
 class PackOutcome(NamedTuple):
-    """What happened to one considered chunk; ``marker`` is set for included and merged ones.
+    """What happened to one considered chunk; ``marker`` is set for included and merged ones,
+    ``duplicate_of`` names the packed chunk a duplicate copies (same text, or the most similar
+    vector at or above the duplicate cosine).
 
     A named tuple rather than a frozen dataclass: one is made for every candidate, and a frozen
     dataclass costs several times as much to make.
@@ -86,6 +88,7 @@ class PackOutcome(NamedTuple):
     outcome: Outcome
     marker: int | None
     score: float
+    duplicate_of: str | None = None
 
 
 @dataclass(frozen=True)
@@ -277,7 +280,7 @@ class _PackedChunks:
 
     def __init__(self, ordered: Sequence[PackCandidate], duplicate_cosine: float) -> None:
         self._threshold = duplicate_cosine
-        self._texts: set[str] = set()
+        self._texts: dict[str, str] = {}
         self._ends: set[tuple[str, str]] = set()
         with_vectors = [position for position, c in enumerate(ordered) if c.vector is not None]
         self._row_of = [-1] * len(ordered)
@@ -288,32 +291,38 @@ class _PackedChunks:
         if vectors:
             self._matrix = np.stack(vectors).astype(np.float32, copy=False)
         self._packed_rows: list[int] = []
+        self._packed_ids: list[str] = []
         self._block_start = self._block_end = 0
         self._best: list[float] = []
 
-    def hold_a_copy_of(self, position: int, chunk: PackCandidate) -> bool:
-        if (
-            _end_words(chunk.text) in self._ends
-            and normalize_for_duplicates(chunk.text) in self._texts
-        ):
-            return True
+    def copy_in_context(self, position: int, chunk: PackCandidate) -> str | None:
+        """The chunk id of a packed chunk this one copies, or None when it copies none."""
+        if _end_words(chunk.text) in self._ends:
+            same_text = self._texts.get(normalize_for_duplicates(chunk.text))
+            if same_text is not None:
+                return same_text
         row = self._row_of[position]
         if row < 0 or not self._packed_rows:
-            return False
+            return None
         if row >= self._block_end:
             end = min(row + self.BLOCK, len(self._matrix))
             packed = self._matrix[self._packed_rows]
             self._best = (self._matrix[row:end] @ packed.T).max(axis=1).tolist()
             self._block_start, self._block_end = row, end
-        return self._best[row - self._block_start] >= self._threshold
+        if self._best[row - self._block_start] < self._threshold:
+            return None
+        # Which packed chunk it copies is worked out only for a duplicate, which is rare.
+        closest = int(np.argmax(self._matrix[self._packed_rows] @ self._matrix[row]))
+        return self._packed_ids[closest]
 
     def add(self, position: int, chunk: PackCandidate) -> None:
-        self._texts.add(normalize_for_duplicates(chunk.text))
+        self._texts.setdefault(normalize_for_duplicates(chunk.text), chunk.chunk_id)
         self._ends.add(_end_words(chunk.text))
         row = self._row_of[position]
         if row < 0:
             return
         self._packed_rows.append(row)
+        self._packed_ids.append(chunk.chunk_id)
         if row + 1 < self._block_end:
             later = self._matrix[row + 1 : self._block_end] @ self._matrix[row]
             best, offset = self._best, row + 1 - self._block_start
@@ -374,14 +383,17 @@ def pack_context(
     slots: list[_Draft | None] = []
     by_document: dict[str, list[_Draft]] = {}
     decisions: list[tuple[PackCandidate, Outcome]] = []
+    copies: dict[str, str] = {}
     passages = bodies = tokens_used = 0
     # A context's count grows one for one with its bodies' tokens, so the count of the context
     # with one more passage is this floor plus that passage's body; it changes only when a
     # chunk is packed.
     next_passage_floor = parts.context(1, 0)
     for position, chunk in enumerate(ordered):
-        if packed.hold_a_copy_of(position, chunk):
+        copied = packed.copy_in_context(position, chunk)
+        if copied is not None:
             decisions.append((chunk, "duplicate"))
+            copies[chunk.chunk_id] = copied
             continue
         family = by_document.setdefault(chunk.document_id, [])
         touched = []
@@ -459,12 +471,14 @@ def pack_context(
         passages=result,
         tokens_used=tokens_used,
         token_budget=token_budget,
-        considered=_outcomes(decisions, result),
+        considered=_outcomes(decisions, result, copies),
     )
 
 
 def _outcomes(
-    decisions: Sequence[tuple[PackCandidate, Outcome]], passages: Sequence[Passage]
+    decisions: Sequence[tuple[PackCandidate, Outcome]],
+    passages: Sequence[Passage],
+    copies: Mapping[str, str],
 ) -> tuple[PackOutcome, ...]:
     """Final outcomes: a passage's first-packed chunk is ``included``, the rest ``merged``.
 
@@ -480,5 +494,7 @@ def _outcomes(
         if marker is not None:
             outcome = "merged" if marker in leads else "included"
             leads.add(marker)
-        outcomes.append(PackOutcome(chunk.chunk_id, outcome, marker, chunk.score))
+        outcomes.append(
+            PackOutcome(chunk.chunk_id, outcome, marker, chunk.score, copies.get(chunk.chunk_id))
+        )
     return tuple(outcomes)

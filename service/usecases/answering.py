@@ -245,6 +245,7 @@ def _pack(
                 "outcome": o.outcome,
                 "marker": o.marker,
                 "score": o.score,
+                "duplicate_of": o.duplicate_of,
             }
             for o in packed.considered
         ],

@@ -167,16 +167,21 @@ def reference_pack(
 
     drafts: list[_ReferenceDraft] = []
     decisions: list[tuple[PackCandidate, Outcome]] = []
-    seen_texts: set[str] = set()
+    seen_texts: dict[str, str] = {}
     seen_vectors: list[np.ndarray] = []
+    seen_vector_ids: list[str] = []
+    copies: dict[str, str] = {}
 
-    def is_duplicate(chunk: PackCandidate) -> bool:
-        if _reference_normalize(chunk.text) in seen_texts:
-            return True
+    def copied_chunk(chunk: PackCandidate) -> str | None:
+        same_text = seen_texts.get(_reference_normalize(chunk.text))
+        if same_text is not None:
+            return same_text
         if chunk.vector is None or not seen_vectors:
-            return False
+            return None
         similarities = np.stack(seen_vectors) @ chunk.vector.astype(np.float32)
-        return bool(np.max(similarities) >= duplicate_cosine)
+        if np.max(similarities) < duplicate_cosine:
+            return None
+        return seen_vector_ids[int(np.argmax(similarities))]
 
     def merged_text(chunks: tuple[PackCandidate, ...]) -> str:
         start = min(c.char_start for c in chunks)
@@ -186,8 +191,10 @@ def reference_pack(
 
     tokens_used = count_tokens("")
     for chunk in sorted(candidates, key=lambda c: (-c.score, c.chunk_id)):
-        if is_duplicate(chunk):
+        copied = copied_chunk(chunk)
+        if copied is not None:
             decisions.append((chunk, "duplicate"))
+            copies[chunk.chunk_id] = copied
             continue
         touched = [index for index, draft in enumerate(drafts) if draft.touches(chunk)]
         if touched:
@@ -207,9 +214,10 @@ def reference_pack(
         drafts = trial
         tokens_used = trial_tokens
         decisions.append((chunk, outcome))
-        seen_texts.add(_reference_normalize(chunk.text))
+        seen_texts.setdefault(_reference_normalize(chunk.text), chunk.chunk_id)
         if chunk.vector is not None:
             seen_vectors.append(chunk.vector.astype(np.float32))
+            seen_vector_ids.append(chunk.chunk_id)
 
     passages = tuple(
         Passage(
@@ -236,7 +244,9 @@ def reference_pack(
         if marker is not None:
             final = "merged" if marker in leads else "included"
             leads.add(marker)
-        considered.append(PackOutcome(chunk.chunk_id, final, marker, chunk.score))
+        considered.append(
+            PackOutcome(chunk.chunk_id, final, marker, chunk.score, copies.get(chunk.chunk_id))
+        )
     return PackedContext(
         context=_reference_render(drafts),
         passages=passages,

@@ -1,4 +1,6 @@
-"""The ``excerpta`` command: serve, migrate, ingest, keys, search, ask, eval, bench, demo.
+"""The ``excerpta`` command: serve, ingest, keys, search, ask, traces, eval, bench.
+
+Also migrate, demo, backup and restore.
 
 Commands that need no running server work on the store directly, through the same use cases
 the HTTP API calls; a running server picks up their writes from the store's change log.
@@ -363,6 +365,55 @@ def cmd_ask(args: argparse.Namespace) -> int:
     return 0
 
 
+# traces ------------------------------------------------------------------------------------------
+
+
+def cmd_traces(args: argparse.Namespace) -> int:
+    from service.store.db import session_factory
+    from service.store.identity import StoreGuard
+    from service.store.transactions import Transactions
+    from service.usecases.callers import LOCAL_ADMIN
+    from service.usecases.traces import TraceListing, trace_page
+
+    engine = _migrated_engine(args)
+    listing = TraceListing(
+        collection=args.collection,
+        since=args.since,
+        until=args.until,
+        route=args.route,
+        limit=args.limit,
+        cursor=args.cursor,
+    )
+    try:
+        transactions = Transactions(session_factory(engine), StoreGuard(engine))
+        page = trace_page(transactions, LOCAL_ADMIN, listing)
+    finally:
+        engine.dispose()
+    if args.json:
+        from service.api.render import trace_page_json
+
+        _print_json(trace_page_json(page))
+        return 0
+    print(
+        f"{'time (UTC)':<19}  {'route':<7} {'collection':<16} {'outcome':<8} "
+        f"{'cand':>6} {'hits':>4} {'ms':>8}  {'trace':<36}  query"
+    )
+    for t in page.traces:
+        outcome = t.outcome if t.reason is None else f"{t.outcome}:{t.reason}"
+        print(
+            f"{t.created_at:%Y-%m-%d %H:%M:%S}  {t.route:<7} {t.collection[:16]:<16} "
+            f"{outcome or '-':<8} {_count(t.candidates):>6} {_count(t.hits):>4} "
+            f"{_count(t.milliseconds, '.1f'):>8}  {t.trace_id:<36}  {(t.query or '')[:60]}"
+        )
+    if page.next_cursor is not None:
+        print(f"more: --cursor {page.next_cursor}")
+    return 0
+
+
+def _count(value: float | None, spec: str = "") -> str:
+    return "-" if value is None else format(value, spec)
+
+
 # demo --------------------------------------------------------------------------------------------
 
 
@@ -618,6 +669,17 @@ def build_parser() -> argparse.ArgumentParser:
     ask.add_argument("--generator")
     ask.add_argument("--json", action="store_true")
     ask.set_defaults(handler=cmd_ask)
+
+    traces = commands.add_parser("traces", help="list recorded traces, newest first")
+    _common(traces)
+    traces.add_argument("--collection")
+    traces.add_argument("--since", help="ISO 8601 with an offset, inclusive")
+    traces.add_argument("--until", help="ISO 8601 with an offset, exclusive")
+    traces.add_argument("--route", choices=["search", "context", "answer"])
+    traces.add_argument("--limit", type=int, default=50)
+    traces.add_argument("--cursor", help="the cursor the page before printed")
+    traces.add_argument("--json", action="store_true")
+    traces.set_defaults(handler=cmd_traces)
 
     demo = commands.add_parser("demo", help="create the demo collection and key if missing")
     _common(demo)

@@ -13,6 +13,7 @@ from service import errors
 from service.api.render import context_json
 from service.api.schemas import ErrorOut
 from service.usecases.answering import ContextResult
+from service.usecases.traces import current_trace_id
 
 STATUS_BY_ERROR: tuple[tuple[type[errors.ServiceError], int], ...] = (
     (errors.MalformedJson, 400),
@@ -41,8 +42,12 @@ def status_for(error: errors.ServiceError) -> int:
 
 
 def error_response(error: errors.ServiceError) -> JSONResponse:
+    """The error's body, with the ``trace_id`` of the trace the request saved, if it saved one."""
     headers = {}
     body = error.body()
+    trace_id = current_trace_id()
+    if trace_id is not None:
+        body["error"]["trace_id"] = trace_id
     if isinstance(error, errors.RateLimited | errors.Busy):
         headers["Retry-After"] = str(error.retry_after)
     if isinstance(error, errors.GeneratorUnavailable):

@@ -14,6 +14,7 @@ from service.usecases.answering import (
     SearchResult,
 )
 from service.usecases.inference import InferredFilter
+from service.usecases.traces import TracePage, TraceSummary
 
 
 def hit_json(hit: HitView) -> dict[str, Any]:
@@ -92,3 +93,25 @@ def answer_json(result: AnswerResult) -> dict[str, Any]:
     if result.reason is not None:
         body["reason"] = result.reason
     return body
+
+
+def trace_summary_json(summary: TraceSummary) -> dict[str, Any]:
+    return {
+        "trace_id": summary.trace_id,
+        "created_at": summary.created_at.isoformat(),
+        "route": summary.route,
+        "collection": summary.collection,
+        "query": summary.query,
+        "candidates": summary.candidates,
+        "hits": summary.hits,
+        "outcome": summary.outcome,
+        "reason": summary.reason,
+        "milliseconds": summary.milliseconds,
+    }
+
+
+def trace_page_json(page: TracePage) -> dict[str, Any]:
+    return {
+        "traces": [trace_summary_json(summary) for summary in page.traces],
+        "next_cursor": page.next_cursor,
+    }

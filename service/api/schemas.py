@@ -17,6 +17,9 @@ class ErrorBody(BaseModel):
     model_config = ConfigDict(extra="allow")
     code: str
     message: str
+    trace_id: str | None = Field(
+        None, description="The trace the failed request saved (queries only), for GET /v1/traces"
+    )
 
 
 class ErrorOut(BaseModel):
@@ -331,6 +334,28 @@ class TraceOut(BaseModel):
     created_at: dt.datetime
     request: dict[str, Any]
     stages: list[dict[str, Any]]
+
+
+class TraceSummaryOut(BaseModel):
+    trace_id: str
+    created_at: dt.datetime
+    route: Literal["search", "context", "answer"]
+    collection: str
+    query: str | None
+    candidates: int | None = Field(description="Chunks that passed access, filter and time window")
+    hits: int | None = Field(
+        description="Chunks the response gave: search hits, or the chunks of its passages"
+    )
+    outcome: Literal["returned", "answered", "declined", "failed"] | None
+    reason: str | None = Field(
+        description="Why an answer was declined, or the error code of a failed request"
+    )
+    milliseconds: float | None
+
+
+class TraceListOut(BaseModel):
+    traces: list[TraceSummaryOut]
+    next_cursor: str | None = Field(description="Pass as cursor for the next page; null at the end")
 
 
 class HealthOut(BaseModel):

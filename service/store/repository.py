@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 import logging
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -13,6 +14,7 @@ from sqlalchemy import (
     Connection,
     Engine,
     Row,
+    and_,
     bindparam,
     delete,
     exists,
@@ -491,7 +493,8 @@ class KeyReader:
 
 
 def insert_traces(connection: Connection, rows: list[dict[str, Any]]) -> None:
-    """Rows of ``id``, ``key_id``, ``collection``, ``route``, ``created_at`` and ``body``."""
+    """Rows of ``id``, ``key_id``, ``collection``, ``route``, ``created_at``, ``body`` and the
+    summary columns."""
     connection.execute(_INSERT_TRACE, rows)
 
 
@@ -505,6 +508,61 @@ def all_keys(session: Session) -> list[ApiKeyRow]:
 
 def trace_by_id(session: Session, trace_id: str) -> TraceRow | None:
     return session.get(TraceRow, trace_id)
+
+
+@dataclass(frozen=True, kw_only=True)
+class TraceCriteria:
+    """Which traces a listing shows: ``owner`` None means every key's; ``since`` inclusive,
+    ``until`` exclusive; ``before`` the (created_at, id) a page continues after."""
+
+    owner: int | None
+    collection: str | None
+    route: str | None
+    since: dt.datetime | None
+    until: dt.datetime | None
+    before: tuple[dt.datetime, str] | None
+
+
+_SUMMARY_COLUMNS = (
+    TraceRow.id,
+    TraceRow.key_id,
+    TraceRow.collection,
+    TraceRow.route,
+    TraceRow.created_at,
+    TraceRow.query,
+    TraceRow.candidates,
+    TraceRow.hits,
+    TraceRow.outcome,
+    TraceRow.reason,
+    TraceRow.milliseconds,
+)
+
+
+def trace_summaries(
+    session: Session, criteria: TraceCriteria, *, limit: int
+) -> list[dict[str, Any]]:
+    """Summary columns of the matching traces, newest first (ties by id, descending)."""
+    statement = select(*_SUMMARY_COLUMNS)
+    if criteria.owner is not None:
+        statement = statement.where(TraceRow.key_id == criteria.owner)
+    if criteria.collection is not None:
+        statement = statement.where(TraceRow.collection == criteria.collection)
+    if criteria.route is not None:
+        statement = statement.where(TraceRow.route == criteria.route)
+    if criteria.since is not None:
+        statement = statement.where(TraceRow.created_at >= criteria.since)
+    if criteria.until is not None:
+        statement = statement.where(TraceRow.created_at < criteria.until)
+    if criteria.before is not None:
+        created, trace_id = criteria.before
+        statement = statement.where(
+            or_(
+                TraceRow.created_at < created,
+                and_(TraceRow.created_at == created, TraceRow.id < trace_id),
+            )
+        )
+    statement = statement.order_by(TraceRow.created_at.desc(), TraceRow.id.desc()).limit(limit)
+    return [dict(row._mapping) for row in session.execute(statement)]
 
 
 def prune_traces(session: Session, *, older_than: dt.datetime, keep: int) -> None:

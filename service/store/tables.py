@@ -205,7 +205,12 @@ class ApiKeyRow(Base):
 
 
 class TraceRow(Base):
+    """A request's trace: its whole ``body``, and the summary a listing shows without reading
+    the body (``candidates`` and ``hits`` are null where the request failed before knowing
+    them)."""
+
     __tablename__ = "traces"
+    __table_args__ = (Index("ix_traces_key_id_created_at", "key_id", "created_at"),)
 
     id: Mapped[str] = mapped_column(String(36), primary_key=True)
     key_id: Mapped[int | None] = mapped_column(Integer, nullable=True, index=True)
@@ -213,6 +218,12 @@ class TraceRow(Base):
     route: Mapped[str] = mapped_column(String(16))
     created_at: Mapped[dt.datetime] = mapped_column(UtcDateTime, index=True)
     body: Mapped[dict[str, Any]] = mapped_column(JSON)
+    query: Mapped[str | None] = mapped_column(Text, nullable=True)
+    candidates: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    hits: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    outcome: Mapped[str | None] = mapped_column(String(16), nullable=True)
+    reason: Mapped[str | None] = mapped_column(String(64), nullable=True)
+    milliseconds: Mapped[float | None] = mapped_column(Float, nullable=True)
 
 
 class StoreIdentityRow(Base):

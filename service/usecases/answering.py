@@ -156,17 +156,26 @@ def search(
 ) -> SearchResult:
     """The search route's result; evaluation passes ``keep_trace=False`` for its many queries."""
     recorder = TraceRecorder("search", collection, options.as_request())
-    retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=False)
-    hits = tuple(_hit(retrieval.view, h.row, h.score, h.ranks) for h in retrieval.result.hits)
-    candidates = retrieval.result.candidates
-    inferred = retrieval.inferred
     if not keep_trace:
-        return SearchResult(hits, candidates, "", inferred)
-    recorder.save(runtime.traces, caller, hits=[h.chunk_id for h in hits], candidates=candidates)
-    return SearchResult(hits, candidates, recorder.trace_id, inferred)
+        retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=False)
+        hits = tuple(_hit(retrieval.view, h.row, h.score, h.ranks) for h in retrieval.result.hits)
+        return SearchResult(hits, retrieval.result.candidates, "", retrieval.inferred)
+    with recorder.failures_kept(runtime.traces, caller):
+        retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=False)
+        hits = tuple(_hit(retrieval.view, h.row, h.score, h.ranks) for h in retrieval.result.hits)
+        candidates = retrieval.result.candidates
+        recorder.save(
+            runtime.traces,
+            caller,
+            outcome="returned",
+            hit_count=len(hits),
+            hits=[h.chunk_id for h in hits],
+            candidates=candidates,
+        )
+    return SearchResult(hits, candidates, recorder.trace_id, retrieval.inferred)
 
 
-def _check_budget(runtime: Runtime, token_budget: int) -> None:
+def check_budget(runtime: Runtime, token_budget: int) -> None:
     if token_budget < 1:
         raise InvalidRequest("token_budget must be at least 1.", field="token_budget")
     if token_budget > runtime.settings.max_token_budget:
@@ -273,14 +282,25 @@ def build_context(
     options: SearchOptions,
     token_budget: int,
 ) -> ContextResult:
-    _check_budget(runtime, token_budget)
     recorder = TraceRecorder(
         "context", collection, {**options.as_request(), "token_budget": token_budget}
     )
-    retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
-    packed = _pack(runtime, retrieval, token_budget, 1.0)
-    recorder.save(runtime.traces, caller, tokens_used=packed.tokens_used)
+    with recorder.failures_kept(runtime.traces, caller):
+        check_budget(runtime, token_budget)
+        retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
+        packed = _pack(runtime, retrieval, token_budget, 1.0)
+        recorder.save(
+            runtime.traces,
+            caller,
+            outcome="returned",
+            hit_count=_chunk_count(packed.passages),
+            tokens_used=packed.tokens_used,
+        )
     return _context_result(packed, recorder.trace_id, retrieval.inferred)
+
+
+def _chunk_count(passages: Sequence[Passage]) -> int:
+    return sum(len(passage.chunk_ids) for passage in passages)
 
 
 def answer(
@@ -291,18 +311,37 @@ def answer(
     token_budget: int,
     generator_name: str | None,
 ) -> AnswerResult:
-    _check_budget(runtime, token_budget)
     generator = runtime.generators.get(generator_name)
     recorder = TraceRecorder(
         "answer",
         collection,
         {**options.as_request(), "token_budget": token_budget, "generator": generator.name},
     )
+    with recorder.failures_kept(runtime.traces, caller):
+        check_budget(runtime, token_budget)
+        return _answer(runtime, caller, collection, options, token_budget, generator, recorder)
+
+
+def _answer(
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    options: SearchOptions,
+    token_budget: int,
+    generator: Generator,
+    recorder: TraceRecorder,
+) -> AnswerResult:
     retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
     facts = retrieval.view.facts
 
     def declined(reason: str, passages: tuple[Passage, ...] = ()) -> AnswerResult:
-        recorder.save(runtime.traces, caller, reason=reason)
+        recorder.save(
+            runtime.traces,
+            caller,
+            outcome="declined",
+            hit_count=_chunk_count(passages),
+            reason=reason,
+        )
         return AnswerResult(
             answer=None,
             reason=reason,
@@ -320,13 +359,26 @@ def answer(
     try:
         generated = _generate(generator, options.query, packed, recorder)
     except GeneratorUnavailable as exc:
-        recorder.save(runtime.traces, caller, generator_error=exc.message)
+        recorder.save(
+            runtime.traces,
+            caller,
+            outcome="failed",
+            hit_count=None,
+            reason=exc.code,
+            generator_error=exc.message,
+        )
         raise GeneratorUnavailable(
             exc.message, context=_context_result(packed, recorder.trace_id, retrieval.inferred)
         ) from exc
     if generated.answer is None:
         return declined(generated.reason or "insufficient_evidence", packed.passages)
-    recorder.save(runtime.traces, caller, markers=list(generated.markers_used))
+    recorder.save(
+        runtime.traces,
+        caller,
+        outcome="answered",
+        hit_count=_chunk_count(packed.passages),
+        markers=list(generated.markers_used),
+    )
     return AnswerResult(
         answer=generated.answer,
         reason=None,

@@ -35,7 +35,9 @@ PRUNE_EVERY = 200
 MAX_HELD = 10_000
 
 TraceRow = dict[str, Any]
-"""``id``, ``key_id``, ``collection``, ``route``, ``created_at`` and ``body``, as stored."""
+"""``id``, ``key_id``, ``collection``, ``route``, ``created_at``, ``body`` and the summary
+columns (``query``, ``candidates``, ``hits``, ``outcome``, ``reason``, ``milliseconds``), as
+stored."""
 
 
 class TraceWriter:
@@ -89,6 +91,11 @@ class TraceWriter:
     def held(self, trace_id: str) -> TraceRow | None:
         with self._condition:
             return self._held.get(trace_id)
+
+    def held_rows(self) -> list[TraceRow]:
+        """Every trace not yet written, for listings that must show them at once."""
+        with self._condition:
+            return list(self._held.values())
 
     def stop(self) -> None:
         """Write every held trace, then end the thread."""

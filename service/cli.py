@@ -1,4 +1,4 @@
-"""The ``excerpta`` command: serve, ingest, keys, search, ask, traces, eval, bench.
+"""The ``excerpta`` command: serve, ingest, keys, search, ask, explain, traces, eval, bench.
 
 Also migrate, demo, backup and restore.
 
@@ -365,6 +365,68 @@ def cmd_ask(args: argparse.Namespace) -> int:
     return 0
 
 
+# explain -----------------------------------------------------------------------------------------
+
+
+def cmd_explain(args: argparse.Namespace) -> int:
+    from service.usecases import explain
+    from service.usecases.callers import LOCAL_ADMIN
+    from service.usecases.search import SearchOptions
+
+    runtime = _runtime(args)
+    try:
+        request = explain.ExplainRequest(
+            options=SearchOptions(
+                query=args.query,
+                filter=_filter_arg(args.filter),
+                top_k=args.top_k,
+                mode=args.mode,
+                depth=args.depth,
+                infer_filter=args.infer_filter,
+            ),
+            route=args.route,
+            token_budget=args.budget,
+            generator=args.generator,
+            document_id=args.document,
+            chunk_id=args.chunk,
+            as_key=args.as_key,
+        )
+        result = explain.explain(runtime, LOCAL_ADMIN, args.collection, request)
+    finally:
+        runtime.close()
+    if args.json:
+        from service.api.render import explanation_json
+
+        _print_json(explanation_json(result))
+        return 0
+    _print_inferred(result.inferred_filter)
+    budget = "" if result.token_budget is None else f", token budget {result.token_budget}"
+    print(
+        f"{result.route} in {result.mode} mode: {result.candidates} candidates, "
+        f"top_k {result.top_k}, depth {result.depth}{budget}"
+    )
+    for cut in result.cuts:
+        last = (
+            "nothing ranked"
+            if cut.chunk_id is None
+            else (f"last {cut.chunk_id} at rank {cut.rank}, score {cut.score:.6g}")
+        )
+        print(f"  {cut.stage} cut at {cut.cut_at}: {last}")
+    for chunk in result.chunks:
+        ranks = ""
+        if chunk.ranks:
+            ranks = (
+                "  ["
+                + ", ".join(
+                    f"{name} {standing.rank or '-'}" for name, standing in chunk.ranks.items()
+                )
+                + "]"
+            )
+        print(f"{chunk.chunk_id}  {chunk.stage or 'reached'}: {chunk.outcome}{ranks}")
+        print(f"    {chunk.reason}")
+    return 0
+
+
 # traces ------------------------------------------------------------------------------------------
 
 
@@ -669,6 +731,29 @@ def build_parser() -> argparse.ArgumentParser:
     ask.add_argument("--generator")
     ask.add_argument("--json", action="store_true")
     ask.set_defaults(handler=cmd_ask)
+
+    explaining = commands.add_parser(
+        "explain", help="say why a document's chunks did or did not reach a response"
+    )
+    _common(explaining)
+    explaining.add_argument("collection")
+    explaining.add_argument("query")
+    target = explaining.add_mutually_exclusive_group(required=True)
+    target.add_argument("--document", help="follow every chunk of this document")
+    target.add_argument("--chunk", help="follow this one chunk")
+    explaining.add_argument("--route", default="search", choices=["search", "context", "answer"])
+    explaining.add_argument("--filter")
+    _infer_option(explaining)
+    explaining.add_argument("--mode", default="hybrid", choices=["hybrid", "lexical", "semantic"])
+    explaining.add_argument("--top-k", type=int, default=10)
+    explaining.add_argument("--depth", type=int, default=100)
+    explaining.add_argument(
+        "--budget", type=int, default=1000, help="token budget (context, answer)"
+    )
+    explaining.add_argument("--generator", help="the answer's generator")
+    explaining.add_argument("--as-key", help="explain as the key of this name sees the collection")
+    explaining.add_argument("--json", action="store_true")
+    explaining.set_defaults(handler=cmd_explain)
 
     traces = commands.add_parser("traces", help="list recorded traces, newest first")
     _common(traces)

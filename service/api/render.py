@@ -13,6 +13,7 @@ from service.usecases.answering import (
     HitView,
     SearchResult,
 )
+from service.usecases.explain import ChunkExplanation, Explanation, RankingCut, Standing
 from service.usecases.inference import InferredFilter
 from service.usecases.traces import TracePage, TraceSummary
 
@@ -114,4 +115,80 @@ def trace_page_json(page: TracePage) -> dict[str, Any]:
     return {
         "traces": [trace_summary_json(summary) for summary in page.traces],
         "next_cursor": page.next_cursor,
+    }
+
+
+def _standing_json(standing: Standing) -> dict[str, Any]:
+    return {"rank": standing.rank, "score": standing.score}
+
+
+def _cut_json(cut: RankingCut) -> dict[str, Any]:
+    return {
+        "stage": cut.stage,
+        "cut_at": cut.cut_at,
+        "chunk_id": cut.chunk_id,
+        "rank": cut.rank,
+        "score": cut.score,
+    }
+
+
+def _chunk_explanation_json(chunk: ChunkExplanation) -> dict[str, Any]:
+    clause, packing, answer = chunk.clause, chunk.packing, chunk.answer
+    return {
+        "chunk_id": chunk.chunk_id,
+        "ordinal": chunk.ordinal,
+        "section": chunk.section,
+        "stage": chunk.stage,
+        "outcome": chunk.outcome,
+        "reason": chunk.reason,
+        "clause": None
+        if clause is None
+        else {
+            "source": clause.source,
+            "clause": clause.clause,
+            "result": clause.result,
+            "values": dict(clause.values),
+        },
+        "ranks": None
+        if chunk.ranks is None
+        else {name: _standing_json(standing) for name, standing in chunk.ranks.items()},
+        "packing": None
+        if packing is None
+        else {
+            "outcome": packing.outcome,
+            "marker": packing.marker,
+            "duplicate_of": packing.duplicate_of,
+            "passage_chunk_ids": list(packing.passage_chunk_ids),
+            "tokens": packing.tokens,
+        },
+        "answer": None
+        if answer is None
+        else {
+            "answered": answer.answered,
+            "reason": answer.reason,
+            "cited": answer.cited,
+            "spans": None
+            if answer.spans is None
+            else [
+                {"marker": s.marker, "text": s.text, "score": s.score, "chosen": s.chosen}
+                for s in answer.spans
+            ],
+        },
+    }
+
+
+def explanation_json(explanation: Explanation) -> dict[str, Any]:
+    return {
+        "collection": explanation.collection,
+        "document_id": explanation.document_id,
+        "route": explanation.route,
+        "mode": explanation.mode,
+        "as_key": explanation.as_key,
+        "candidates": explanation.candidates,
+        "top_k": explanation.top_k,
+        "depth": explanation.depth,
+        "token_budget": explanation.token_budget,
+        "cuts": [_cut_json(cut) for cut in explanation.cuts],
+        "inferred_filter": inferred_json(explanation.inferred_filter),
+        "chunks": [_chunk_explanation_json(chunk) for chunk in explanation.chunks],
     }

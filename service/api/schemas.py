@@ -326,6 +326,105 @@ class AnswerOut(BaseModel):
     inferred_filter: InferredFilterOut | None = None
 
 
+ExplainStage = Literal[
+    "access",
+    "filter",
+    "time_window",
+    "inferred_filter",
+    "lexical",
+    "semantic",
+    "fusion",
+    "top_k",
+    "packing",
+    "generation",
+]
+
+
+class ExplainIn(AnswerIn):
+    route: Literal["search", "context", "answer"] = Field(
+        "search",
+        description="Which request to explain; token_budget and generator apply to "
+        "context and answer",
+    )
+    document_id: str | None = Field(None, description="Follow every chunk of this document")
+    chunk_id: str | None = Field(None, description="Or follow this one chunk")
+    as_key: str | None = Field(
+        None, description="Admins only: explain as the key of this name sees the collection"
+    )
+
+
+class StandingOut(BaseModel):
+    rank: int | None
+    score: float | None
+
+
+class RankingCutOut(BaseModel):
+    stage: ExplainStage
+    cut_at: int
+    chunk_id: str | None
+    rank: int | None
+    score: float | None
+
+
+class ClauseOut(BaseModel):
+    source: Literal["filter", "time_window", "inferred_filter"]
+    clause: str
+    result: Literal["false", "unknown"]
+    values: dict[str, Any]
+
+
+class PackingOut(BaseModel):
+    outcome: Literal["included", "merged", "budget", "duplicate"]
+    marker: int | None
+    duplicate_of: str | None
+    passage_chunk_ids: list[str]
+    tokens: int
+
+
+class ConsideredSpanOut(BaseModel):
+    marker: int
+    text: str
+    score: float
+    chosen: bool
+
+
+class AnswerFindingOut(BaseModel):
+    answered: bool
+    reason: str | None
+    cited: bool
+    spans: list[ConsideredSpanOut] | None
+
+
+class ChunkExplanationOut(BaseModel):
+    chunk_id: str
+    ordinal: int
+    section: str
+    stage: ExplainStage | None = Field(
+        description="The first stage that left the chunk out; null when it reached the response"
+    )
+    outcome: str
+    reason: str
+    clause: ClauseOut | None
+    ranks: dict[str, StandingOut] | None
+    packing: PackingOut | None
+    answer: AnswerFindingOut | None
+
+
+class ExplainOut(BaseModel):
+    collection: str
+    document_id: str
+    route: Literal["search", "context", "answer"]
+    mode: Literal["hybrid", "lexical", "semantic"]
+    as_key: str | None
+    candidates: int
+    top_k: int
+    depth: int
+    token_budget: int | None
+    cuts: list[RankingCutOut]
+    inferred_filter: InferredFilterOut | None
+    chunks: list[ChunkExplanationOut]
+
+
 class TraceOut(BaseModel):
     model_config = ConfigDict(extra="allow")
     trace_id: str

@@ -135,6 +135,13 @@ def evaluate(node: Node, columns: AttributeColumns) -> np.ndarray:
     return true
 
 
+def evaluate_truth(node: Node, columns: AttributeColumns) -> tuple[np.ndarray, np.ndarray]:
+    """Rows where ``node`` is TRUE and rows where it is FALSE; a row in neither is UNKNOWN."""
+    true, false = _Evaluator(columns).truth(node, need_false=True)
+    assert false is not None
+    return true, false
+
+
 Truth = tuple[np.ndarray, np.ndarray | None]
 Values = tuple[Any, np.ndarray | None]  # (array or constant, present mask or None)
 

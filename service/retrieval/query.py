@@ -91,12 +91,15 @@ class StageTrace:
 
 @dataclass(frozen=True)
 class RetrievalResult:
-    """``candidates`` passed the mask; ``visible_rows`` are the live rows the caller may see."""
+    """``candidates`` passed the mask; ``visible_rows`` are the live rows the caller may see;
+    ``rankings`` are the mode's rankings by name (``lexical``, ``semantic``, and ``fused`` in
+    hybrid mode), each cut at depth, for explaining where a chunk stood."""
 
     hits: tuple[Hit, ...]
     candidates: int
     visible_rows: int
     stages: tuple[StageTrace, ...]
+    rankings: Mapping[str, Ranking]
 
 
 def candidate_mask(
@@ -163,6 +166,8 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         return {name: ranks.get(row) for name, ranks in rank_maps.items()}
 
     keep = query.keep
+    if query.mode == "hybrid":
+        rankings["fused"] = final
     hits = tuple(
         Hit(row, snapshot.chunk_ids[row], score, ranks_of(row))
         for row, score in zip(final.rows[:keep].tolist(), final.scores[:keep].tolist(), strict=True)
@@ -171,7 +176,7 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         top = _entries(snapshot, final, query.trace_top, ranks_of)
         counts = {"fused": len(final), "returned": len(hits)}
         stages.append(StageTrace("fusion", _since(started), counts, top))
-    return RetrievalResult(hits, candidates, visible, tuple(stages))
+    return RetrievalResult(hits, candidates, visible, tuple(stages), rankings)
 
 
 def _since(started: float) -> float:

@@ -222,21 +222,32 @@ def pack_candidates(snapshot: IndexSnapshot, hits: Sequence[Hit]) -> list[PackCa
     ]
 
 
+def pack_hits(
+    runtime: Runtime,
+    snapshot: IndexSnapshot,
+    hits: Sequence[Hit],
+    token_budget: int,
+    token_margin: float,
+) -> PackedContext:
+    """The packer over ranked hits, as context and answer run it (explain too)."""
+    # Merged spans come from the snapshot that ranked the chunks, never from the store, which
+    # may hold a newer version of the document by now.
+    return pack_context(
+        pack_candidates(snapshot, hits),
+        token_budget=token_budget,
+        count_tokens=runtime.embedder.tokens.count,
+        token_margin=token_margin,
+        document_span=snapshot.document_span,
+    )
+
+
 def _pack(
     runtime: Runtime, retrieval: _Retrieval, token_budget: int, token_margin: float
 ) -> PackedContext:
     """Pack the fused ranking, best first, into the budget."""
     started = time.perf_counter()
-    snapshot = retrieval.view.snapshot
-    candidates = pack_candidates(snapshot, retrieval.result.hits)
-    # Merged spans come from the snapshot that ranked the chunks, never from the store, which
-    # may hold a newer version of the document by now.
-    packed = pack_context(
-        candidates,
-        token_budget=token_budget,
-        count_tokens=runtime.embedder.tokens.count,
-        token_margin=token_margin,
-        document_span=snapshot.document_span,
+    packed = pack_hits(
+        runtime, retrieval.view.snapshot, retrieval.result.hits, token_budget, token_margin
     )
     retrieval.recorder.stage(
         "packing",

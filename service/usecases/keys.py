@@ -130,6 +130,22 @@ def revoke_key(session: Session, name: str) -> None:
         row.revoked_at = repository.utcnow()
 
 
+def caller_named(session: Session, name: str) -> Caller | None:
+    """The caller a key's name stands for, revoked or not (explain asks as a named key)."""
+    if not _NAME.fullmatch(name):
+        return None
+    row = repository.key_by_name(session, name)
+    if row is None:
+        return None
+    return Caller(
+        key_id=row.id,
+        name=row.name,
+        role=Role.parse(row.role),
+        groups=frozenset(row.groups),
+        collections=None if row.collections is None else frozenset(row.collections),
+    )
+
+
 def list_keys(session: Session) -> list[KeyInfo]:
     return [_info(row) for row in repository.all_keys(session)]
 

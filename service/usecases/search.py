@@ -10,7 +10,7 @@ from __future__ import annotations
 import datetime as dt
 import time
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -23,7 +23,7 @@ from service.filters.inference.engine import node_attributes
 from service.filters.parse import parse_filter
 from service.filters.render import to_text
 from service.filters.syntax import Node, conjunction
-from service.filters.time_window import resolve_time_window
+from service.filters.time_window import ResolvedWindow, resolve_time_window
 from service.generation.filter_proposal import ChatFilterProposer
 from service.index.lexical import LexicalScoring
 from service.index.view import IndexView
@@ -80,6 +80,21 @@ class SearchOptions:
 
 
 @dataclass(frozen=True)
+class FilterParts:
+    """The checked pieces the candidate filter is the AND of: the request's own filter, its
+    time window and the inferred filter applied; explain tests a chunk against each."""
+
+    request: Node | None = None
+    window: Node | None = None
+    resolved_window: ResolvedWindow | None = None
+    inferred: Node | None = None
+
+    def joined(self) -> Node | None:
+        nodes = [node for node in (self.request, self.window, self.inferred) if node is not None]
+        return conjunction(nodes) if nodes else None
+
+
+@dataclass(frozen=True)
 class PreparedQuery:
     """The core's query, and what the trace says of how it was made."""
 
@@ -87,7 +102,8 @@ class PreparedQuery:
     filter_notes: dict[str, Any]
     embedding_milliseconds: float | None
     embedding_source: str
-    inferred: InferredFilter | None = None
+    inferred: InferredFilter | None
+    filter_parts: FilterParts
 
 
 def check_limits(options: SearchOptions, limits: Settings, dimensions: int) -> None:
@@ -145,28 +161,26 @@ def _parse_now(value: str | None) -> dt.datetime | None:
     return parsed.astimezone(dt.UTC)
 
 
-def candidate_filter(options: SearchOptions, view: IndexView) -> tuple[Node | None, dict[str, Any]]:
-    """The checked filter AND the time window, and what the trace says of them."""
+def candidate_filter(options: SearchOptions, view: IndexView) -> tuple[FilterParts, dict[str, Any]]:
+    """The checked filter and time window, and what the trace says of them."""
     notes: dict[str, Any] = {}
-    nodes: list[Node] = []
+    request = window_node = resolved = None
     schema = view.facts.schema
     if options.filter is not None and options.filter != "":
-        node = check_filter(parse_filter(options.filter), schema)
-        nodes.append(node)
-        notes["filter"] = to_text(node)
+        request = check_filter(parse_filter(options.filter), schema)
+        notes["filter"] = to_text(request)
     if options.time_window is not None:
         window = options.time_window
-        node, resolved = resolve_time_window(
+        window_node, resolved = resolve_time_window(
             window.attribute, window.last, _parse_now(window.now), schema
         )
-        nodes.append(node)
         notes["time_window"] = {
             "attribute": window.attribute,
             "last": window.last,
             "start": resolved.start.isoformat(),
             "end": resolved.end.isoformat(),
         }
-    return (conjunction(nodes) if nodes else None), notes
+    return FilterParts(request, window_node, resolved), notes
 
 
 def prepare_query(
@@ -185,7 +199,8 @@ def prepare_query(
     ``proposer`` when it asks for chat-http) and, in ``apply`` mode, ANDed with the request's
     own filter. ``check_limits`` must have passed.
     """
-    node, notes = candidate_filter(options, view)
+    parts, notes = candidate_filter(options, view)
+    node = parts.joined()
     inferred = None
     if options.infer_filter.active:
         inferred = infer_for_request(
@@ -201,7 +216,8 @@ def prepare_query(
         )
         notes.update(inferred.trace())
         if options.infer_filter.mode == "apply" and inferred.node is not None:
-            node = inferred.node if node is None else conjunction([node, inferred.node])
+            parts = replace(parts, inferred=inferred.node)
+            node = parts.joined()
     depth = max(options.depth, options.top_k)
     vector = None
     milliseconds = None
@@ -227,4 +243,4 @@ def prepare_query(
         scoring=options.scoring or view.scoring,
         trace_top=TRACE_TOP_ENTRIES,
     )
-    return PreparedQuery(query, notes, milliseconds, source, inferred)
+    return PreparedQuery(query, notes, milliseconds, source, inferred, parts)

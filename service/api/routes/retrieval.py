@@ -1,4 +1,4 @@
-"""Search, context and answer: parse the body, call one use case, render its result.
+"""Search, context, answer and explain: parse the body, call one use case, render its result.
 
 They run their use case on the query pool (see ``query_pool``), where the result is also
 rendered and encoded, so the event loop only receives finished bytes.
@@ -13,7 +13,7 @@ from fastapi.responses import Response
 
 from service.api.deps import CallerDep, QueryPoolDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
-from service.api.render import answer_json, context_json, search_json
+from service.api.render import answer_json, context_json, explanation_json, search_json
 from service.api.responses import QueryResponse
 from service.api.routing import StrictJsonRoute
 from service.api.schemas import (
@@ -22,10 +22,12 @@ from service.api.schemas import (
     ContextIn,
     ContextOut,
     ErrorOut,
+    ExplainIn,
+    ExplainOut,
     SearchIn,
     SearchOut,
 )
-from service.usecases import answering
+from service.usecases import answering, explain
 from service.usecases.inference import infer_options
 from service.usecases.search import SearchOptions, TimeWindow
 
@@ -103,4 +105,26 @@ async def answer(
                 answering.answer(runtime, caller, name, options, body.token_budget, body.generator)
             )
         )
+    )
+
+
+@router.post(
+    "/explain",
+    response_model=ExplainOut,
+    responses={502: {"model": ErrorOut, "description": "The generator failed"}},
+)
+async def explain_chunks(
+    name: str, body: ExplainIn, runtime: RuntimeDep, caller: CallerDep, pool: QueryPoolDep
+) -> Response:
+    request = explain.ExplainRequest(
+        options=_options(body),
+        route=body.route,
+        token_budget=body.token_budget,
+        generator=body.generator,
+        document_id=body.document_id,
+        chunk_id=body.chunk_id,
+        as_key=body.as_key,
+    )
+    return await pool.run(
+        _json(lambda: explanation_json(explain.explain(runtime, caller, name, request)))
     )

@@ -300,9 +300,14 @@ def test_writer_of_group_a_may_replace_a_document_it_shares_a_group_with(world: 
 
 
 def assert_same_as_missing_collection(response: Any, missing: Any, name: str) -> None:
+    """Alike but for the name, and for the id of the trace a query saves (each its own)."""
     assert response.status_code == missing.status_code == 404
     expected = missing.json()["error"]["message"].replace("no-such-collection", name)
-    assert response.json() == {"error": {**missing.json()["error"], "message": expected}}
+    body, missing_body = response.json()["error"], missing.json()["error"]
+    assert ("trace_id" in body) == ("trace_id" in missing_body)
+    body.pop("trace_id", None)
+    missing_body.pop("trace_id", None)
+    assert body == {**missing_body, "message": expected}
 
 
 @pytest.mark.parametrize(
@@ -316,6 +321,7 @@ def assert_same_as_missing_collection(response: Any, missing: Any, name: str) ->
         ("post", "/v1/collections/bikes/search", {"query": "brakes"}),
         ("post", "/v1/collections/bikes/context", {"query": "brakes"}),
         ("post", "/v1/collections/bikes/answer", {"query": "brakes"}),
+        ("post", "/v1/collections/bikes/explain", {"query": "brakes", "document_id": "x"}),
     ],
 )
 def test_writer_limited_to_one_collection_cannot_touch_another(
@@ -474,3 +480,25 @@ def test_no_generated_query_or_filter_reveals_a_b_only_document(
     assert returned_document_ids(route, response.json()) <= VISIBLE_TO_A
     trace = world.reader_a.get(f"/v1/traces/{response.json()['trace_id']}")
     assert_no_b_only_content(trace)
+
+
+@pytest.mark.parametrize("route", ["search", "context", "answer"])
+def test_explain_reports_a_hidden_document_as_missing_and_never_names_it(
+    world: World, route: str
+) -> None:
+    body = {"query": "brakes quokkablue recall", "route": route}
+    hidden = world.reader_a.post(
+        "/v1/collections/bikes/explain", json={**body, "document_id": B_ONLY_ID}
+    )
+    missing = world.reader_a.post(
+        "/v1/collections/bikes/explain", json={**body, "document_id": "no-such-memo"}
+    )
+    assert hidden.status_code == missing.status_code == 404
+    expected = missing.json()["error"]["message"].replace("no-such-memo", B_ONLY_ID)
+    assert hidden.json() == {"error": {**missing.json()["error"], "message": expected}}
+    for document_id in sorted(VISIBLE_TO_A):
+        response = world.reader_a.post(
+            "/v1/collections/bikes/explain", json={**body, "document_id": document_id}
+        )
+        assert response.status_code == 200, response.text
+        assert_no_b_only_content(response)

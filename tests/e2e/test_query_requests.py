@@ -35,6 +35,13 @@ def error_of(response: Any, status: int, code: str) -> dict[str, Any]:
     return error
 
 
+def assert_failed_trace(api: Api, trace_id: str, code: str) -> None:
+    """A query refused once it reached its use case keeps a trace naming the error."""
+    trace = api.get(f"/v1/traces/{trace_id}")
+    assert trace.status_code == 200, trace.text
+    assert trace.json()["error"]["code"] == code
+
+
 @pytest.mark.parametrize("route", ROUTES)
 def test_an_overridden_authentication_dependency_takes_effect_on_every_query_route(
     stocked: Api, route: str
@@ -80,6 +87,7 @@ def test_a_query_of_spaces_names_the_query_field(stocked: Api) -> None:
     error = error_of(
         stocked.post("/v1/collections/bikes/search", json={"query": "   "}), 422, "invalid_request"
     )
+    assert_failed_trace(stocked, error.pop("trace_id"), "invalid_request")
     assert error == {
         "code": "invalid_request",
         "message": "Field 'query' must not be empty.",
@@ -131,7 +139,9 @@ def test_a_time_window_reaching_before_year_one_names_now(stocked: Api) -> None:
         "time_window": {"attribute": "published", "last": "P1Y", "now": "0001-03-01T00:00:00Z"},
     }
     response = stocked.post("/v1/collections/bikes/search", json=body)
-    assert error_of(response, 422, "invalid_request") == {
+    error = error_of(response, 422, "invalid_request")
+    assert_failed_trace(stocked, error.pop("trace_id"), "invalid_request")
+    assert error == {
         "code": "invalid_request",
         "message": (
             "time_window.now 0001-03-01T00:00:00+00:00 is too early: P1Y before it falls "

@@ -46,6 +46,7 @@ async function render() {
   if (ticket !== rendering) return;
   view.replaceChildren(content || errorView(new Error("No such page in the console.")));
   view.dataset.ready = path || "/";
+  window.scrollTo(0, 0);
 }
 
 function markSection(path) {

@@ -130,9 +130,9 @@ class ConsoleErrors:
         return [m for m in self.messages if not FAILED_RESOURCE.search(m)]
 
 
-def explain_is_served(server: DemoServer) -> bool:
-    """Whether the server has the explain route (a missing route answers ``route_not_found``)."""
-    response = server.api("POST", f"/v1/collections/{DEMO_COLLECTION}/explain", json={})
+def route_is_served(server: DemoServer, method: str, path: str) -> bool:
+    """Whether the server has a route (a missing one answers ``route_not_found``)."""
+    response = server.api(method, path, **({"json": {}} if method == "POST" else {}))
     return response.json().get("error", {}).get("code") != "route_not_found"
 
 
@@ -261,6 +261,25 @@ def test_a_user_browses_filters_queries_and_follows_a_trace_in_the_console(
     assert sorted(decisions) == sorted([c["chunk_id"], c["outcome"]] for c in packing["chunks"])
     page.screenshot(path=str(screenshot_dir / "trace.png"))
 
+    # The trace list, newest first, as the API lists it for the same key.
+    collection_path = f"/v1/collections/{DEMO_COLLECTION}"
+    # The 401 of the first, keyless view, then the bad filter's 400: both on purpose.
+    expected_failures = [(401, "/v1/collections"), (400, f"{collection_path}/documents")]
+    page.click(".rail a[data-section=traces]")
+    if route_is_served(demo_server, "GET", "/v1/traces"):
+        page.wait_for_selector("#trace-table")
+        listed_traces = demo_server.api("GET", "/v1/traces", params={"limit": 25}).json()
+        rows = page.locator("#trace-table tbody tr").evaluate_all(
+            "rows => rows.map(r => r.dataset.trace)"
+        )
+        assert rows == [summary["trace_id"] for summary in listed_traces["traces"]]
+        assert trace_id in rows
+    else:
+        page.wait_for_selector(".not-available")
+        expected_failures.append((404, "/v1/traces"))
+    page.go_back()
+    page.wait_for_selector("#packing-table")
+
     # One click from a packed chunk to the explain form, carrying the trace's request.
     chunk_id = packed[0]["chunk_id"]
     page.click(f"#packing-table tr[data-chunk='{chunk_id}'] a")
@@ -269,10 +288,7 @@ def test_a_user_browses_filters_queries_and_follows_a_trace_in_the_console(
     assert page.input_value("#explain-query") == QUESTION
     assert page.input_value("#explain-route") == "answer"
     page.click("#explain-form button[type=submit]")
-    collection_path = f"/v1/collections/{DEMO_COLLECTION}"
-    # The 401 of the first, keyless view, then the bad filter's 400: both on purpose.
-    expected_failures = [(401, "/v1/collections"), (400, f"{collection_path}/documents")]
-    if explain_is_served(demo_server):
+    if route_is_served(demo_server, "POST", f"{collection_path}/explain"):
         verdict = page.locator(f"#explain-result li.verdict[data-chunk='{chunk_id}']")
         verdict.wait_for()
         request = trace["request"]

@@ -49,12 +49,14 @@ export async function view(query) {
     h("span"),
     h("div", { class: "row" }, h("button", { type: "submit" }, "Explain")),
   );
-  const page = panel("Why not this document?", h("p", { class: "hint" }, "Runs the query again and says, for each chunk, the first stage that left it out and why."), form);
+  const hint = h("p", { class: "hint" }, "Runs the request again and says, for each chunk of the document, the first stage that left it out and why.");
   const targetId = query.get(target);
   if (chosen && targetId && query.get("query") && query.get("run") === "1") {
-    page.append(await result(chosen, explainBody(query, target, targetId)));
+    // The finding first; the request stays below, to change and run again.
+    const found = await result(chosen, explainBody(query, target, targetId));
+    return panel("Why not this document?", found, h("details", { class: "again", open: found.id !== "explain-result" }, h("summary", null, "Change the request"), form));
   }
-  return page;
+  return panel("Why not this document?", hint, form);
 }
 
 function submit(event) {
@@ -104,7 +106,7 @@ function renderExplanation(collection, answer) {
     h(
       "p",
       { class: "summary" },
-      `As a ${answer.route} in ${answer.mode} mode${answer.as_key ? ` for key ${answer.as_key}` : ""}: `,
+      `Followed through the ${answer.route} route in ${answer.mode} mode${answer.as_key ? `, as key ${answer.as_key} sees it` : ""}: `,
       `${answer.candidates} candidates, top_k ${answer.top_k}, depth ${answer.depth}${budget}.`,
     ),
     answer.inferred_filter ? h("p", { class: "inferred" }, "Filter from the question: ", h("code", null, answer.inferred_filter.cql2_text || "none")) : null,

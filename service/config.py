@@ -50,7 +50,6 @@ class Settings(BaseSettings):
     trace_retention_count: int = Field(100_000, ge=1)
 
     cors_origins: list[str] = []
-    docs_enabled: bool = False
 
     generator: Literal["extractive", "chat-http"] = "extractive"
     extractive_max_sentences: int = Field(4, ge=1, le=20)

@@ -5,7 +5,6 @@ from __future__ import annotations
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from importlib.metadata import version
-from typing import Any
 
 from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
@@ -15,6 +14,7 @@ from service.api.body import BodySizeLimit
 from service.api.errors import install_error_handlers
 from service.api.query_pool import QueryPool
 from service.api.routes import backups, collections, documents, health, retrieval, traces
+from service.api.routes.console import mount_console
 from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
 
@@ -32,13 +32,15 @@ def create_app(runtime: Runtime) -> FastAPI:
         query_pool.close()
         runtime.close()
 
-    docs: dict[str, Any] = {} if settings.docs_enabled else {"docs_url": None, "redoc_url": None}
     app = FastAPI(
         title="excerpta",
         version=version("excerpta"),
         description="Retrieval with filters, access control, cited context and traces.",
         lifespan=lifespan,
-        **docs,
+        # The interactive docs pages load their scripts from a public CDN, so they would be
+        # blank on an offline server and would widen the content policy; /openapi.json stays.
+        docs_url=None,
+        redoc_url=None,
     )
     app.state.runtime = runtime
     app.state.query_pool = query_pool
@@ -47,6 +49,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     # The retrieval routes come first: they are the busiest, and routes are matched in order.
     for module in (retrieval, health, collections, documents, traces, backups):
         app.include_router(module.router)
+    mount_console(app)
     # Each added middleware wraps the ones before it. The access log is outermost, so it sees
     # every response; CORS wraps the body limit, so a browser can read even a 413.
     app.add_middleware(BodySizeLimit, limit=settings.max_body_bytes)

@@ -134,7 +134,10 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
     started = time.perf_counter()
     mask, visible = candidate_mask(snapshot, query.filter, query.groups)
     candidates = int(np.count_nonzero(mask))
-    stages = [StageTrace("filter", _since(started), {"candidates": candidates, "rows": visible})]
+    # ``chunks`` counts every live chunk, hidden ones too, for the funnel an admin reads; the
+    # trace is read back without it by anyone else (``service.usecases.traces``).
+    counts = {"candidates": candidates, "rows": visible, "chunks": snapshot.live_rows}
+    stages = [StageTrace("filter", _since(started), counts)]
     scan = None
     if query.vector is not None and query.mode != "lexical":
         scan = begin_semantic_ranking(snapshot, query.vector, candidates)

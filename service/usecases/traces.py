@@ -188,8 +188,22 @@ def get_trace(runtime: Runtime, caller: Caller, trace_id: str) -> dict[str, Any]
         "route": trace["route"],
         "collection": trace["collection"],
         "created_at": trace["created_at"],
-        **trace["body"],
+        **(trace["body"] if caller.is_admin else _without_hidden_counts(trace["body"])),
     }
+
+
+# Counts that include chunks the caller may not see: only an admin reads them.
+_HIDDEN_COUNTS = frozenset({"chunks"})
+
+
+def _without_hidden_counts(body: dict[str, Any]) -> dict[str, Any]:
+    stages = [
+        {**stage, "counts": {k: v for k, v in stage["counts"].items() if k not in _HIDDEN_COUNTS}}
+        if isinstance(stage.get("counts"), dict)
+        else stage
+        for stage in body.get("stages", [])
+    ]
+    return {**body, "stages": stages}
 
 
 def _visible(trace: dict[str, Any] | None, caller: Caller) -> bool:

@@ -192,6 +192,21 @@ def test_the_trace_of_a_reader_reports_no_count_of_hidden_chunks(world: World) -
         assert all(n <= visible_chunks for n in numbers), stage
 
 
+def test_an_admin_reads_how_many_chunks_a_readers_query_did_not_see(world: World) -> None:
+    response = world.reader_a.post(
+        "/v1/collections/bikes/search", json={"query": "brakes", "mode": "lexical"}
+    )
+    trace_path = f"/v1/traces/{response.json()['trace_id']}"
+    as_reader = world.reader_a.get(trace_path).json()["stages"][0]
+    as_admin = world.admin.get(trace_path).json()["stages"][0]
+    all_chunks = world.admin.get("/v1/collections/bikes").json()["chunks"]
+    visible_chunks = world.reader_a.get("/v1/collections/bikes").json()["chunks"]
+    assert as_reader["stage"] == as_admin["stage"] == "filter"
+    assert "chunks" not in as_reader["counts"]
+    assert as_reader["counts"]["rows"] == as_admin["counts"]["rows"] == visible_chunks
+    assert as_admin["counts"]["chunks"] == all_chunks > visible_chunks
+
+
 def test_hidden_document_is_reported_exactly_like_a_missing_one(world: World) -> None:
     hidden = world.reader_a.get(f"/v1/collections/bikes/documents/{B_ONLY_ID}")
     missing = world.reader_a.get("/v1/collections/bikes/documents/no-such-doc")

@@ -55,7 +55,6 @@ def test_defaults_are_the_documented_limits() -> None:
     assert settings.max_token_budget == 32_768
     assert settings.rate_limit_per_second == 0
     assert settings.cors_origins == []
-    assert settings.docs_enabled is False
 
 
 def test_a_body_over_the_limit_with_content_length_is_413(client_for: Callable[..., Api]) -> None:
@@ -291,12 +290,6 @@ def test_the_body_limit_applies_to_the_query_routes_declared_or_streamed(
     status, body = anyio.run(_call_with_chunks, app, [query[:60], query[60:]], path)
     assert status == 413
     assert json.loads(body)["error"]["code"] == "payload_too_large"
-
-
-@pytest.mark.parametrize("path", ["/docs", "/redoc"])
-def test_interactive_docs_are_off_unless_enabled(client_for: Callable[..., Api], path: str) -> None:
-    assert client_for().client.get(path).status_code == 404
-    assert client_for(docs_enabled=True).client.get(path).status_code == 200
 
 
 def test_the_openapi_document_is_served(client_for: Callable[..., Api]) -> None:

@@ -10,6 +10,7 @@ to a query over HTTP, so the hot routes are asynchronous and hand their work to 
 from __future__ import annotations
 
 import asyncio
+import contextvars
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from typing import TypeVar
@@ -25,7 +26,9 @@ class QueryPool:
         self._executor = ThreadPoolExecutor(threads, thread_name_prefix="excerpta-query")
 
     async def run(self, call: Callable[[], T]) -> T:
-        return await asyncio.get_running_loop().run_in_executor(self._executor, call)
+        # In a copy of the request's context, so what the call notes for the logs is seen.
+        context = contextvars.copy_context()
+        return await asyncio.get_running_loop().run_in_executor(self._executor, context.run, call)
 
     def close(self) -> None:
         self._executor.shutdown(wait=True, cancel_futures=True)

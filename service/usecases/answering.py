@@ -23,7 +23,12 @@ from service.retrieval.query import Hit, RetrievalResult, retrieve
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
-from service.usecases.search import SearchOptions, check_limits, prepare_query
+from service.usecases.search import (
+    QUERY_VECTOR_SOURCE,
+    SearchOptions,
+    check_limits,
+    prepare_query,
+)
 from service.usecases.traces import TraceRecorder
 
 
@@ -132,6 +137,23 @@ def _retrieve(
     return _Retrieval(view, result, recorder, prepared.inferred)
 
 
+def _finish(runtime: Runtime, caller: Caller, retrieval: _Retrieval, **summary: Any) -> None:
+    """Hand the trace to the writer and count the query's stages, candidates and hits, and
+    the model's time for the question (unless the request sent its own vector)."""
+    recorder = retrieval.recorder
+    recorder.save(runtime.traces, caller, **summary)
+    metrics = runtime.metrics
+    metrics.observe_query(
+        recorder.route,
+        [(stage["stage"], stage["milliseconds"]) for stage in recorder.stages],
+        candidates=retrieval.result.candidates,
+        hits=len(retrieval.result.hits),
+    )
+    for stage in recorder.stages:
+        if stage["stage"] == "query_embedding" and stage["source"] != QUERY_VECTOR_SOURCE:
+            metrics.observe_embedding("query", 1, stage["milliseconds"] / 1000.0)
+
+
 def _hit(view: IndexView, row: int, score: float, ranks: Mapping[str, int | None]) -> HitView:
     chunk = view.snapshot.record(row)
     return HitView(
@@ -162,7 +184,7 @@ def search(
     inferred = retrieval.inferred
     if not keep_trace:
         return SearchResult(hits, candidates, "", inferred)
-    recorder.save(runtime.traces, caller, hits=[h.chunk_id for h in hits], candidates=candidates)
+    _finish(runtime, caller, retrieval, hits=[h.chunk_id for h in hits], candidates=candidates)
     return SearchResult(hits, candidates, recorder.trace_id, inferred)
 
 
@@ -278,7 +300,7 @@ def build_context(
     )
     retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
     packed = _pack(runtime, retrieval, token_budget, 1.0)
-    recorder.save(runtime.traces, caller, tokens_used=packed.tokens_used)
+    _finish(runtime, caller, retrieval, tokens_used=packed.tokens_used)
     return _context_result(packed, recorder.trace_id, retrieval.inferred)
 
 
@@ -301,7 +323,8 @@ def answer(
     facts = retrieval.view.facts
 
     def declined(reason: str, passages: tuple[Passage, ...] = ()) -> AnswerResult:
-        recorder.save(runtime.traces, caller, reason=reason)
+        _finish(runtime, caller, retrieval, reason=reason)
+        runtime.metrics.observe_answer(reason)
         return AnswerResult(
             answer=None,
             reason=reason,
@@ -319,13 +342,14 @@ def answer(
     try:
         generated = _generate(generator, options.query, packed, recorder)
     except GeneratorUnavailable as exc:
-        recorder.save(runtime.traces, caller, generator_error=exc.message)
+        _finish(runtime, caller, retrieval, generator_error=exc.message)
         raise GeneratorUnavailable(
             exc.message, context=_context_result(packed, recorder.trace_id, retrieval.inferred)
         ) from exc
     if generated.answer is None:
         return declined(generated.reason or "insufficient_evidence", packed.passages)
-    recorder.save(runtime.traces, caller, markers=list(generated.markers_used))
+    _finish(runtime, caller, retrieval, markers=list(generated.markers_used))
+    runtime.metrics.observe_answer(None)
     return AnswerResult(
         answer=generated.answer,
         reason=None,

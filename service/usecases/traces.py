@@ -16,6 +16,7 @@ from typing import Any
 
 from service.errors import TraceNotFound
 from service.json_text import json_text
+from service.request_context import note_trace
 from service.retrieval.query import StageTrace
 from service.store import repository
 from service.usecases.callers import Caller
@@ -54,6 +55,7 @@ class TraceRecorder:
         )
 
     def save(self, writer: TraceWriter, caller: Caller, **summary: Any) -> None:
+        note_trace(self.trace_id)
         body = {
             "request": self.request,
             "stages": self.stages,

@@ -18,7 +18,10 @@ router = APIRouter(tags=["operators"])
     "/metrics",
     response_class=Response,
     responses={
-        200: {"content": {"text/plain": {}}, "description": "The Prometheus text format"},
+        200: {
+            "content": {"text/plain": {"schema": {"type": "string"}}},
+            "description": "The Prometheus text format",
+        },
         401: {"model": ErrorOut, "description": "The metrics key is required and was not sent"},
     },
 )

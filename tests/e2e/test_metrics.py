@@ -252,3 +252,11 @@ def test_a_metrics_key_in_the_settings_is_required_as_a_bearer_key(
             headers={"Authorization": f"Bearer {api_key}"},
         )
         assert put.status_code == 201, put.text
+
+
+def test_an_empty_metrics_key_setting_asks_for_no_key(
+    make_runtime: Callable[..., Runtime],
+) -> None:
+    with TestClient(create_app(make_runtime(metrics_key=""))) as client:
+        # ``scrape`` sends no Authorization header and requires a 200.
+        assert scrape(client)

@@ -1,4 +1,5 @@
-"""The Prometheus scrape: no API key, but the metrics key when the settings give one."""
+"""The Prometheus scrape: no API key, but the metrics key when the settings give one (an empty
+setting, as a compose file's unset variable gives, is none)."""
 
 from __future__ import annotations
 
@@ -26,11 +27,12 @@ router = APIRouter(tags=["operators"])
     },
 )
 def metrics(request: Request, runtime: RuntimeDep) -> Response:
-    expected = runtime.settings.metrics_key
-    if expected is not None:
+    key = runtime.settings.metrics_key
+    expected = "" if key is None else key.get_secret_value()
+    if expected:
         scheme, _, presented = request.headers.get("authorization", "").partition(" ")
         if scheme.lower() != "bearer" or not hmac.compare_digest(
-            presented.strip().encode(), expected.get_secret_value().encode()
+            presented.strip().encode(), expected.encode()
         ):
             raise Unauthenticated("The metrics key is required in the Authorization header.")
     return Response(runtime.metrics.exposition(), media_type=CONTENT_TYPE_LATEST)

@@ -54,7 +54,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     from service.api.server import serve
     from service.logging_setup import configure_logging
 
-    configure_logging()
+    configure_logging(log_format=_settings(args).log_format)
     runtime = _runtime(args)
     settings = runtime.settings
     if settings.blas_threads:

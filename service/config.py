@@ -51,6 +51,11 @@ class Settings(BaseSettings):
 
     cors_origins: list[str] = []
 
+    # "json" writes each log record as one JSON object per line.
+    log_format: Literal["text", "json"] = "text"
+    # When set, GET /metrics wants it as a bearer key; unset, the route needs no key.
+    metrics_key: SecretStr | None = None
+
     generator: Literal["extractive", "chat-http"] = "extractive"
     extractive_max_sentences: int = Field(4, ge=1, le=20)
     chat_url: str | None = None

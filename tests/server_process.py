@@ -16,8 +16,9 @@ from tests.hashing_embedder import HashingTestEmbedder
 
 
 def main() -> int:
-    configure_logging()
-    serve(Runtime(Settings(), HashingTestEmbedder()))
+    settings = Settings()
+    configure_logging(log_format=settings.log_format)
+    serve(Runtime(settings, HashingTestEmbedder()))
     return 0
 
 

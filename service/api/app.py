@@ -13,8 +13,17 @@ from service.api.access_log import AccessLog
 from service.api.body import BodySizeLimit
 from service.api.errors import install_error_handlers
 from service.api.query_pool import QueryPool
-from service.api.routes import backups, collections, documents, health, retrieval, traces
+from service.api.routes import (
+    backups,
+    collections,
+    documents,
+    health,
+    metrics,
+    retrieval,
+    traces,
+)
 from service.api.routes.console import mount_console
+from service.logging_setup import register_secret
 from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
 
@@ -23,6 +32,8 @@ def create_app(runtime: Runtime) -> FastAPI:
     settings = runtime.settings
 
     query_pool = QueryPool()
+    if settings.metrics_key is not None:
+        register_secret(settings.metrics_key.get_secret_value())
 
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
@@ -47,7 +58,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     app.state.rate_limiter = RateLimiter(settings.rate_limit_per_second, settings.rate_limit_burst)
     install_error_handlers(app)
     # The retrieval routes come first: they are the busiest, and routes are matched in order.
-    for module in (retrieval, health, collections, documents, traces, backups):
+    for module in (retrieval, health, collections, documents, traces, backups, metrics):
         app.include_router(module.router)
     mount_console(app)
     # Each added middleware wraps the ones before it. The access log is outermost, so it sees
@@ -60,5 +71,5 @@ def create_app(runtime: Runtime) -> FastAPI:
             allow_methods=["GET", "POST", "PUT", "DELETE"],
             allow_headers=["Authorization", "Content-Type"],
         )
-    app.add_middleware(AccessLog)
+    app.add_middleware(AccessLog, metrics=runtime.metrics)
     return app

@@ -8,6 +8,7 @@ from fastapi import Depends, Request
 
 from service.api.query_pool import QueryPool
 from service.errors import Unauthenticated
+from service.request_context import note_key
 from service.usecases.callers import LOCAL_ADMIN, Caller
 from service.usecases.keys import authenticate
 from service.usecases.ratelimit import RateLimiter
@@ -38,11 +39,13 @@ async def get_caller(request: Request, runtime: RuntimeDep) -> Caller:
     instead of paying a hop to a worker thread on every request.
     """
     if runtime.settings.auth == "disabled":
+        note_key(LOCAL_ADMIN.name)
         return LOCAL_ADMIN
     scheme, _, presented = request.headers.get("authorization", "").partition(" ")
     if scheme.lower() != "bearer":
         raise Unauthenticated("A valid API key is required in the Authorization header.")
     caller = authenticate(runtime.key_reader, presented.strip())
+    note_key(caller.name)
     rate_limiter: RateLimiter = request.app.state.rate_limiter
     rate_limiter.check(caller)
     return caller

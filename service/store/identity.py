@@ -38,6 +38,7 @@ class StoreGuard:
         self._file: tuple[int, int] | None = None
         self._failure: str | None = None
         self._lock = threading.Lock()
+        self._errors: dict[str, int] = {}
 
     def remember(self) -> None:
         """Note the store as it is now; called once the migrations have run."""
@@ -93,7 +94,16 @@ class StoreGuard:
         if isinstance(explained, StorageUnavailable):
             explained = self.file_moved() or explained
             self.failed(explained.message)
+        kind = _error_kind(explained)
+        with self._lock:
+            self._errors[kind] = self._errors.get(kind, 0) + 1
         return explained
+
+    def errors(self) -> dict[str, int]:
+        """Failures explained since the start, by kind: ``lost_race`` (retried by the writer),
+        ``unavailable`` and ``unexplained`` (a bug, left to surface)."""
+        with self._lock:
+            return dict(self._errors)
 
     def _lost(self) -> StorageUnavailable | None:
         try:
@@ -144,3 +154,11 @@ class StoreGuard:
     def _unavailable(self, logged: str, said: str) -> StorageUnavailable:
         log.error("the store is unavailable: %s", logged)
         return StorageUnavailable(f"The store is unavailable: {said}.")
+
+
+def _error_kind(explained: ServiceError | None) -> str:
+    if explained is None:
+        return "unexplained"
+    if isinstance(explained, StorageUnavailable):
+        return "unavailable"
+    return "lost_race"

@@ -23,7 +23,12 @@ from service.retrieval.query import Hit, RetrievalResult, retrieve
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
-from service.usecases.search import SearchOptions, check_limits, prepare_query
+from service.usecases.search import (
+    QUERY_VECTOR_SOURCE,
+    SearchOptions,
+    check_limits,
+    prepare_query,
+)
 from service.usecases.traces import TraceRecorder
 
 
@@ -132,6 +137,23 @@ def _retrieve(
     return _Retrieval(view, result, recorder, prepared.inferred)
 
 
+def _finish(runtime: Runtime, caller: Caller, retrieval: _Retrieval, **summary: Any) -> None:
+    """Hand the trace to the writer and count the query's stages, candidates and hits, and
+    the model's time for the question (unless the request sent its own vector)."""
+    recorder = retrieval.recorder
+    recorder.save(runtime.traces, caller, **summary)
+    metrics = runtime.metrics
+    metrics.observe_query(
+        recorder.route,
+        [(stage["stage"], stage["milliseconds"]) for stage in recorder.stages],
+        candidates=retrieval.result.candidates,
+        hits=len(retrieval.result.hits),
+    )
+    for stage in recorder.stages:
+        if stage["stage"] == "query_embedding" and stage["source"] != QUERY_VECTOR_SOURCE:
+            metrics.observe_embedding("query", 1, stage["milliseconds"] / 1000.0)
+
+
 def _hit(view: IndexView, row: int, score: float, ranks: Mapping[str, int | None]) -> HitView:
     chunk = view.snapshot.record(row)
     return HitView(
@@ -164,9 +186,10 @@ def search(
         retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=False)
         hits = tuple(_hit(retrieval.view, h.row, h.score, h.ranks) for h in retrieval.result.hits)
         candidates = retrieval.result.candidates
-        recorder.save(
-            runtime.traces,
+        _finish(
+            runtime,
             caller,
+            retrieval,
             outcome="returned",
             hit_count=len(hits),
             hits=[h.chunk_id for h in hits],
@@ -300,9 +323,10 @@ def build_context(
         check_budget(runtime, token_budget)
         retrieval = _retrieve(runtime, caller, collection, options, recorder, whole_ranking=True)
         packed = _pack(runtime, retrieval, token_budget, 1.0)
-        recorder.save(
-            runtime.traces,
+        _finish(
+            runtime,
             caller,
+            retrieval,
             outcome="returned",
             hit_count=_chunk_count(packed.passages),
             tokens_used=packed.tokens_used,
@@ -346,13 +370,15 @@ def _answer(
     facts = retrieval.view.facts
 
     def declined(reason: str, passages: tuple[Passage, ...] = ()) -> AnswerResult:
-        recorder.save(
-            runtime.traces,
+        _finish(
+            runtime,
             caller,
+            retrieval,
             outcome="declined",
             hit_count=_chunk_count(passages),
             reason=reason,
         )
+        runtime.metrics.observe_answer(reason)
         return AnswerResult(
             answer=None,
             reason=reason,
@@ -370,9 +396,10 @@ def _answer(
     try:
         generated = _generate(generator, options.query, packed, recorder)
     except GeneratorUnavailable as exc:
-        recorder.save(
-            runtime.traces,
+        _finish(
+            runtime,
             caller,
+            retrieval,
             outcome="failed",
             hit_count=None,
             reason=exc.code,
@@ -383,13 +410,15 @@ def _answer(
         ) from exc
     if generated.answer is None:
         return declined(generated.reason or "insufficient_evidence", packed.passages)
-    recorder.save(
-        runtime.traces,
+    _finish(
+        runtime,
         caller,
+        retrieval,
         outcome="answered",
         hit_count=_chunk_count(packed.passages),
         markers=list(generated.markers_used),
     )
+    runtime.metrics.observe_answer(None)
     return AnswerResult(
         answer=generated.answer,
         reason=None,

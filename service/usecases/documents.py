@@ -243,6 +243,10 @@ def upsert_documents(
         except _StalePreparation:
             continue
         changed = {r["id"] for r in results if r["status"] != "unchanged"}
+        runtime.metrics.observe_written(
+            [r["status"] for r in results],
+            sum(r["chunks"] for r in results if r["id"] in changed),
+        )
         if revision is not None:
             runtime.indexes.after_write(
                 collection,
@@ -289,6 +293,8 @@ def _prepare_batch(
     drafts = [c for m in (*built.values(), *rebuilt.values()) for c in m.chunks]
     with runtime.transaction() as session:
         vectors = embed_drafts(runtime.embedder, session, drafts)
+    if vectors.fresh:
+        runtime.metrics.observe_embedding("documents", len(vectors.fresh), vectors.model_seconds)
     return PreparedBatch(layout, tuple(prepared), built, rebuilt, vectors)
 
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -118,10 +119,12 @@ def materialise(
 
 @dataclass(frozen=True)
 class Vectors:
-    """A batch's vectors: ``cached`` as the store holds them, ``fresh`` just made by the model."""
+    """A batch's vectors: ``cached`` as the store holds them, ``fresh`` just made by the model
+    in ``model_seconds``."""
 
     cached: dict[str, np.ndarray]
     fresh: dict[str, np.ndarray]
+    model_seconds: float = 0.0
 
     def stored(self, session: Session, embedder: str) -> dict[str, np.ndarray]:
         """Store the fresh vectors inside a write and return every vector as the store keeps it.
@@ -145,8 +148,9 @@ def embed_drafts(embedder: Embedder, session: Session, drafts: Sequence[ChunkDra
     for draft in drafts:
         if draft.embedded_text_hash not in cached:
             missing.setdefault(draft.embedded_text_hash, draft.embedded_text)
+    started = time.perf_counter()
     fresh = embedder.embed_documents(list(missing.values())) if missing else ()
-    return Vectors(cached, dict(zip(missing, fresh, strict=True)))
+    return Vectors(cached, dict(zip(missing, fresh, strict=True)), time.perf_counter() - started)
 
 
 def prepared_from_row(row: DocumentRow) -> PreparedDocument:

@@ -25,7 +25,7 @@ from service.attributes import AttributeValue, Schema, normalize_value, parse_sc
 from service.errors import CollectionNotFound
 from service.filters.inference.hints import AttributeHints, stored_hints
 from service.index.analyzer import Analyzer, english_stopwords
-from service.index.collection_index import ChunkRecord, CollectionIndex
+from service.index.collection_index import ChunkRecord, CollectionIndex, IndexSnapshot
 from service.index.document_text import gaps_between
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
 from service.index.records import chunk_record
@@ -160,6 +160,12 @@ class IndexRegistry:
         loaded = self._load(name)
         with self._lock:
             return self._entries.setdefault(name, loaded)
+
+    def snapshots(self) -> dict[str, IndexSnapshot]:
+        """The current snapshot of every collection this process has loaded."""
+        with self._lock:
+            entries = dict(self._entries)
+        return {name: entry.index.snapshot() for name, entry in entries.items()}
 
     def expire(self, name: str) -> None:
         """Have the next query re-read the collection: this process has just changed it."""

@@ -23,6 +23,7 @@ from service.store.repository import KeyReader
 from service.store.transactions import Transactions
 from service.usecases.generators import GeneratorRegistry
 from service.usecases.indexes import IndexRegistry, StoreIndexSource
+from service.usecases.metrics import HeldState, ServiceMetrics
 from service.usecases.rebuild import RebuildWorker, pending_rebuilds, rebuild_batch
 from service.usecases.trace_writer import TraceWriter, prune_traces, write_traces
 from service.usecases.writes import WriteRetries
@@ -67,6 +68,15 @@ class Runtime:
                 retention_days=settings.trace_retention_days,
                 retention_count=settings.trace_retention_count,
             ),
+        )
+        self.metrics = ServiceMetrics()
+        self.metrics.watch(
+            HeldState(
+                indexes=self.indexes.snapshots,
+                traces_waiting=self.traces.waiting,
+                traces_dropped=self.traces.dropped,
+                store_errors=self.store.errors,
+            )
         )
 
     @contextmanager

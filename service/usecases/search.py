@@ -32,6 +32,8 @@ from service.usecases.inference import OFF, InferOptions, InferredFilter, infer_
 
 FilterSpec = str | dict[str, Any] | None
 TRACE_TOP_ENTRIES = 20
+# The query embedding stage's source when the request brought its own vector.
+QUERY_VECTOR_SOURCE = "query_vector"
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -221,7 +223,7 @@ def prepare_query(
     depth = max(options.depth, options.top_k)
     vector = None
     milliseconds = None
-    source = "query_vector" if options.query_vector is not None else embedder.name
+    source = QUERY_VECTOR_SOURCE if options.query_vector is not None else embedder.name
     if options.mode != "lexical":
         started = time.perf_counter()
         if options.query_vector is not None:

@@ -66,6 +66,7 @@ class TraceWriter:
         self._thread: threading.Thread | None = None
         self._stopping = False
         self._written = 0
+        self._dropped = 0
 
     def submit(self, row: TraceRow) -> None:
         with self._condition:
@@ -73,6 +74,7 @@ class TraceWriter:
             if len(self._held) > self._max_held:
                 dropped = next(iter(self._held))
                 del self._held[dropped]
+                self._dropped += 1
                 log.warning(
                     "trace %s dropped: the store has refused trace writes for a while", dropped
                 )
@@ -96,6 +98,16 @@ class TraceWriter:
         """Every trace not yet written, for listings that must show them at once."""
         with self._condition:
             return list(self._held.values())
+
+    def waiting(self) -> int:
+        """Traces submitted and not yet written."""
+        with self._condition:
+            return len(self._held)
+
+    def dropped(self) -> int:
+        """Traces dropped unwritten since the start (see ``max_held``)."""
+        with self._condition:
+            return self._dropped
 
     def stop(self) -> None:
         """Write every held trace, then end the thread."""

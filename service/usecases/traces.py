@@ -28,6 +28,7 @@ from typing import Any, Literal, get_args
 
 from service.errors import InvalidRequest, ServiceError, TraceNotFound
 from service.json_text import json_text
+from service.request_context import note_trace
 from service.retrieval.query import StageTrace
 from service.store import repository
 from service.store.transactions import Transactions
@@ -126,6 +127,7 @@ class TraceRecorder:
         if self.saved:
             raise RuntimeError(f"trace {self.trace_id} was already saved")
         self.saved = True
+        note_trace(self.trace_id)
         milliseconds = round((time.perf_counter() - self.started) * 1000, 3)
         body = {
             "request": self.request,

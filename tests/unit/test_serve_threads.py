@@ -25,7 +25,7 @@ def _serve_with(monkeypatch: pytest.MonkeyPatch, settings: Settings) -> list[obj
     runtime = SimpleNamespace(settings=settings)
     monkeypatch.setattr(cli, "_runtime", lambda args: runtime)
     monkeypatch.setattr("service.api.server.serve", served.append)
-    monkeypatch.setattr("service.logging_setup.configure_logging", lambda: None)
+    monkeypatch.setattr("service.logging_setup.configure_logging", lambda **_: None)
     assert cli.cmd_serve(argparse.Namespace()) == 0
     return served
 

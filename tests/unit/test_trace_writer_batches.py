@@ -138,5 +138,7 @@ def test_past_the_held_limit_the_oldest_trace_is_dropped_with_a_warning(
             writer.submit(trace(name))
     assert writer.held("a") is None
     assert "trace a dropped" in caplog.text
+    assert (writer.waiting(), writer.dropped()) == (2, 1)
     writer.stop()
     assert store.batches == [["b", "c"]]
+    assert (writer.waiting(), writer.dropped()) == (0, 1)

@@ -28,13 +28,18 @@ def section_of_quote(passage: Passage, quote: str) -> str:
     places it; with no run of three words (or of the whole quote, when shorter) in common, the
     citation names the section where the passage starts.
     """
-    first = passage.section or ""
     if len(passage.sections) < 2:
-        return first
+        return passage.section or ""
     offset = _find_words(passage.text, quote)
     if offset is None:
-        return first
-    position = passage.char_start + offset
+        return passage.section or ""
+    return section_at(passage, passage.char_start + offset)
+
+
+def section_at(passage: Passage, position: int) -> str:
+    """The heading path in force at ``position`` (an offset in the passage's document)."""
+    if not passage.sections:
+        return passage.section or ""
     starts = [entry.char_start for entry in passage.sections]
     index = bisect.bisect_right(starts, position) - 1
     return passage.sections[max(index, 0)].path

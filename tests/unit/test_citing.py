@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from service.packing.citing import section_of_quote
+from service.packing.citing import section_at, section_of_quote
 from service.packing.packer import Passage, SectionEntry
 
 # A merged passage of an invented warranty policy, starting 100 characters into its document.
@@ -65,3 +65,10 @@ def test_a_passage_of_one_section_names_it_without_searching():
     single = Passage(2, "d", "D", "Brakes", ("d#0000",), "Squeeze the lever.", 5, 0, 18)
 
     assert section_of_quote(single, "anything at all") == "Brakes"
+
+
+def test_a_document_offset_is_in_the_section_entered_last_before_it():
+    assert section_at(PASSAGE, 100) == "FRAME WARRANTY"
+    assert section_at(PASSAGE, TRANSFER_AT - 1) == "FRAME WARRANTY"
+    assert section_at(PASSAGE, TRANSFER_AT) == "TRANSFER TO A NEW OWNER"
+    assert section_at(PASSAGE, 99) == "FRAME WARRANTY"

@@ -50,6 +50,7 @@ def passage_json(passage: Passage) -> dict[str, Any]:
         "document_id": passage.document_id,
         "title": passage.title,
         "section": passage.section or "",
+        "sections": list(passage.section_paths),
         "chunk_ids": list(passage.chunk_ids),
         "text": passage.text,
         "tokens": passage.tokens,

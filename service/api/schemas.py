@@ -289,6 +289,7 @@ class PassageOut(BaseModel):
     document_id: str
     title: str
     section: str
+    sections: list[str]
     chunk_ids: list[str]
     text: str
     tokens: int

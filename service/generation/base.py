@@ -2,7 +2,9 @@
 
 The contract requires that every ``[n]`` in an answer has a citation and every citation is
 used. Generators settle their text with ``settle_markers`` and ``GeneratedAnswer`` refuses to
-exist otherwise, so the caller can build citations from ``markers_used`` alone.
+exist otherwise, so the caller can build citations from ``markers_used`` alone. Settling also
+puts each marker where a reader expects it: `` [n]`` after the sentence's final punctuation,
+never inside a word or a bracket.
 """
 
 from __future__ import annotations
@@ -20,6 +22,16 @@ INSUFFICIENT_EVIDENCE = "insufficient_evidence"
 _MARKER_GROUP = re.compile(r"\[\s*(\d+(?:\s*,\s*\d+)*)\s*\]")
 _SPACE_BEFORE_PUNCTUATION = re.compile(r"[ \t]+([.,;:!?)])")
 _REPEATED_SPACES = re.compile(r"[ \t]{2,}")
+# A marker group with the spaces that set it off from the text before it.
+_QUOTED_MARKER = re.compile(r"[ \t]*\[\s*\d+(?:\s*,\s*\d+)*\s*\]")
+# A plain marker with the spaces that set it off from the text before it.
+_PLAIN_MARKER = re.compile(r"[ \t]*\[(\d+)\]")
+# What may end a sentence: its marks, then closing quotes or brackets.
+_SENTENCE_MARKS = frozenset(".!?…")
+_CLOSING_QUOTES = frozenset("\"'”’»")
+_BRACKETS = {"(": ")", "[": "]"}
+# Punctuation a marker may stand before: it continues the sentence.
+_CONTINUING = frozenset(",;:")
 
 
 @dataclass(frozen=True)
@@ -114,14 +126,102 @@ def clean_markers(text: str, valid_markers: Collection[int]) -> tuple[str, tuple
     return cleaned.strip(), tuple(removed)
 
 
+def place_markers(text: str) -> str:
+    """Move each plain marker ``[n]`` to where it reads as a citation of what precedes it.
+
+    A marker inside a word goes to the word's end, one inside a bracket after the bracket's
+    close, and one before the sentence's final punctuation (and closing quotes) after it; each
+    is then written as a space and ``[n]``, followed by a space unless punctuation that
+    continues the sentence follows.
+    """
+    pieces: list[str] = []
+    anchors: list[tuple[int, int]] = []
+    length = cursor = 0
+    for match in _PLAIN_MARKER.finditer(text):
+        piece = text[cursor : match.start()]
+        pieces.append(piece)
+        length += len(piece)
+        anchors.append((length, int(match.group(1))))
+        cursor = match.end()
+    if not anchors:
+        return text
+    pieces.append(text[cursor:])
+    plain = "".join(pieces)
+    placed = sorted(
+        (
+            (_marker_place(plain, position), order, marker)
+            for order, (position, marker) in enumerate(anchors)
+        ),
+    )
+    out: list[str] = []
+    cursor = 0
+    for index, (position, _, marker) in enumerate(placed):
+        if position > cursor or not out:
+            out.append(plain[cursor:position].rstrip(" \t"))
+            cursor = position
+        out.append(f" [{marker}]")
+        last_here = index + 1 == len(placed) or placed[index + 1][0] != position
+        if last_here and position < len(plain):
+            following = plain[position]
+            if not following.isspace() and following not in _CONTINUING:
+                out.append(" ")
+    out.append(plain[cursor:])
+    return _REPEATED_SPACES.sub(" ", "".join(out)).strip()
+
+
+def _marker_place(plain: str, position: int) -> int:
+    """Where a marker found at ``position`` of the marker-free ``plain`` text belongs."""
+    while position > 0 and plain[position - 1].isspace():
+        position -= 1
+    while 0 < position < len(plain) and plain[position - 1].isalnum() and plain[position].isalnum():
+        position += 1
+    open_brackets: list[str] = []
+    for character in plain[:position]:
+        if character in _BRACKETS:
+            open_brackets.append(_BRACKETS[character])
+        elif open_brackets and character == open_brackets[-1]:
+            open_brackets.pop()
+    if open_brackets:
+        for index in range(position, len(plain)):
+            if plain[index] in _BRACKETS:
+                open_brackets.append(_BRACKETS[plain[index]])
+            elif plain[index] == open_brackets[-1]:
+                open_brackets.pop()
+                if not open_brackets:
+                    position = index + 1
+                    break
+    while position < len(plain) and plain[position] in _SENTENCE_MARKS:
+        position += 1
+        while position < len(plain) and plain[position] in _CLOSING_QUOTES:
+            position += 1
+    return position
+
+
 def settle_markers(text: str, valid_markers: Collection[int]) -> SettledText:
-    """Clean ``text`` and report the markers it then uses: exactly those to cite."""
+    """Clean ``text``, place its markers, and report the markers it then uses: exactly those
+    to cite."""
     cleaned, removed = clean_markers(text, valid_markers)
-    return SettledText(text=cleaned, markers_used=markers_in(cleaned), removed_markers=removed)
+    placed = place_markers(cleaned)
+    return SettledText(text=placed, markers_used=markers_in(placed), removed_markers=removed)
+
+
+def cited_sentences(answer: str) -> dict[int, tuple[str, ...]]:
+    """For each marker, the text it cites: what precedes it back to the previous marker (a run
+    of markers such as ``[1] [2]`` cites one text), in the order the answer cites them."""
+    cited: dict[int, list[str]] = {}
+    latest = ""
+    cursor = 0
+    for match in _MARKER_GROUP.finditer(answer):
+        between = answer[cursor : match.start()].strip()
+        if between:
+            latest = between
+        cursor = match.end()
+        for number in match.group(1).split(","):
+            cited.setdefault(int(number), []).append(latest)
+    return {marker: tuple(texts) for marker, texts in cited.items()}
 
 
 def strip_marker_like(text: str) -> str:
-    """Remove bracketed numbers quoted from a source, which would read as our own markers."""
-    without = _MARKER_GROUP.sub("", text)
-    without = _SPACE_BEFORE_PUNCTUATION.sub(r"\1", without)
-    return _REPEATED_SPACES.sub(" ", without).strip()
+    """Remove bracketed numbers quoted from a source, which would read as our own markers,
+    with the spaces before them; the rest of the text stays as quoted."""
+    return _QUOTED_MARKER.sub("", text).strip()

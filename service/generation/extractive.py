@@ -118,11 +118,10 @@ def _split_prose(prose: str) -> list[str]:
 
 
 def _with_marker(sentence: str, marker: int) -> str:
-    """``... five years [2].``: the marker goes before the closing punctuation."""
-    terminal = _TERMINAL.search(sentence)
-    if terminal is None:
-        return f"{sentence} [{marker}]."
-    return f"{sentence[: terminal.start()].rstrip()} [{marker}]{terminal.group(0)}"
+    """``... five years. [2]``: a line with no closing punctuation (a list item) gets a stop."""
+    if _TERMINAL.search(sentence) is None:
+        sentence = f"{sentence.rstrip(',;:')}."
+    return f"{sentence} [{marker}]"
 
 
 class ExtractiveGenerator:

@@ -5,7 +5,12 @@ what a chunk can contain: headings stay as their own line (they carry meaning fo
 for the reader), blocks are separated by exactly one blank line, list items and table rows sit on
 their own lines, and whitespace inside a block is collapsed. Markdown is rendered by
 markdown-it-py and then read by the same HTML walker as HTML documents, so both formats follow one
-set of block rules.
+set of block rules. A page's navigation, banner and footer are not the document's content and are
+dropped, so they never become a chunk or a section of their own.
+
+Plain text keeps its lines as written; its headings are the ones a reader sees: a line underlined
+with ``=`` or ``-``, or a short upper-case line that starts a paragraph. Heading levels follow the
+order in which the document first uses each style (the common practice of reStructuredText).
 """
 
 from __future__ import annotations
@@ -51,7 +56,6 @@ _BLOCKS = frozenset(
         "html",
         "legend",
         "main",
-        "nav",
         "p",
         "section",
         "summary",
@@ -60,6 +64,13 @@ _BLOCKS = frozenset(
         "thead",
     }
 )
+# A page's chrome rather than its content: navigation, and the banner and footer of the page as a
+# whole. Per HTML-AAM, ``header`` and ``footer`` are the page's banner and footer (ARIA roles
+# ``banner`` and ``contentinfo``) only when no sectioning element or ``main`` holds them; inside
+# an article they are that article's own heading block and byline, which are kept.
+_CHROME_ROLES = frozenset({"navigation", "banner", "contentinfo"})
+_PAGE_ROLES = {"header": "banner", "footer": "contentinfo"}
+_SECTIONING = frozenset({"article", "aside", "main", "nav", "section"})
 
 
 @dataclass(frozen=True, slots=True)
@@ -103,15 +114,80 @@ _MARKDOWN = MarkdownIt("commonmark", {"maxNesting": 100}).enable(["table", "stri
 
 def _parse_plain(text: str) -> ParsedText:
     lines = [line.rstrip() for line in unicodedata.normalize("NFC", text).splitlines()]
-    kept: list[str] = []
-    for line in lines:
-        if line or (kept and kept[-1]):
-            kept.append(line)
-    while kept and not kept[-1]:
+    styles = _plain_heading_styles(lines)
+    kept: list[tuple[str, str | None]] = []
+    for index, line in enumerate(lines):
+        if styles.get(index) == _UNDERLINE_LINE:
+            continue
+        if line or (kept and kept[-1][0]):
+            kept.append((line, styles.get(index)))
+    while kept and not kept[-1][0]:
         kept.pop()
-    normalised = "\n".join(kept)
-    sections = (Section(0, len(normalised), ()),) if normalised else ()
-    return ParsedText(normalised, sections)
+    normalised = "\n".join(line for line, _ in kept)
+    order: list[str] = []
+    path: list[tuple[int, str]] = []
+    starts: list[tuple[int, tuple[str, ...]]] = []
+    offset = 0
+    for line, style in kept:
+        if style is not None:
+            if style not in order:
+                order.append(style)
+            level = order.index(style) + 1
+            while path and path[-1][0] >= level:
+                path.pop()
+            path.append((level, _collapse(line)))
+            starts.append((offset, tuple(heading for _, heading in path)))
+        offset += len(line) + 1
+    return ParsedText(normalised, _tile(normalised, starts))
+
+
+# The style a plain-text line's heading has, or that the line is the underline of the one above.
+_UNDERLINE_LINE = "underline"
+_UPPER_CASE = "upper-case"
+_UNDERLINE = re.compile(r"={3,}|-{3,}")
+_LIST_ITEM = re.compile(r"\s*(?:[-*+•]|\d+[.)])\s")
+_PLAIN_HEADING_MAX_WORDS = 12
+
+
+def _plain_heading_styles(lines: list[str]) -> dict[int, str]:
+    """Line index to heading style (``=``, ``-`` or upper case), or to ``_UNDERLINE_LINE``.
+
+    A heading starts a paragraph (it follows a blank line or the start), is at most a dozen
+    words and is no list item; an upper-case one is mostly letters, none of them lower case, and
+    does not end like a sentence or hold a table's ``|``.
+    """
+    styles: dict[int, str] = {}
+    for index, line in enumerate(lines):
+        if not line or (index > 0 and lines[index - 1]) or index in styles:
+            continue
+        words = line.split()
+        if len(words) > _PLAIN_HEADING_MAX_WORDS or _LIST_ITEM.match(line):
+            continue
+        following = lines[index + 1].strip() if index + 1 < len(lines) else ""
+        if _UNDERLINE.fullmatch(following):
+            styles[index] = following[0]
+            styles[index + 1] = _UNDERLINE_LINE
+            continue
+        letters = sum(character.isalpha() for character in line)
+        if (
+            letters >= 3
+            and 2 * letters >= sum(len(word) for word in words)
+            and not any(character.islower() for character in line)
+            and "|" not in line
+            and line[-1] not in ".!?,;"
+        ):
+            styles[index] = _UPPER_CASE
+    return styles
+
+
+def _tile(text: str, starts: list[tuple[int, tuple[str, ...]]]) -> tuple[Section, ...]:
+    """Sections from where each heading's section starts, text before the first one unnamed."""
+    if not text:
+        return ()
+    if not starts or starts[0][0] != 0:
+        starts = [(0, ()), *starts]
+    ends = [start for start, _ in starts[1:]] + [len(text)]
+    return tuple(Section(start, end, path) for (start, path), end in zip(starts, ends, strict=True))
 
 
 def _collapse(text: str) -> str:
@@ -157,16 +233,7 @@ class _TextBuilder:
 
     def result(self) -> ParsedText:
         text = "".join(self._parts)
-        if not text:
-            return ParsedText("", ())
-        starts = self._section_starts
-        if not starts or starts[0][0] != 0:
-            starts = [(0, ()), *starts]
-        ends = [start for start, _ in starts[1:]] + [len(text)]
-        sections = tuple(
-            Section(start, end, path) for (start, path), end in zip(starts, ends, strict=True)
-        )
-        return ParsedText(text, sections)
+        return ParsedText(text, _tile(text, self._section_starts))
 
     def _append(self, piece: str) -> None:
         self._parts.append(piece)
@@ -216,11 +283,16 @@ class _HtmlWalker:
         name = tag.name
         if name in _DROPPED_ELEMENTS:
             return False
+        chrome = _page_chrome(tag)
+        if chrome is not None:
+            if chrome == "banner":
+                # The page's banner often holds the document's top heading; keep that alone.
+                for heading in tag.find_all(list(_HEADING_LEVELS)):
+                    if all(_page_chrome(p) is None for p in _ancestors_within(heading, tag)):
+                        self._heading(heading)
+            return False
         if name in _HEADING_LEVELS:
-            self._flush()
-            heading = _collapse("".join(_visible_strings(tag)))
-            if heading:
-                self.builder.heading(_HEADING_LEVELS[name], heading)
+            self._heading(tag)
             return False
         if name == "pre":
             self._flush()
@@ -243,6 +315,12 @@ class _HtmlWalker:
             elif name == "tr":
                 self._cells_in_row.append(0)
         return True
+
+    def _heading(self, tag: Tag) -> None:
+        self._flush()
+        heading = _collapse("".join(_visible_strings(tag)))
+        if heading:
+            self.builder.heading(_HEADING_LEVELS[tag.name], heading)
 
     def _leave(self, tag: Tag) -> None:
         name = tag.name
@@ -278,6 +356,28 @@ class _HtmlWalker:
         for line in lines:
             self.builder.block(line)
         self.builder.end_group()
+
+
+def _page_chrome(tag: Tag) -> str | None:
+    """The landmark role of a page's navigation, banner or footer; None for content."""
+    role = tag.get("role")
+    if isinstance(role, str):
+        for token in role.lower().split():
+            if token in _CHROME_ROLES:
+                return token
+    if tag.name == "nav":
+        return "navigation"
+    if tag.name in _PAGE_ROLES and not any(p.name in _SECTIONING for p in tag.parents):
+        return _PAGE_ROLES[tag.name]
+    return None
+
+
+def _ancestors_within(tag: Tag, outer: Tag) -> Iterator[Tag]:
+    """``tag``'s ancestors below ``outer``, nearest first."""
+    for parent in tag.parents:
+        if parent is outer:
+            return
+        yield parent
 
 
 _INTEGER = re.compile(r"[+-]?\d+")

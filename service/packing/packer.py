@@ -61,8 +61,21 @@ class PackCandidate(NamedTuple):
 
 
 @dataclass(frozen=True)
+class SectionEntry:
+    """Where a passage enters a section: the document offset of its first chunk there."""
+
+    char_start: int
+    path: str
+
+
+@dataclass(frozen=True)
 class Passage:
-    """A span of one document in the context; ``tokens`` counts its header line and text."""
+    """A span of one document in the context; ``tokens`` counts its header line and text.
+
+    ``section`` is the heading path in force where the passage starts; ``sections`` lists every
+    section the passage reaches, in document order, the first of them ``section``'s (empty for
+    a passage built without its chunks' sections, which then reads as ``section`` alone).
+    """
 
     marker: int
     document_id: str
@@ -73,6 +86,13 @@ class Passage:
     tokens: int
     char_start: int
     char_end: int
+    sections: tuple[SectionEntry, ...] = ()
+
+    @property
+    def section_paths(self) -> tuple[str, ...]:
+        if not self.sections:
+            return (self.section or "",)
+        return tuple(entry.path for entry in self.sections)
 
 
 class PackOutcome(NamedTuple):
@@ -364,7 +384,8 @@ def pack_context(
     document's text over the union of its chunks' spans (``document_span``), or the chunk texts
     joined by offsets when that returns None. A chunk that bridges two passages of its document
     joins them into the earlier one. A passage's section is that of its first chunk in document
-    order. Markers follow the order of passages in the context.
+    order, and its sections those of all its chunks. Markers follow the order of passages in the
+    context.
     """
     if token_budget < 0:
         raise ValueError("token_budget must not be negative")
@@ -460,6 +481,7 @@ def pack_context(
             tokens=parts.passage(marker, draft.body),
             char_start=draft.char_start,
             char_end=draft.char_end,
+            sections=_section_entries(draft.chunks),
         )
         for marker, draft in enumerate(drafts, start=1)
     )
@@ -473,6 +495,19 @@ def pack_context(
         token_budget=token_budget,
         considered=_outcomes(decisions, result, copies),
     )
+
+
+def _section_entries(chunks: Sequence[PackCandidate]) -> tuple[SectionEntry, ...]:
+    """Each run of chunks (in document order) that shares a section, as one entry.
+
+    Chunks never straddle a heading, so where a run begins is where the passage enters it.
+    """
+    entries: list[SectionEntry] = []
+    for chunk in chunks:
+        path = chunk.section or ""
+        if not entries or entries[-1].path != path:
+            entries.append(SectionEntry(chunk.char_start, path))
+    return tuple(entries)
 
 
 def _outcomes(

@@ -15,9 +15,10 @@ from typing import Any
 
 from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
-from service.generation.base import GeneratedAnswer, Generator
+from service.generation.base import GeneratedAnswer, Generator, cited_sentences
 from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
+from service.packing.citing import section_of_quote
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import Hit, RetrievalResult, retrieve
 from service.usecases.callers import Caller, Role
@@ -461,9 +462,10 @@ def _citations(
     view: IndexView, packed: PackedContext, generated: GeneratedAnswer
 ) -> tuple[CitationView, ...]:
     """Citations of the markers used, each document's source and attributes as of the snapshot
-    the passages came from."""
+    the passages came from, and the section the first sentence citing it lies in."""
     by_marker = {p.marker: p for p in packed.passages}
     used = [by_marker[m] for m in sorted(set(generated.markers_used)) if m in by_marker]
+    quotes = cited_sentences(generated.answer or "")
     snapshot = view.snapshot
     cited = view.facts.cite_attributes
     citations = []
@@ -475,7 +477,7 @@ def _citations(
                 marker=passage.marker,
                 document_id=passage.document_id,
                 title=passage.title,
-                section=passage.section or "",
+                section=section_of_quote(passage, quotes.get(passage.marker, ("",))[0]),
                 chunk_ids=passage.chunk_ids,
                 source_url=snapshot.source_url(passage.document_id),
                 attributes={

@@ -46,7 +46,7 @@ def test_the_request_has_the_chat_completions_shape_with_fenced_passages(endpoin
     endpoint.script.append(Step())
     answer = make_generator(endpoint.url).generate("How long is the frame covered?", PASSAGES)
 
-    assert answer.answer == "The frame is covered for five years [1]."
+    assert answer.answer == "The frame is covered for five years. [1]"
     assert answer.markers_used == (1,)
     assert answer.evidence_score == 1.0
     headers, body = endpoint.requests[0]
@@ -75,7 +75,7 @@ def test_a_passage_containing_a_fence_cannot_close_the_quoted_block(endpoint):
 def test_markers_matching_no_passage_are_removed_and_noted(endpoint):
     endpoint.script.append(Step(content="Five years [1][7]. Paint lasts one year [2, 9]."))
     answer = make_generator(endpoint.url).generate("coverage?", PASSAGES)
-    assert answer.answer == "Five years [1]. Paint lasts one year [2]."
+    assert answer.answer == "Five years. [1] Paint lasts one year. [2]"
     assert answer.markers_used == (1, 2)
     assert any("7, 9" in note for note in answer.notes)
 

@@ -130,6 +130,10 @@ def test_ask_command_prints_a_cited_answer_with_the_caution(
     assert body["caution"]
     markers = {c["marker"] for c in body["citations"]}
     assert all(f"[{m}]" in body["answer"] for m in markers)
+    assert all(p["sections"][0] == p["section"] for p in body["passages"])
+    for citation in body["citations"]:
+        passage = next(p for p in body["passages"] if p["marker"] == citation["marker"])
+        assert citation["section"] in passage["sections"]
 
 
 def test_search_and_ask_infer_the_filter_and_show_its_words(

@@ -99,6 +99,42 @@ def assert_chunk_invariants(
             assert after.char_start >= before.char_end
 
 
+DEMO_STYLE_PAGE = (
+    "<!DOCTYPE html><html><head><title>SB-2023-04</title></head><body>"
+    "<nav><a href='/'>Tarnwick documentation</a></nav><main>"
+    "<h1>Summary</h1><p>Some Haulmark 2023 cargo decks crack at the rear mount. Stop carrying"
+    " loads until the deck is replaced.</p>"
+    "<h1>What the dealer does</h1><p>Fit the reinforced deck and tighten its four bolts to"
+    " 8 Nm.</p></main><footer>Tarnwick Cycle Works technical service</footer></body></html>"
+)
+
+
+def test_html_navigation_and_footer_text_never_become_chunks() -> None:
+    parsed = parse_document(DEMO_STYLE_PAGE, "text/html")
+
+    chunks = chunk_document(parsed, WordCounter(), max_tokens=16, overlap_tokens=4)
+
+    assert chunks[0].text.startswith("Summary")
+    assert not any("Tarnwick" in chunk.text for chunk in chunks)
+    assert {chunk.section for chunk in chunks} == {"Summary", "What the dealer does"}
+
+
+def test_plain_text_chunks_carry_their_upper_case_headings_as_sections() -> None:
+    parsed = parse_document(
+        "SCOPE AND VALIDITY\n\nThis policy applies to bicycles bought in the United Kingdom.\n\n"
+        "TRANSFER TO A NEW OWNER\n\nThe frame warranty covers the original owner only.",
+        "text/plain",
+    )
+
+    chunks = chunk_document(parsed, WordCounter(), max_tokens=16, overlap_tokens=0)
+
+    assert [(chunk.section, chunk.text.split("\n")[0]) for chunk in chunks] == [
+        ("SCOPE AND VALIDITY", "SCOPE AND VALIDITY"),
+        ("TRANSFER TO A NEW OWNER", "TRANSFER TO A NEW OWNER"),
+    ]
+    assert chunks[1].text.endswith("original owner only.")
+
+
 def test_chunks_end_at_paragraph_boundaries_before_sentence_boundaries() -> None:
     first = "Alpha beta gamma. Delta epsilon zeta eta theta."
     second = "Iota kappa lambda. Mu nu xi omicron pi."

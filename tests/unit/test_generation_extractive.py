@@ -67,11 +67,11 @@ PASSAGES = [
 ]
 
 
-def test_the_answer_is_the_best_sentences_each_ending_with_its_marker():
+def test_the_answer_is_the_best_sentences_each_followed_by_its_marker():
     answer = generator(evidence_threshold=0.5).generate("How long is the frame warranty?", PASSAGES)
     assert answer.reason is None
     assert answer.answer is not None
-    assert answer.answer.startswith("The frame is covered by the warranty for five years [1].")
+    assert answer.answer.startswith("The frame is covered by the warranty for five years. [1]")
     assert answer.markers_used == markers_in(answer.answer) == (1,)
     assert answer.evidence_score >= 0.5
 
@@ -82,10 +82,10 @@ def test_sentences_keep_passage_order_then_text_order_whatever_their_scores():
     )
     # The brake sentences score highest, yet the warranty passage comes first in the context.
     assert answer.answer == (
-        "The frame is covered by the warranty for five years [1]. "
-        "Paint is covered for one year [1]. "
-        "Replace brake pads when they are worn to 1 mm [2]. "
-        "Pads wear faster in rain and mud [2]."
+        "The frame is covered by the warranty for five years. [1] "
+        "Paint is covered for one year. [1] "
+        "Replace brake pads when they are worn to 1 mm. [2] "
+        "Pads wear faster in rain and mud. [2]"
     )
     assert answer.markers_used == (1, 2)
 
@@ -95,7 +95,7 @@ def test_sentences_well_below_the_best_are_left_out():
         "brake pads wear in rain and warranty years", PASSAGES
     )
     assert answer.answer == (
-        "Replace brake pads when they are worn to 1 mm [2]. Pads wear faster in rain and mud [2]."
+        "Replace brake pads when they are worn to 1 mm. [2] Pads wear faster in rain and mud. [2]"
     )
 
 
@@ -128,8 +128,26 @@ def test_no_passages_is_declined_with_zero_evidence():
 
 def test_bracketed_numbers_from_the_source_do_not_become_markers():
     answer = generator(evidence_threshold=0.3).generate("rotor bolt torque", PASSAGES)
-    assert answer.answer == "Torque the rotor bolts to 6 N·m [2]."
+    assert answer.answer == "Torque the rotor bolts to 6 N·m. [2]"
     assert answer.markers_used == (2,)
+
+
+@pytest.mark.parametrize(
+    ("source", "cited"),
+    [
+        ("Run the diagnostic [file ...]", "Run the diagnostic [file ...] [1]"),
+        ("Wait for the display to reset...", "Wait for the display to reset... [1]"),
+        ("Torque the stem bolts to 5 Nm (front).", "Torque the stem bolts to 5 Nm (front). [1]"),
+        ("- Torque the stem bolts to 5 Nm", "Torque the stem bolts to 5 Nm. [1]"),
+        ("- Torque the stem bolts as follows:", "Torque the stem bolts as follows. [1]"),
+    ],
+)
+def test_the_marker_follows_the_whole_sentence_and_its_final_punctuation(
+    source: str, cited: str
+) -> None:
+    answer = generator(evidence_threshold=0.0).generate(source, [passage(1, source)])
+
+    assert answer.answer == cited
 
 
 def test_headings_are_not_sentences():
@@ -183,7 +201,7 @@ def test_only_the_bounded_number_of_sentences_is_embedded_chosen_by_term_overlap
     assert embedded[-1] == "Replace brake pads when they are worn to 1 mm."
     assert embedded[:9] == [f"Section {n} lists part number {n}." for n in range(9)]
     answer = gen.generate("When are brake pads worn?", passages)
-    assert answer.answer == "Replace brake pads when they are worn to 1 mm [3]."
+    assert answer.answer == "Replace brake pads when they are worn to 1 mm. [3]"
 
 
 def test_a_sentence_bound_below_the_answer_length_is_refused():

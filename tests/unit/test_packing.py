@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 from service.packing.packer import (
     PackCandidate,
     PackedContext,
+    SectionEntry,
     normalize_for_duplicates,
     pack_context,
     render_passage,
@@ -116,6 +117,39 @@ def test_consecutive_chunks_with_a_gap_merge_over_the_documents_text_between_the
         document_span=lambda d, s, e: document[s:e],
     )
     assert [p.text for p in packed.passages] == [document]
+
+
+def test_a_merged_passage_spanning_two_sections_names_where_it_starts_and_lists_both():
+    document = "Frame\n\nFrames are covered for five years.\n\nTransfer\n\nOriginal owner only."
+    frame = chunk("w", 0, document[:41], 0, score=0.9, section="Warranty > Frame")
+    transfer = chunk("w", 1, document[43:], 43, score=0.8, section="Warranty > Transfer")
+    packed = pack_context(
+        [transfer, frame],
+        token_budget=100,
+        count_tokens=count_words,
+        document_span=lambda d, s, e: document[s:e],
+    )
+
+    [passage] = packed.passages
+    assert passage.text == document
+    assert passage.section == "Warranty > Frame"
+    assert passage.sections == (
+        SectionEntry(0, "Warranty > Frame"),
+        SectionEntry(43, "Warranty > Transfer"),
+    )
+    assert passage.section_paths == ("Warranty > Frame", "Warranty > Transfer")
+
+
+def test_a_passage_of_one_section_lists_it_once():
+    document = "Pads wear faster in rain. Replace pads at 1 mm. Bed in new pads slowly."
+    packed = pack_context(
+        chunks_of("m", document, 30, 20),
+        token_budget=200,
+        count_tokens=count_words,
+        document_span=lambda d, s, e: document[s:e],
+    )
+
+    assert [p.section_paths for p in packed.passages] == [("Brakes",)]
 
 
 def test_a_chunk_bridging_two_passages_joins_them_under_the_earlier_marker():

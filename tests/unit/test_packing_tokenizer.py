@@ -22,6 +22,7 @@ from service.packing.packer import (
     PackedContext,
     PackOutcome,
     Passage,
+    SectionEntry,
     join_by_offsets,
     pack_context,
     render_passage,
@@ -232,6 +233,12 @@ def reference_pack(
             ),
             char_start=draft.char_start,
             char_end=draft.char_end,
+            sections=tuple(
+                SectionEntry(
+                    next(c.char_start for c in draft.chunks if (c.section or "") == path), path
+                )
+                for path in dict.fromkeys(c.section or "" for c in draft.chunks)
+            ),
         )
         for marker, draft in enumerate(drafts, start=1)
     )

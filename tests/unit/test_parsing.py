@@ -156,6 +156,36 @@ def test_html_empty_headings_are_ignored() -> None:
     assert parsed.sections == (Section(0, len(parsed.text), ("Top",)),)
 
 
+def test_html_navigation_banner_and_footer_are_dropped_but_the_banner_heading_is_kept() -> None:
+    parsed = parse_document(
+        "<body><header><a href='/'>Tarnwick documentation</a><h1>Wren 2022 manual</h1>"
+        "<nav>Previous | Next</nav></header><nav><a href='/'>Tarnwick documentation</a></nav>"
+        "<main><p>Read this first.</p><h2>Brakes</h2><p>Squeeze both levers.</p></main>"
+        "<div role='navigation'>Site map</div><footer>Tarnwick Cycle Works, Elsbrook</footer>"
+        "</body>",
+        "text/html",
+    )
+
+    assert parsed.text == "Wren 2022 manual\n\nRead this first.\n\nBrakes\n\nSqueeze both levers."
+    assert section_texts(parsed) == [
+        (("Wren 2022 manual",), "Wren 2022 manual\n\nRead this first."),
+        (("Wren 2022 manual", "Brakes"), "Brakes\n\nSqueeze both levers."),
+    ]
+
+
+def test_html_header_and_footer_of_an_article_are_its_content() -> None:
+    parsed = parse_document(
+        "<main><article><header><h1>SB-2024-02</h1><p>Published 2024-02-12</p></header>"
+        "<p>Replace the collar.</p><footer>Technical service</footer></article></main>",
+        "text/html",
+    )
+
+    assert parsed.text == (
+        "SB-2024-02\n\nPublished 2024-02-12\n\nReplace the collar.\n\nTechnical service"
+    )
+    assert [s.path for s in parsed.sections] == [("SB-2024-02",)]
+
+
 def test_html_nested_far_beyond_the_recursion_limit_is_read() -> None:
     parsed = parse_document("<div>" * 3000 + "deep" + "</div>" * 3000, "text/html")
 
@@ -169,6 +199,67 @@ def test_plain_text_normalises_line_ends_trailing_spaces_and_blank_runs() -> Non
 
     assert parsed.text == "First line\n  indented\tline\n\nLast"
     assert parsed.sections == (Section(0, len(parsed.text), ()),)
+
+
+def test_plain_text_upper_case_lines_that_open_a_paragraph_are_headings() -> None:
+    parsed = parse_document(
+        "FRAME WARRANTY\n\nTarnwick warrants the frame for five years.\n\n"
+        "E-BIKE BATTERY AND MOTOR\n\nBatteries are covered for two years.\n"
+        "Motors are covered for two years.",
+        "text/plain",
+    )
+
+    assert section_texts(parsed) == [
+        (("FRAME WARRANTY",), "FRAME WARRANTY\n\nTarnwick warrants the frame for five years."),
+        (
+            ("E-BIKE BATTERY AND MOTOR",),
+            "E-BIKE BATTERY AND MOTOR\n\nBatteries are covered for two years.\n"
+            "Motors are covered for two years.",
+        ),
+    ]
+    assert_sections_tile_the_text(parsed)
+
+
+def test_plain_text_underlined_headings_nest_in_the_order_their_styles_first_appear() -> None:
+    parsed = parse_document(
+        "Read this first.\n\nLarkspur owner's guide\n======================\n\n"
+        "Brakes\n------\nSqueeze both levers.\n\nTOOLS\n\nA 5 mm key.\n\n"
+        "Tyres\n-----\n\nInflate to 3.5 bar.\n\nWarranty\n========\n\nFive years.",
+        "text/plain",
+    )
+
+    assert parsed.text == (
+        "Read this first.\n\nLarkspur owner's guide\n\nBrakes\nSqueeze both levers.\n\n"
+        "TOOLS\n\nA 5 mm key.\n\nTyres\n\nInflate to 3.5 bar.\n\nWarranty\n\nFive years."
+    )
+    assert section_texts(parsed) == [
+        ((), "Read this first."),
+        (("Larkspur owner's guide",), "Larkspur owner's guide"),
+        (("Larkspur owner's guide", "Brakes"), "Brakes\nSqueeze both levers."),
+        (("Larkspur owner's guide", "Brakes", "TOOLS"), "TOOLS\n\nA 5 mm key."),
+        (("Larkspur owner's guide", "Tyres"), "Tyres\n\nInflate to 3.5 bar."),
+        (("Warranty",), "Warranty\n\nFive years."),
+    ]
+    assert_sections_tile_the_text(parsed)
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        "Read the manual.\nTORQUE VALUES\n\nStem: 5 Nm.",  # upper case, but inside a paragraph
+        "DO NOT RIDE A DAMAGED FRAME.\n\nAsk your dealer.",  # ends like a sentence
+        "- BRAKES\n- TYRES",  # list items
+        "E-21 | MOTOR OVERHEAT\n\nLet it cool.",  # a table row
+        "SB-22\n\nReplace the collar.",  # mostly not letters
+        "Check the pads.\nThen the rotors.\n---\n\nDone.",  # a rule under a paragraph
+        "Torque values for the Larkspur 2023 in newton metres as measured at the bolt\n===",
+    ],
+)
+def test_plain_text_lines_that_only_resemble_headings_stay_text(text: str) -> None:
+    parsed = parse_document(text, "text/plain")
+
+    assert parsed.text == text
+    assert [s.path for s in parsed.sections] == [()]
 
 
 @pytest.mark.parametrize("media_type", ["text/plain", "text/markdown", "text/html"])

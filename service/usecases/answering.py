@@ -13,13 +13,17 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+
 from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
-from service.generation.base import GeneratedAnswer, Generator
+from service.filters.syntax import Node
+from service.generation.base import AnswerSupport, GeneratedAnswer, Generator
 from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import Hit, RetrievalResult, retrieve
+from service.usecases.answer_support import answer_support
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
@@ -94,6 +98,8 @@ class _Retrieval:
     result: RetrievalResult
     recorder: TraceRecorder
     inferred: InferredFilter | None
+    query_vector: np.ndarray | None = None
+    filter: Node | None = None
 
 
 def _retrieve(
@@ -129,7 +135,14 @@ def _retrieve(
                 prepared.embedding_milliseconds,
                 source=prepared.embedding_source,
             )
-    return _Retrieval(view, result, recorder, prepared.inferred)
+    return _Retrieval(
+        view,
+        result,
+        recorder,
+        prepared.inferred,
+        prepared.retrieval.vector,
+        prepared.retrieval.filter,
+    )
 
 
 def _hit(view: IndexView, row: int, score: float, ranks: Mapping[str, int | None]) -> HitView:
@@ -317,7 +330,7 @@ def answer(
         return declined("no_candidates")
     packed = _pack(runtime, retrieval, token_budget, generator.token_margin)
     try:
-        generated = _generate(generator, options.query, packed, recorder)
+        generated = _generate(generator, options.query, packed, retrieval)
     except GeneratorUnavailable as exc:
         recorder.save(runtime.traces, caller, generator_error=exc.message)
         raise GeneratorUnavailable(
@@ -339,11 +352,19 @@ def answer(
 
 
 def _generate(
-    generator: Generator, question: str, packed: PackedContext, recorder: TraceRecorder
+    generator: Generator, question: str, packed: PackedContext, retrieval: _Retrieval
 ) -> GeneratedAnswer:
+    """Run the generator and record its stage: for one that scores spans, the spans it
+    considered with each part of their scores, its threshold and why it answered or not."""
+    recorder = retrieval.recorder
     started = time.perf_counter()
+    support: AnswerSupport | None = None
+    if question.strip():
+        support = answer_support(
+            retrieval.view, packed.passages, retrieval.query_vector, retrieval.filter
+        )
     try:
-        generated = generator.generate(question, packed.passages)
+        generated = generator.generate(question, packed.passages, support)
     except GeneratorUnavailable as exc:
         recorder.stage(
             "generation",
@@ -360,6 +381,15 @@ def _generate(
         markers_used=list(generated.markers_used),
         notes=list(generated.notes),
         declined=generated.answer is None,
+        **(
+            {
+                "threshold": generated.threshold,
+                "decision": generated.decision,
+                "candidates": [span.as_trace() for span in generated.considered],
+            }
+            if generated.threshold is not None
+            else {}
+        ),
     )
     return generated
 
@@ -374,6 +404,9 @@ def _citations(
     snapshot = view.snapshot
     cited = view.facts.cite_attributes
     citations = []
+    quoted_start: dict[int, int] = {}
+    for span in generated.quoted:
+        quoted_start.setdefault(span.marker, span.start)
     for passage in used:
         rows = snapshot.rows_of(passage.document_id)
         attributes = snapshot.attributes[int(rows[0])] if len(rows) else {}
@@ -382,7 +415,7 @@ def _citations(
                 marker=passage.marker,
                 document_id=passage.document_id,
                 title=passage.title,
-                section=passage.section or "",
+                section=_section_at(snapshot, passage, quoted_start.get(passage.marker)),
                 chunk_ids=passage.chunk_ids,
                 source_url=snapshot.source_url(passage.document_id),
                 attributes={
@@ -391,3 +424,16 @@ def _citations(
             )
         )
     return tuple(citations)
+
+
+def _section_at(snapshot: IndexSnapshot, passage: Passage, offset: int | None) -> str:
+    """The section of the passage's chunk that holds the quoted text's start: a merged passage
+    may span two sections, and the citation is to the one the quote is in."""
+    if offset is None or len(passage.chunk_ids) < 2:
+        return passage.section or ""
+    chunk_ids = set(passage.chunk_ids)
+    section = passage.section or ""
+    for row in snapshot.rows_of(passage.document_id).tolist():
+        if snapshot.chunk_ids[row] in chunk_ids and int(snapshot.char_starts[row]) <= offset:
+            section = snapshot.sections[row]
+    return section

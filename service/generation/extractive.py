@@ -207,6 +207,14 @@ class ExtractiveGenerator:
                         if t in heading_terms and t not in terms
                     )
                     lexical = (held + HEADING_TERM_SHARE * headed) / total_weight
+                if total_weight > 0 and lexical == 0:
+                    # Ruled out already; naming its entities would only cost time.
+                    found.append(
+                        _Candidate(
+                            span, text, 0.0, 0.0, 0.0, False, ("shares no word with the question",)
+                        )
+                    )
+                    continue
                 named = find(text)
                 context = named | heading_entities | document
                 notes: list[str] = []
@@ -214,8 +222,6 @@ class ExtractiveGenerator:
                     values = [e for e in asked if e.kind == missing]
                     if not any(e in context for e in values):
                         notes.append("does not name " + " or ".join(sorted(map(str, values))))
-                if total_weight > 0 and lexical == 0:
-                    notes.append("shares no word with the question")
                 holds = holds_type(kind, text)
                 if kind in HARD_TYPES and not holds:
                     notes.append(f"holds no {kind}")

@@ -538,6 +538,11 @@ def cmd_eval(args: argparse.Namespace) -> int:
     from service.evaluation.runner import EvaluationBackend, evaluate, systems_from_options
     from service.usecases.evaluate import MAX_CHUNKS, StoreBackend
 
+    if (args.queries is None) == (args.answers is None):
+        print("error: give either --queries (retrieval) or --answers (answers)", file=sys.stderr)
+        return 2
+    if args.answers is not None:
+        return _evaluate_answers(args)
     infer = _infer_request(args.infer_filter)
     try:
         queries = read_queries(args.queries)
@@ -588,6 +593,59 @@ def cmd_eval(args: argparse.Namespace) -> int:
             f" document excluded {agreement.excluding_share:.3f}, mean Jaccard"
             f" {agreement.mean_jaccard:.3f} ({len(agreement.per_query)} questions)"
         )
+    return 0
+
+
+def _evaluate_answers(args: argparse.Namespace) -> int:
+    """``excerpta eval --answers FILE``: the answers to labelled questions, scored."""
+    from service.evaluation.answers import (
+        ANSWER_MEASURES,
+        AnswerBackend,
+        evaluate_answers,
+        read_answer_questions,
+        write_answer_report,
+    )
+    from service.evaluation.http_backend import HttpAnswers, HttpBackend, ServerRefused
+    from service.evaluation.inputs import LabelFileError
+    from service.usecases.evaluate import StoreAnswers
+
+    try:
+        questions = read_answer_questions(args.answers)
+    except LabelFileError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    backend: AnswerBackend
+    if args.url:
+        http = HttpBackend(args.url, args.key or os.environ.get("EXCERPTA_KEY"), args.collection)
+        backend = HttpAnswers(http, token_budget=args.budget, generator=args.generator)
+        close = http.close
+    else:
+        runtime = _runtime(args)
+        backend = StoreAnswers(
+            runtime, args.collection, token_budget=args.budget, generator=args.generator
+        )
+        close = runtime.close
+    try:
+        result = evaluate_answers(
+            backend, questions, global_filter=args.filter, progress=not args.no_progress
+        )
+    except ServerRefused as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    finally:
+        close()
+    report, _ = write_answer_report(
+        result, Path(args.out), title=f"Answer evaluation: {args.collection}"
+    )
+    print(f"report written to {report}")
+    for name in ANSWER_MEASURES:
+        interval = result.summary[name]
+        shown = (
+            "n/a"
+            if interval is None
+            else f"{interval.mean:.4f} [{interval.low:.4f}, {interval.high:.4f}]"
+        )
+        print(f"  {name}: {shown}")
     return 0
 
 
@@ -771,10 +829,21 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--corpus", default="corpus_example")
     demo.set_defaults(handler=cmd_demo)
 
-    evaluate = commands.add_parser("eval", help="measure retrieval quality on labeled queries")
+    evaluate = commands.add_parser(
+        "eval", help="measure retrieval or answer quality on labeled questions"
+    )
     _common(evaluate)
     evaluate.add_argument("collection")
-    evaluate.add_argument("--queries", required=True, help="TSV (qid<TAB>text) or JSONL")
+    evaluate.add_argument("--queries", help="TSV (qid<TAB>text) or JSONL: measure retrieval")
+    evaluate.add_argument(
+        "--answers",
+        help="JSONL of questions with the strings and document a right answer holds, or"
+        " expect null: measure answers",
+    )
+    evaluate.add_argument(
+        "--budget", type=int, default=1000, help="token budget of each answer (with --answers)"
+    )
+    evaluate.add_argument("--generator", help="generator of the answers (with --answers)")
     evaluate.add_argument(
         "--qrels",
         help="TREC qrels: qid 0 docid grade (optional when the JSONL queries carry their own)",

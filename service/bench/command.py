@@ -16,9 +16,16 @@ from typing import Any
 from threadpoolctl import threadpool_limits
 
 from service.bench.references import require_reference_libraries
-from service.bench.report import machine, print_http, print_machine, print_model, print_size
+from service.bench.report import (
+    machine,
+    print_answering,
+    print_http,
+    print_machine,
+    print_model,
+    print_size,
+)
 from service.bench.synthetic import check_parameters, make_queries
-from service.bench.verdicts import http_targets, model_targets, ratios, targets
+from service.bench.verdicts import answering_targets, http_targets, model_targets, ratios, targets
 
 DEFAULT_SIZES = "10000,100000,1000000"
 
@@ -76,6 +83,26 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
         help="drive the real server over HTTP instead of the in-process run",
     )
     parser.add_argument(
+        "--answering",
+        action="store_true",
+        help="time answers against contexts for labelled questions over a real corpus instead",
+    )
+    parser.add_argument(
+        "--answering-corpus",
+        type=Path,
+        default=Path("corpus_example"),
+        help="folder with documents/ and schema.json",
+    )
+    parser.add_argument(
+        "--answering-questions",
+        type=Path,
+        default=Path("corpus_example/answer_questions.jsonl"),
+        help="labelled questions (the format of eval --answers)",
+    )
+    parser.add_argument(
+        "--answering-rounds", type=_positive, default=3, help="rounds over the questions"
+    )
+    parser.add_argument(
         "--http-chunks",
         type=_positive,
         default=100_000,
@@ -95,7 +122,7 @@ def _progress(line: str) -> None:
 
 def run_bench(args: argparse.Namespace) -> dict[str, Any]:
     """Run what ``args`` ask for, print it, and return every figure."""
-    if not args.http:
+    if not args.http and not args.answering:
         require_reference_libraries()
     info = machine()
     print_machine(info, print)
@@ -109,6 +136,19 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
             "seed": args.seed,
         },
     }
+    if args.answering:
+        from service.bench.answering import run_answering
+
+        answering = run_answering(
+            corpus=args.answering_corpus,
+            questions=args.answering_questions,
+            rounds=args.answering_rounds,
+            progress=_progress,
+        )
+        answering["targets"] = answering_targets(answering)
+        print_answering(answering, print)
+        results["answering"] = answering
+        return results
     queries = make_queries(args.queries, args.dims, args.seed)
     if args.http:
         from service.bench.http import run_http

@@ -162,6 +162,24 @@ def print_model(model: dict[str, Any], write: Write) -> None:
         write(_verdict(target))
 
 
+def print_answering(answering: dict[str, Any], write: Write) -> None:
+    write("")
+    write(
+        f"== answering: {answering['questions']} questions over {answering['chunks']} chunks"
+        f" of {answering['corpus']}, {answering['rounds']} rounds, generator"
+        f" {answering['generator']}, token budget {answering['token_budget']} =="
+    )
+    write(f"  {'stage':<40} {'median ms':>10} {'p95 ms':>10} {'p99 ms':>10}")
+    write(_row("context", answering["context"]))
+    write(_row("answer", answering["answer"]))
+    write(
+        f"  answer minus context, same question and round: median"
+        f" {answering['added_median_ms']:.2f} ms, p95 {answering['added_p95_ms']:.2f} ms"
+    )
+    for target in answering["targets"]:
+        write(_verdict(target))
+
+
 def print_http(http: dict[str, Any], write: Write) -> None:
     write("")
     write(

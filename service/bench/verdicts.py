@@ -268,5 +268,23 @@ def model_targets(model: dict[str, Any]) -> list[dict[str, Any]]:
     ]
 
 
+ANSWERING_ADDED_MS = 15.0
+
+
+def answering_targets(answering: dict[str, Any]) -> list[dict[str, Any]]:
+    added = float(answering["added_median_ms"])
+    return [
+        _target(
+            f"answering adds at most {ANSWERING_ADDED_MS:g} ms median over the context",
+            f"{answering['questions']} labelled questions, default settings",
+            added <= ANSWERING_ADDED_MS,
+            f"{added:.2f} ms (answer median {answering['answer']['median_ms']:.2f} ms, context"
+            f" median {answering['context']['median_ms']:.2f} ms)",
+            value=added,
+            limit=ANSWERING_ADDED_MS,
+        )
+    ]
+
+
 def _mib(value: float) -> str:
     return f"{value / 2**20:.1f} MiB"

@@ -13,6 +13,7 @@ from typing import Any
 
 import httpx
 
+from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
 from service.evaluation.runner import InferRequest
@@ -45,7 +46,7 @@ class HttpBackend:
     def close(self) -> None:
         self.client.close()
 
-    def _send(self, method: str, path: str, **options: Any) -> dict[str, Any]:
+    def send(self, method: str, path: str, **options: Any) -> dict[str, Any]:
         try:
             response = self.client.request(method, path, **options)
         except httpx.TransportError as exc:
@@ -83,7 +84,7 @@ class HttpBackend:
                 request["filter"] = filter
             if infer is not None:
                 request["infer_filter"] = dict(infer)
-            body = self._send("POST", f"/v1/collections/{self.collection}/search", json=request)
+            body = self.send("POST", f"/v1/collections/{self.collection}/search", json=request)
             return [(hit["document_id"], float(hit["score"])) for hit in body["hits"]]
 
         return DocumentRanking(run, CHUNK_LIMIT).rank(depth)
@@ -99,7 +100,7 @@ class HttpBackend:
         }
         if filter is not None:
             request["filter"] = filter
-        body = self._send("POST", f"/v1/collections/{self.collection}/search", json=request)
+        body = self.send("POST", f"/v1/collections/{self.collection}/search", json=request)
         inferred: dict[str, object] | None = body["inferred_filter"]
         return inferred
 
@@ -116,7 +117,7 @@ class HttpBackend:
                 params["filter"] = filter if isinstance(filter, str) else json.dumps(filter)
             if after is not None:
                 params["after"] = after
-            page = self._send("GET", f"/v1/collections/{self.collection}/documents", params=params)
+            page = self.send("GET", f"/v1/collections/{self.collection}/documents", params=params)
             passing.update(d["id"] for d in page["documents"])
             after = page["next_after"]
             if after is None:
@@ -124,7 +125,49 @@ class HttpBackend:
         return passing
 
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
-        return settings_in_effect(self._send("GET", f"/v1/collections/{self.collection}"), settings)
+        return settings_in_effect(self.send("GET", f"/v1/collections/{self.collection}"), settings)
+
+
+class HttpAnswers:
+    """Labelled questions through a running server's answer route."""
+
+    def __init__(
+        self,
+        backend: HttpBackend,
+        *,
+        token_budget: int,
+        generator: str | None = None,
+    ) -> None:
+        self.backend = backend
+        self.token_budget = token_budget
+        self.generator = generator
+
+    def answer(self, text: str, *, filter: FilterSpec) -> ObservedAnswer:
+        request: dict[str, Any] = {"query": text, "token_budget": self.token_budget}
+        if filter is not None:
+            request["filter"] = filter
+        if self.generator is not None:
+            request["generator"] = self.generator
+        body = self.backend.send(
+            "POST", f"/v1/collections/{self.backend.collection}/answer", json=request
+        )
+        return ObservedAnswer(
+            body["answer"],
+            body.get("reason"),
+            tuple(
+                CitedPlace(citation["document_id"], citation.get("section") or "")
+                for citation in body["citations"]
+            ),
+        )
+
+    def describe(self) -> dict[str, object]:
+        return {
+            "collection": self.backend.collection,
+            "generator": self.generator or "server default",
+            "token_budget": self.token_budget,
+            "mode": "hybrid",
+            "url": str(self.backend.client.base_url),
+        }
 
 
 def _refusal(response: httpx.Response) -> str:

@@ -10,10 +10,15 @@ never inside a word or a bracket.
 from __future__ import annotations
 
 import re
-from collections.abc import Collection, Sequence
-from dataclasses import dataclass
-from typing import Protocol
+from collections.abc import Callable, Collection, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
 
+import numpy as np
+import numpy.typing as npt
+
+from service.generation.reading import Entity, EntityFinder
+from service.generation.spans import PassageWindow
 from service.packing.packer import Passage
 
 INSUFFICIENT_EVIDENCE = "insufficient_evidence"
@@ -46,13 +51,81 @@ class ConsideredSpan:
 
 
 @dataclass(frozen=True)
+class ChunkVector:
+    """A stored chunk vector and the document span the chunk covers."""
+
+    start: int
+    end: int
+    vector: npt.NDArray[np.float32]
+
+
+@dataclass(frozen=True)
+class AnswerSupport:
+    """What the answering use case knows beside the question and the passages.
+
+    ``query_vector`` is the question's vector retrieval already computed (None: embed it);
+    ``analyzer_tokens`` and ``term_weight`` are the collection's analyzer and each analysed
+    term's idf in the index, ``known_term`` whether any chunk holds a term; ``find_entities``
+    names the things a text mentions by the collection's own names; ``filter_entities`` are
+    those the request's filter pins down;
+    ``windows`` holds each passage (by marker) with the document text around it and
+    ``document_entities`` the entities each passage's document names in its title and
+    attributes; ``chunk_vectors`` holds the stored vectors of each passage's chunks.
+    """
+
+    query_vector: npt.NDArray[np.float32] | None = None
+    analyzer_tokens: Callable[[str], list[str]] | None = None
+    term_weight: Callable[[str], float] | None = None
+    known_term: Callable[[str], bool] | None = None
+    find_entities: EntityFinder | None = None
+    filter_entities: frozenset[Entity] = frozenset()
+    windows: Mapping[int, PassageWindow] = field(default_factory=dict)
+    document_entities: Mapping[int, frozenset[Entity]] = field(default_factory=dict)
+    chunk_vectors: Mapping[int, tuple[ChunkVector, ...]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class SpanScore:
+    """One candidate span as the trace shows it: each part of its score, its total, whether it
+    could be an answer at all and, when not, why (``notes``)."""
+
+    marker: int
+    kind: str
+    text: str
+    start: int
+    end: int
+    semantic: float
+    lexical: float
+    type_cue: float
+    penalty: float
+    total: float
+    eligible: bool
+    notes: tuple[str, ...] = ()
+
+    def as_trace(self) -> dict[str, Any]:
+        return {
+            "marker": self.marker,
+            "kind": self.kind,
+            "text": self.text,
+            "semantic": round(self.semantic, 4),
+            "lexical": round(self.lexical, 4),
+            "type_cue": round(self.type_cue, 4),
+            "penalty": round(self.penalty, 4),
+            "total": round(self.total, 4),
+            "eligible": self.eligible,
+            "notes": list(self.notes),
+        }
+
+
+@dataclass(frozen=True)
 class GeneratedAnswer:
     """A generator's result: an answer, or ``answer=None`` with the ``reason`` it declined.
 
     ``evidence_score`` is the generator's own measure of support (see each generator);
     ``notes`` are short plain remarks for the trace; ``milliseconds`` is the generation time.
-    ``considered`` lists the spans it weighed, or is None for a generator that cannot say
-    (a chat model is handed whole passages).
+    A generator that scores spans also reports them (``considered``, best first), the
+    ``threshold`` it held them to, the ``decision`` in words, and the spans it quoted
+    (``quoted``), whose document offsets tell which section each citation is in.
     """
 
     answer: str | None
@@ -61,7 +134,10 @@ class GeneratedAnswer:
     evidence_score: float
     notes: tuple[str, ...]
     milliseconds: float
-    considered: tuple[ConsideredSpan, ...] | None = None
+    considered: tuple[SpanScore, ...] = ()
+    threshold: float | None = None
+    decision: str = ""
+    quoted: tuple[SpanScore, ...] = ()
 
     def __post_init__(self) -> None:
         if self.answer is None:
@@ -81,7 +157,12 @@ class Generator(Protocol):
     name: str
     token_margin: float
 
-    def generate(self, question: str, passages: Sequence[Passage]) -> GeneratedAnswer: ...
+    def generate(
+        self,
+        question: str,
+        passages: Sequence[Passage],
+        support: AnswerSupport | None = None,
+    ) -> GeneratedAnswer: ...
 
 
 @dataclass(frozen=True)

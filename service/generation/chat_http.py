@@ -17,7 +17,12 @@ from urllib.parse import urlsplit
 import httpx
 
 from service.errors import GeneratorUnavailable
-from service.generation.base import INSUFFICIENT_EVIDENCE, GeneratedAnswer, settle_markers
+from service.generation.base import (
+    INSUFFICIENT_EVIDENCE,
+    AnswerSupport,
+    GeneratedAnswer,
+    settle_markers,
+)
 from service.packing.packer import PASSAGE_SEPARATOR, Passage, render_passage
 
 logger = logging.getLogger(__name__)
@@ -176,7 +181,13 @@ class ChatHttpGenerator:
     def close(self) -> None:
         self.endpoint.close()
 
-    def generate(self, question: str, passages: Sequence[Passage]) -> GeneratedAnswer:
+    def generate(
+        self,
+        question: str,
+        passages: Sequence[Passage],
+        support: AnswerSupport | None = None,
+    ) -> GeneratedAnswer:
+        """``support`` is not used: the model reads the passages itself."""
         started = time.perf_counter()
         content, attempts = self.endpoint.complete(build_messages(question, passages))
         notes = [f"{attempts} attempt(s)"] if attempts > 1 else []

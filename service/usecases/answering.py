@@ -13,14 +13,18 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+
 from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
-from service.generation.base import GeneratedAnswer, Generator, cited_sentences
+from service.filters.syntax import Node
+from service.generation.base import AnswerSupport, GeneratedAnswer, Generator, cited_sentences
 from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
-from service.packing.citing import section_of_quote
+from service.packing.citing import section_at, section_of_quote
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import Hit, RetrievalResult, retrieve
+from service.usecases.answer_support import answer_support
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
@@ -100,6 +104,8 @@ class _Retrieval:
     result: RetrievalResult
     recorder: TraceRecorder
     inferred: InferredFilter | None
+    query_vector: np.ndarray | None = None
+    filter: Node | None = None
 
 
 def _retrieve(
@@ -135,7 +141,14 @@ def _retrieve(
                 prepared.embedding_milliseconds,
                 source=prepared.embedding_source,
             )
-    return _Retrieval(view, result, recorder, prepared.inferred)
+    return _Retrieval(
+        view,
+        result,
+        recorder,
+        prepared.inferred,
+        prepared.retrieval.vector,
+        prepared.retrieval.filter,
+    )
 
 
 def _finish(runtime: Runtime, caller: Caller, retrieval: _Retrieval, **summary: Any) -> None:
@@ -395,7 +408,7 @@ def _answer(
         return declined("no_candidates")
     packed = _pack(runtime, retrieval, token_budget, generator.token_margin)
     try:
-        generated = _generate(generator, options.query, packed, recorder)
+        generated = _generate(generator, options.query, packed, retrieval)
     except GeneratorUnavailable as exc:
         _finish(
             runtime,
@@ -433,11 +446,19 @@ def _answer(
 
 
 def _generate(
-    generator: Generator, question: str, packed: PackedContext, recorder: TraceRecorder
+    generator: Generator, question: str, packed: PackedContext, retrieval: _Retrieval
 ) -> GeneratedAnswer:
+    """Run the generator and record its stage: for one that scores spans, the spans it
+    considered with each part of their scores, its threshold and why it answered or not."""
+    recorder = retrieval.recorder
     started = time.perf_counter()
+    support: AnswerSupport | None = None
+    if question.strip():
+        support = answer_support(
+            retrieval.view, packed.passages, retrieval.query_vector, retrieval.filter
+        )
     try:
-        generated = generator.generate(question, packed.passages)
+        generated = generator.generate(question, packed.passages, support)
     except GeneratorUnavailable as exc:
         recorder.stage(
             "generation",
@@ -454,6 +475,15 @@ def _generate(
         markers_used=list(generated.markers_used),
         notes=list(generated.notes),
         declined=generated.answer is None,
+        **(
+            {
+                "threshold": generated.threshold,
+                "decision": generated.decision,
+                "candidates": [span.as_trace() for span in generated.considered],
+            }
+            if generated.threshold is not None
+            else {}
+        ),
     )
     return generated
 
@@ -469,6 +499,9 @@ def _citations(
     snapshot = view.snapshot
     cited = view.facts.cite_attributes
     citations = []
+    quoted_start: dict[int, int] = {}
+    for span in generated.quoted:
+        quoted_start.setdefault(span.marker, span.start)
     for passage in used:
         rows = snapshot.rows_of(passage.document_id)
         attributes = snapshot.attributes[int(rows[0])] if len(rows) else {}
@@ -477,7 +510,7 @@ def _citations(
                 marker=passage.marker,
                 document_id=passage.document_id,
                 title=passage.title,
-                section=section_of_quote(passage, quotes.get(passage.marker, ("",))[0]),
+                section=_cited_section(passage, quoted_start, quotes),
                 chunk_ids=passage.chunk_ids,
                 source_url=snapshot.source_url(passage.document_id),
                 attributes={
@@ -486,3 +519,14 @@ def _citations(
             )
         )
     return tuple(citations)
+
+
+def _cited_section(
+    passage: Passage, quoted_start: dict[int, int], quotes: dict[int, tuple[str, ...]]
+) -> str:
+    """The section the citation's quote is in: at the quoted span's document offset where the
+    generator reports one, else where the cited sentence is found in the passage's text."""
+    start = quoted_start.get(passage.marker)
+    if start is not None:
+        return section_at(passage, start)
+    return section_of_quote(passage, quotes.get(passage.marker, ("",))[0])

@@ -11,6 +11,7 @@ from collections.abc import Collection, Mapping
 from dataclasses import replace
 from typing import cast
 
+from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
 from service.evaluation.runner import InferRequest
@@ -26,6 +27,9 @@ from service.usecases.collections import attribute_schema, get_collection, load_
 from service.usecases.inference import OFF, infer_options
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions
+
+DEFAULT_TOKEN_BUDGET = 1000
+"""The answer route's own default budget."""
 
 MAX_CHUNKS = 20_000
 """The most chunks one ranking asks for, where the runtime's top_k and depth limits allow it
@@ -130,3 +134,43 @@ class StoreBackend:
     def describe_settings(self, settings: Mapping[str, object]) -> dict[str, object]:
         view = get_collection(self.runtime, LOCAL_ADMIN, self.collection)
         return settings_in_effect(view, settings)
+
+
+class StoreAnswers:
+    """Labelled questions through the answer use case itself, as the local admin."""
+
+    def __init__(
+        self,
+        runtime: Runtime,
+        collection: str,
+        *,
+        token_budget: int = DEFAULT_TOKEN_BUDGET,
+        generator: str | None = None,
+    ) -> None:
+        self.runtime = runtime
+        self.collection = collection
+        self.token_budget = token_budget
+        self.generator = generator
+
+    def answer(self, text: str, *, filter: FilterSpec) -> ObservedAnswer:
+        result = answering.answer(
+            self.runtime,
+            LOCAL_ADMIN,
+            self.collection,
+            SearchOptions(query=text, filter=filter),
+            self.token_budget,
+            self.generator,
+        )
+        return ObservedAnswer(
+            result.answer,
+            result.reason,
+            tuple(CitedPlace(c.document_id, c.section) for c in result.citations),
+        )
+
+    def describe(self) -> dict[str, object]:
+        return {
+            "collection": self.collection,
+            "generator": self.runtime.generators.get(self.generator).name,
+            "token_budget": self.token_budget,
+            "mode": "hybrid",
+        }

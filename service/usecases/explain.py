@@ -554,9 +554,13 @@ class _Followed:
     ) -> ChunkExplanation:
         text = normalize_for_duplicates(self.snapshot.texts[row])
         spans = None
-        if generated.considered is not None:
+        # A generator that weighs no spans (a chat model is handed whole passages) lists none.
+        if generated.considered:
+            quoted = {(span.marker, span.start) for span in generated.quoted}
             spans = tuple(
-                span
+                ConsideredSpan(
+                    span.marker, span.text, span.total, (span.marker, span.start) in quoted
+                )
                 for span in generated.considered
                 if span.marker == marker and normalize_for_duplicates(span.text) in text
             )

@@ -9,8 +9,9 @@ from typing import Any
 import httpx
 import pytest
 
+from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import DocumentRanking, documents_from_hits
-from service.evaluation.http_backend import HttpBackend, ServerRefused
+from service.evaluation.http_backend import HttpAnswers, HttpBackend, ServerRefused
 
 COLLECTION_VIEW = {
     "retrieval": {"bm25": "smoothed", "k1": 1.2, "b": 0.75, "metric": "cosine"},
@@ -169,3 +170,34 @@ def test_an_inferred_filter_is_asked_for_with_the_request_field_and_read_back() 
     )
     assert json.loads(server.requests[-1].content)["infer_filter"] == {"mode": "apply"}
     assert http.documents_passing(None) == {"a", "b", "c"}
+
+
+def test_answers_are_asked_of_the_answer_route_with_the_budget_and_filter() -> None:
+    seen: list[dict[str, Any]] = []
+
+    def server(request: httpx.Request) -> httpx.Response:
+        assert request.url.path == "/v1/collections/bikes/answer"
+        seen.append(json.loads(request.content))
+        return httpx.Response(
+            200,
+            json={
+                "answer": "Main pivot bolt: 18 Nm [1].",
+                "citations": [{"document_id": "m22", "section": "Torque values"}],
+                "passages": [],
+            },
+        )
+
+    backend = HttpBackend("http://test", "key", "bikes", transport=httpx.MockTransport(server))
+    answers = HttpAnswers(backend, token_budget=800, generator="extractive")
+    observed = answers.answer("torque?", filter="model = 'X'")
+    assert seen == [
+        {
+            "query": "torque?",
+            "token_budget": 800,
+            "filter": "model = 'X'",
+            "generator": "extractive",
+        }
+    ]
+    assert observed == ObservedAnswer(
+        "Main pivot bolt: 18 Nm [1].", None, (CitedPlace("m22", "Torque values"),)
+    )

@@ -21,7 +21,7 @@ from service.filters.syntax import Node
 from service.generation.base import AnswerSupport, GeneratedAnswer, Generator, cited_sentences
 from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
-from service.packing.citing import section_at, section_of_quote
+from service.packing.citing import section_of_quote
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import Hit, RetrievalResult, retrieve
 from service.usecases.answer_support import answer_support
@@ -499,9 +499,6 @@ def _citations(
     snapshot = view.snapshot
     cited = view.facts.cite_attributes
     citations = []
-    quoted_start: dict[int, int] = {}
-    for span in generated.quoted:
-        quoted_start.setdefault(span.marker, span.start)
     for passage in used:
         rows = snapshot.rows_of(passage.document_id)
         attributes = snapshot.attributes[int(rows[0])] if len(rows) else {}
@@ -510,7 +507,7 @@ def _citations(
                 marker=passage.marker,
                 document_id=passage.document_id,
                 title=passage.title,
-                section=_cited_section(passage, quoted_start, quotes),
+                section=section_of_quote(passage, quotes.get(passage.marker, ("",))[0]),
                 chunk_ids=passage.chunk_ids,
                 source_url=snapshot.source_url(passage.document_id),
                 attributes={
@@ -519,14 +516,3 @@ def _citations(
             )
         )
     return tuple(citations)
-
-
-def _cited_section(
-    passage: Passage, quoted_start: dict[int, int], quotes: dict[int, tuple[str, ...]]
-) -> str:
-    """The section the citation's quote is in: at the quoted span's document offset where the
-    generator reports one, else where the cited sentence is found in the passage's text."""
-    start = quoted_start.get(passage.marker)
-    if start is not None:
-        return section_at(passage, start)
-    return section_of_quote(passage, quotes.get(passage.marker, ("",))[0])

@@ -33,6 +33,7 @@ from service.index.collection_index import IndexSnapshot
 from service.packing.packer import PackedContext, PackOutcome, Passage, normalize_for_duplicates
 from service.retrieval.query import RetrievalResult, retrieve
 from service.retrieval.ranking import Ranking
+from service.usecases.answer_support import answer_support
 from service.usecases.answering import check_budget, pack_hits
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
@@ -201,7 +202,11 @@ def explain(
         packed = pack_hits(runtime, snapshot, result.hits, request.token_budget, margin)
         if generator is not None:
             # Generated only once a chunk of the document is found in the context.
-            answer = cache(partial(generator.generate, options.query, packed.passages))
+            # With the same support the answer route hands its generator.
+            support = None
+            if options.query.strip():
+                support = answer_support(view, packed.passages, query.vector, query.filter)
+            answer = cache(partial(generator.generate, options.query, packed.passages, support))
 
     reads_collection = subject.collections is None or collection in subject.collections
     verdicts = _filter_verdicts(snapshot, rows, prepared.filter_parts)

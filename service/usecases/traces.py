@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import time
 import uuid
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from service.errors import TraceNotFound
@@ -50,6 +50,7 @@ class TraceRecorder:
                 }
                 for entry in stage.top
             ],
+            **({} if stage.plan is None else {"plan": asdict(stage.plan)}),
             **details,
         )
 

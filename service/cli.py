@@ -114,6 +114,7 @@ def ingest_path(
             cite_attributes=raw.get("cite_attributes"),
             answer_caution=raw.get("answer_caution"),
             retrieval=raw.get("retrieval"),
+            vectors=raw.get("vectors"),
         )
         collections_usecase.put_collection(runtime, LOCAL_ADMIN, collection, spec)
 

@@ -65,6 +65,26 @@ class RetrievalSettingsIn(Strict):
     stopwords: bool | None = None
 
 
+class GraphSettingsIn(Strict):
+    links: int | None = Field(None, description="Neighbours per node of the graph")
+    build_breadth: int | None = Field(None, description="Candidates kept while linking a node")
+    search_breadth: int | None = Field(
+        None, description="Candidates kept while searching without a filter"
+    )
+    max_search_breadth: int | None = Field(
+        None, description="Largest breadth a filtered search may use; beyond it, exact search"
+    )
+
+
+class VectorSettingsIn(Strict):
+    index: Literal["auto", "exact", "graph"] | None = Field(
+        None,
+        description="auto (default): a graph from a size where it pays, chosen per query; "
+        "exact: never a graph; graph: a graph at any size, used wherever it can be",
+    )
+    graph: GraphSettingsIn | None = None
+
+
 class CollectionIn(Strict):
     description: str | None = Field(None, max_length=10_000)
     attributes: dict[str, AttributeSpec] | None = Field(
@@ -82,6 +102,7 @@ class CollectionIn(Strict):
     cite_attributes: list[str] | None = None
     answer_caution: str | None = Field(None, max_length=10_000)
     retrieval: RetrievalSettingsIn | None = None
+    vectors: VectorSettingsIn | None = None
 
 
 class RebuildOut(BaseModel):
@@ -97,6 +118,7 @@ class CollectionOut(BaseModel):
     cite_attributes: list[str]
     answer_caution: str | None
     retrieval: dict[str, Any]
+    vectors: dict[str, Any]
     tokenizer: str
     embedder: str
     documents: int

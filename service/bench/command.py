@@ -26,6 +26,14 @@ from service.bench.report import (
 )
 from service.bench.synthetic import check_parameters, make_queries
 from service.bench.verdicts import answering_targets, http_targets, model_targets, ratios, targets
+from service.index.graph import (
+    DEFAULT_BUILD_BREADTH,
+    DEFAULT_LINKS,
+    DEFAULT_MAX_SEARCH_BREADTH,
+    DEFAULT_SEARCH_BREADTH,
+    GraphSettings,
+    VectorIndexSettings,
+)
 
 DEFAULT_SIZES = "10000,100000,1000000"
 
@@ -76,6 +84,19 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument(
         "--model-documents", type=_positive, default=200, help="documents ingested with the model"
+    )
+    parser.add_argument(
+        "--vector-index",
+        action="store_true",
+        help="measure the semantic plans (graph, gather, scan) on clustered vectors instead",
+    )
+    parser.add_argument(
+        "--graph-links", type=_positive, default=DEFAULT_LINKS, help="graph neighbours per node"
+    )
+    parser.add_argument("--graph-build-breadth", type=_positive, default=DEFAULT_BUILD_BREADTH)
+    parser.add_argument("--graph-search-breadth", type=_positive, default=DEFAULT_SEARCH_BREADTH)
+    parser.add_argument(
+        "--graph-max-search-breadth", type=_positive, default=DEFAULT_MAX_SEARCH_BREADTH
     )
     parser.add_argument(
         "--http",
@@ -148,6 +169,8 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
         answering["targets"] = answering_targets(answering)
         print_answering(answering, print)
         results["answering"] = answering
+    if args.vector_index:
+        results["vector_index"] = _run_vector_index(args)
         return results
     queries = make_queries(args.queries, args.dims, args.seed)
     if args.http:
@@ -198,6 +221,38 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
         print_model(model, print)
         results["model"] = model
     return results
+
+
+def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.vector_index import model_centres, print_vector_index, run_vector_index
+
+    settings = VectorIndexSettings(
+        index="auto",
+        graph=GraphSettings(
+            links=args.graph_links,
+            build_breadth=args.graph_build_breadth,
+            search_breadth=args.graph_search_breadth,
+            max_search_breadth=args.graph_max_search_breadth,
+        ),
+    )
+    _progress("embedding the corpus paragraphs (cluster centres)")
+    centres = model_centres()
+    figures = []
+    for size in args.chunks:
+        result = run_vector_index(
+            size,
+            dimension=args.dims,
+            queries=args.queries,
+            depth=args.depth,
+            seed=args.seed,
+            settings=settings,
+            centres=centres,
+            progress=_progress,
+        )
+        print_vector_index(result, print)
+        sys.stdout.flush()
+        figures.append(result)
+    return figures
 
 
 def run_bench_command(args: argparse.Namespace) -> int:

@@ -78,7 +78,13 @@ def _chunk_hash(chunk_id: str) -> str:
 def write_collection(runtime: Runtime, collection: SyntheticCollection) -> None:
     """The collection made by the service with the bench's settings, then the synthetic rows
     as its documents, chunks and stored embeddings."""
-    spec = CollectionSpec(description="Synthetic bench collection", retrieval=BENCH_RETRIEVAL)
+    # Exact vectors: the in-process reference is exact, and a graph built in the background
+    # would share the cores with the clients (``--vector-index`` measures the graph).
+    spec = CollectionSpec(
+        description="Synthetic bench collection",
+        retrieval=BENCH_RETRIEVAL,
+        vectors={"index": "exact"},
+    )
     put_collection(runtime, LOCAL_ADMIN, COLLECTION, spec)
     with runtime.transaction() as session:
         row = repository.collection_by_name(session, COLLECTION)

@@ -18,7 +18,7 @@ import operator
 import threading
 from bisect import bisect_right
 from collections.abc import Iterator, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, SupportsIndex, TypeVar, overload
 
 import numpy as np
@@ -27,6 +27,7 @@ from service.attributes import AttributeValue, Schema
 from service.filters.columns import AttributeColumns
 from service.index.buffers import write_rows
 from service.index.document_text import rebuild_span
+from service.index.graph import VectorGraph, VectorIndexSettings
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalIndex
 from service.index.vectors import Metric, VectorMatrix
 
@@ -207,6 +208,8 @@ class IndexSnapshot:
     documents: Mapping[str, IndexedDocument]
     sorted_chunk_ids: list[str] = field(repr=False)
     numeric_buffers: dict[str, np.ndarray] = field(repr=False)
+    # Covers rows 0 .. graph.rows - 1; later rows (the tail) are scored exactly.
+    graph: VectorGraph | None = None
 
     @property
     def live(self) -> np.ndarray:
@@ -332,6 +335,8 @@ class CollectionIndex:
         self.schema = schema
         self._bm25 = (bm25_k1, bm25_b)
         self._lock = threading.Lock()
+        # Counts renumberings of the rows (compactions); a graph is built for one layout.
+        self._layout = 0
         self._snapshot = IndexSnapshot(
             revision=0,
             n_rows=0,
@@ -411,39 +416,81 @@ class CollectionIndex:
             return published
 
     def compact(self) -> np.ndarray:
-        """Rebuild without tombstoned rows; returns ``old row -> new row`` (-1 when dropped)."""
+        """Rebuild without tombstoned rows; returns ``old row -> new row`` (-1 when dropped).
+
+        The rows are renumbered, so the graph goes with them (``build_graph`` makes one)."""
         with self._lock:
+            return self._compact_locked()
+
+    def graph_tail(self) -> int:
+        """Rows the current graph does not cover (all rows when there is none)."""
+        snapshot = self._snapshot
+        return snapshot.n_rows - (0 if snapshot.graph is None else snapshot.graph.rows)
+
+    def drop_graph(self) -> None:
+        with self._lock:
+            if self._snapshot.graph is not None:
+                self._snapshot = replace(self._snapshot, graph=None)
+
+    def build_graph(self, settings: VectorIndexSettings, *, compact: bool) -> bool:
+        """Build a graph over every row (first compacting, if asked) and publish it.
+
+        The graph is built outside the write lock, from the snapshot current at the start, so
+        writes and queries go on meanwhile (queries with the old graph). It is published if it
+        still fits: no compaction happened since, and, when compacting, no row the graph
+        covers was deleted since (rows written since come after it, as its tail). Returns
+        whether it was published.
+        """
+        start = self._snapshot
+        layout = self._layout
+        kept = np.flatnonzero(start.live) if compact else None
+        matrix = start.vectors.take(kept) if kept is not None else start.vectors
+        graph = VectorGraph.build(matrix, settings, layout=layout + (1 if compact else 0))
+        with self._lock:
+            if self._layout != layout:
+                return False
             current = self._snapshot
-            lexical, remap = current.lexical.compact()
-            kept = np.flatnonzero(remap >= 0)
-            kept_keys = current.sort_keys[kept]
-            key_order = np.sort(kept_keys)
-            numeric: dict[str, Any] = {
-                name: getattr(current, name)[kept] for name, _, _ in _NUMERIC_FIELDS
-            }
-            lists = {
-                name: [items[row] for row in kept.tolist()]
-                for name, items in _RowLists.of(current).lists.items()
-            }
-            columns = current.columns.take(kept) if current.columns is not None else None
-            self._snapshot = IndexSnapshot(
-                revision=current.revision,
-                n_rows=len(kept),
-                **_RowLists(lists).prefixes(len(kept)),
-                **numeric,
-                sort_keys=np.searchsorted(key_order, kept_keys).astype(np.int64),
-                lexical=lexical.warm(k1=self._bm25[0], b=self._bm25[1]),
-                vectors=current.vectors.take(kept),
-                columns=columns,
-                access=current.access.take(remap, kept),
-                documents={
-                    d: IndexedDocument(remap[entry.rows], entry.source_url)
-                    for d, entry in current.documents.items()
-                },
-                sorted_chunk_ids=[current.sorted_chunk_ids[k] for k in key_order.tolist()],
-                numeric_buffers={name: numeric[name] for name, _, _ in _NUMERIC_FIELDS},
-            )
-            return remap
+            if compact:
+                if not np.array_equal(current.live[: start.n_rows], start.live):
+                    return False
+                self._compact_locked()
+                graph = graph.rebound(self._snapshot.vectors, self._layout)
+            self._snapshot = replace(self._snapshot, graph=graph)
+            return True
+
+    def _compact_locked(self) -> np.ndarray:
+        current = self._snapshot
+        lexical, remap = current.lexical.compact()
+        kept = np.flatnonzero(remap >= 0)
+        kept_keys = current.sort_keys[kept]
+        key_order = np.sort(kept_keys)
+        numeric: dict[str, Any] = {
+            name: getattr(current, name)[kept] for name, _, _ in _NUMERIC_FIELDS
+        }
+        lists = {
+            name: [items[row] for row in kept.tolist()]
+            for name, items in _RowLists.of(current).lists.items()
+        }
+        columns = current.columns.take(kept) if current.columns is not None else None
+        self._layout += 1
+        self._snapshot = IndexSnapshot(
+            revision=current.revision,
+            n_rows=len(kept),
+            **_RowLists(lists).prefixes(len(kept)),
+            **numeric,
+            sort_keys=np.searchsorted(key_order, kept_keys).astype(np.int64),
+            lexical=lexical.warm(k1=self._bm25[0], b=self._bm25[1]),
+            vectors=current.vectors.take(kept),
+            columns=columns,
+            access=current.access.take(remap, kept),
+            documents={
+                d: IndexedDocument(remap[entry.rows], entry.source_url)
+                for d, entry in current.documents.items()
+            },
+            sorted_chunk_ids=[current.sorted_chunk_ids[k] for k in key_order.tolist()],
+            numeric_buffers={name: numeric[name] for name, _, _ in _NUMERIC_FIELDS},
+        )
+        return remap
 
     def _next(
         self,
@@ -498,6 +545,7 @@ class CollectionIndex:
             documents=documents,
             sorted_chunk_ids=sorted_ids,
             numeric_buffers=buffers,
+            graph=current.graph,
         )
 
 

@@ -30,13 +30,15 @@ The matrix only grows by appending, into a buffer whose capacity doubles; see ``
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
-from typing import Literal
+from typing import Literal, TypeVar
 
 import numpy as np
 
 from service.index.buffers import round_up, write_rows
 
+T = TypeVar("T")
 Metric = Literal["cosine", "dot", "euclidean"]
 METRICS: tuple[Metric, ...] = ("cosine", "dot", "euclidean")
 ROW_BLOCK = 64
@@ -59,6 +61,11 @@ def _fresh_scan_pool_after_fork() -> None:
 
 
 os.register_at_fork(after_in_child=_fresh_scan_pool_after_fork)
+
+
+def on_scan_thread(call: Callable[[], T]) -> Future[T]:
+    """Run ``call`` on a scan thread (for work that releases the interpreter lock)."""
+    return _scans.submit(call)
 
 
 class VectorMatrix:

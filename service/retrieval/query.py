@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Literal
 
 import numpy as np
@@ -19,6 +19,7 @@ from service.filters.syntax import Node
 from service.index.collection_index import IndexSnapshot
 from service.index.lexical import LexicalScoring
 from service.retrieval.ranking import (
+    PlanTrace,
     Ranking,
     begin_semantic_ranking,
     finish_semantic_ranking,
@@ -87,6 +88,7 @@ class StageTrace:
     milliseconds: float
     counts: Mapping[str, int]
     top: tuple[TraceEntry, ...] = ()
+    plan: PlanTrace | None = None
 
 
 @dataclass(frozen=True)
@@ -140,7 +142,7 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
     stages = [StageTrace("filter", _since(started), counts)]
     scan = None
     if query.vector is not None and query.mode != "lexical":
-        scan = begin_semantic_ranking(snapshot, query.vector, candidates)
+        scan = begin_semantic_ranking(snapshot, query.vector, mask, candidates, query.depth)
     rankings: dict[str, Ranking] = {}
     if query.mode != "semantic":
         started = time.perf_counter()
@@ -154,9 +156,10 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         rankings["lexical"] = lexical
         stages.append(_stage(snapshot, lexical, started, candidates, query.trace_top))
     if scan is not None:
-        semantic = finish_semantic_ranking(snapshot, scan, mask, query.depth)
+        semantic, plan = finish_semantic_ranking(snapshot, scan, mask, query.depth)
         rankings["semantic"] = semantic
-        stages.append(_stage(snapshot, semantic, scan.started, candidates, query.trace_top))
+        stage = _stage(snapshot, semantic, scan.started, candidates, query.trace_top)
+        stages.append(replace(stage, plan=plan))
 
     started = time.perf_counter()
     if query.mode == "hybrid":

@@ -11,12 +11,15 @@ from __future__ import annotations
 import time
 from collections.abc import Sequence
 from concurrent.futures import Future
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from service.index.collection_index import IndexSnapshot
+from service.index.graph import GraphHits
 from service.index.lexical import LexicalScoring
+from service.index.vectors import on_scan_thread
+from service.retrieval.semantic_plan import PlanMethod, SemanticPlan, semantic_plan
 
 DEFAULT_SCORING = LexicalScoring()
 
@@ -94,24 +97,52 @@ def lexical_ranking(
     return _ranking("lexical", snapshot, rows, match.scores[rows], depth)
 
 
+@dataclass(frozen=True)
+class PlanTrace:
+    """What a semantic ranking planned and did: ``fallback`` names why a graph search was set
+    aside (``short``: fewer rows than it should find; ``over_bound``: more work than its
+    bound), and ``method`` what ranked in the end."""
+
+    planned: PlanMethod
+    method: PlanMethod
+    estimated_work: int
+    actual_work: int
+    breadth: int
+    fallback: str | None
+
+
 @dataclass(frozen=True, eq=False)
 class SemanticScan:
-    """A semantic ranking's prepared query and, where it scans every row, that scan under way."""
+    """A semantic ranking's prepared query, its plan and, for a scan or a graph search, that
+    search under way on a scan thread."""
 
     query: np.ndarray
+    plan: SemanticPlan
     full_scan: Future[np.ndarray] | None
     started: float
+    graph_search: Future[GraphHits] | None = None
 
 
 def begin_semantic_ranking(
-    snapshot: IndexSnapshot, query_vector: np.ndarray | Sequence[float], candidates: int
+    snapshot: IndexSnapshot,
+    query_vector: np.ndarray | Sequence[float],
+    candidate_mask: np.ndarray,
+    candidates: int,
+    depth: int,
 ) -> SemanticScan:
-    """Check and prepare the query; if every row will be scanned, begin that on a scan thread."""
+    """Check and prepare the query and plan it; a scan of every row or a graph search begins
+    on a scan thread, so in hybrid mode it runs beside the lexical ranking."""
     started = time.perf_counter()
     vectors = snapshot.vectors
     query = vectors.prepare_query(np.asarray(query_vector))
-    full_scan = vectors.begin_full_scan(query) if vectors.scans_every_row(candidates) else None
-    return SemanticScan(query, full_scan, started)
+    plan = semantic_plan(snapshot, candidate_mask, candidates, depth)
+    full_scan = vectors.begin_full_scan(query) if plan.method == "scan" else None
+    graph_search = None
+    graph = snapshot.graph
+    if plan.method == "graph" and graph is not None:
+        covered = candidate_mask[: graph.rows]
+        graph_search = on_scan_thread(lambda: graph.search(query, covered, depth, plan.breadth))
+    return SemanticScan(query, plan, full_scan, started, graph_search)
 
 
 def semantic_ranking(
@@ -120,17 +151,64 @@ def semantic_ranking(
     candidate_mask: np.ndarray,
     depth: int,
 ) -> Ranking:
-    """Exact similarity ranking of all candidates, cut at ``depth``."""
+    """Similarity ranking of the candidates as planned, cut at ``depth``."""
+    candidates = int(np.count_nonzero(candidate_mask))
+    scan = begin_semantic_ranking(snapshot, query_vector, candidate_mask, candidates, depth)
+    return finish_semantic_ranking(snapshot, scan, candidate_mask, depth)[0]
+
+
+def exact_semantic_ranking(
+    snapshot: IndexSnapshot,
+    query_vector: np.ndarray | Sequence[float],
+    candidate_mask: np.ndarray,
+    depth: int,
+) -> Ranking:
+    """Exact similarity ranking of all candidates, cut at ``depth`` (the graph's reference)."""
     query = snapshot.vectors.prepare_query(np.asarray(query_vector))
-    scan = SemanticScan(query, None, time.perf_counter())
-    return finish_semantic_ranking(snapshot, scan, candidate_mask, depth)
+    rows, scores = snapshot.vectors.score(query, candidate_mask)
+    return _ranking("semantic", snapshot, rows, scores, depth)
 
 
 def finish_semantic_ranking(
     snapshot: IndexSnapshot, scan: SemanticScan, candidate_mask: np.ndarray, depth: int
-) -> Ranking:
+) -> tuple[Ranking, PlanTrace]:
+    plan = scan.plan
+    candidates = int(np.count_nonzero(candidate_mask)) if plan.method == "graph" else 0
+    if scan.graph_search is not None and snapshot.graph is not None:
+        covered = snapshot.graph.rows
+        hits = scan.graph_search.result()
+        wanted = min(depth, candidates - plan.tail_candidates)
+        fallback = None
+        if hits.work > plan.work_bound:
+            fallback = "over_bound"
+        elif len(hits.rows) < wanted:
+            fallback = "short"
+        if fallback is None:
+            chosen = np.zeros_like(candidate_mask)
+            chosen[hits.rows] = True
+            chosen[covered:] = candidate_mask[covered:]
+            rows, scores = snapshot.vectors.score(scan.query, chosen)
+            ranking = _ranking("semantic", snapshot, rows, scores, depth)
+            ranking = replace(ranking, matched=candidates)
+            work = hits.work + plan.tail_candidates
+            trace = PlanTrace("graph", "graph", plan.estimated_work, work, plan.breadth, None)
+            return ranking, trace
+        rows, scores = snapshot.vectors.score(scan.query, candidate_mask)
+        exact: PlanMethod = "scan" if snapshot.vectors.scans_every_row(candidates) else "gather"
+        trace = PlanTrace(
+            "graph",
+            exact,
+            plan.estimated_work,
+            hits.work + (snapshot.vectors.n_rows if exact == "scan" else len(rows)),
+            plan.breadth,
+            fallback,
+        )
+        return _ranking("semantic", snapshot, rows, scores, depth), trace
     rows, scores = snapshot.vectors.score(scan.query, candidate_mask, scan.full_scan)
-    return _ranking("semantic", snapshot, rows, scores, depth)
+    method: PlanMethod = "scan" if plan.method == "scan" else "gather"
+    work = snapshot.vectors.n_rows if method == "scan" else len(rows)
+    trace = PlanTrace(method, method, plan.estimated_work, work, 0, None)
+    return _ranking("semantic", snapshot, rows, scores, depth), trace
 
 
 def fuse_rrf(rankings: Sequence[Ranking], rrf_k: float, depth: int) -> Ranking:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import re
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from sqlalchemy.orm import Session
@@ -18,6 +18,7 @@ from service.attributes import (
 )
 from service.errors import CollectionNotFound, Conflict, InvalidRequest, quoted_names
 from service.filters.inference.hints import HINT_KEYS, HintError, parse_attribute_hints
+from service.index.graph import BREADTH_RANGE, INDEX_MODES, LINKS_RANGE, VectorIndexSettings
 from service.store import repository
 from service.store.tables import CollectionRow
 from service.usecases.callers import Caller, Role
@@ -53,6 +54,7 @@ class CollectionSpec:
     cite_attributes: list[str] | None = None
     answer_caution: str | None = None
     retrieval: dict[str, Any] | None = None
+    vectors: dict[str, Any] | None = None
     extra: dict[str, Any] = field(default_factory=dict)
 
 
@@ -139,6 +141,43 @@ def _checked_retrieval(raw: dict[str, Any], current: dict[str, Any]) -> dict[str
     return merged
 
 
+def default_vectors() -> dict[str, Any]:
+    defaults = VectorIndexSettings()
+    return {"index": defaults.index, "graph": asdict(defaults.graph)}
+
+
+def _checked_vectors(raw: dict[str, Any], current: dict[str, Any]) -> dict[str, Any]:
+    """The stored vector index settings after a PUT: given fields over the current ones."""
+    stored = default_vectors()
+    if not isinstance(raw, dict) or not isinstance(raw.get("graph", {}), dict):
+        raise InvalidRequest("vectors and vectors.graph must be objects.", field="vectors")
+    unknown = set(raw) - set(stored)
+    if unknown:
+        name = sorted(unknown)[0]
+        raise InvalidRequest(f"vectors has no setting {name!r}.", field=f"vectors.{name}")
+    index = raw.get("index", current.get("index", stored["index"]))
+    if index not in INDEX_MODES:
+        raise InvalidRequest("vectors.index must be auto, exact or graph.", field="vectors.index")
+    graph = {**stored["graph"], **current.get("graph", {}), **(raw.get("graph") or {})}
+    for name, value in graph.items():
+        if name not in stored["graph"]:
+            raise InvalidRequest(
+                f"vectors.graph has no setting {name!r}.", field=f"vectors.graph.{name}"
+            )
+        low, high = LINKS_RANGE if name == "links" else BREADTH_RANGE
+        if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+            raise InvalidRequest(
+                f"vectors.graph.{name} must be an integer from {low} to {high}.",
+                field=f"vectors.graph.{name}",
+            )
+    if graph["search_breadth"] > graph["max_search_breadth"]:
+        raise InvalidRequest(
+            "vectors.graph.search_breadth must not exceed max_search_breadth.",
+            field="vectors.graph.search_breadth",
+        )
+    return {"index": index, "graph": graph}
+
+
 def _checked_hints(
     attributes: dict[str, Any], schema: Schema, current: dict[str, Any]
 ) -> dict[str, Any]:
@@ -220,6 +259,7 @@ def _put_collection(
         )
         current_settings = dict(row.settings) if row else {}
         retrieval = _checked_retrieval(spec.retrieval or {}, current_settings.get("retrieval", {}))
+        vectors = _checked_vectors(spec.vectors or {}, current_settings.get("vectors", {}))
         hints = _checked_hints(
             spec.attributes or {}, schema, current_settings.get("inference_hints", {})
         )
@@ -244,7 +284,7 @@ def _put_collection(
                 chunking=chunking,
                 cite_attributes=list(cite),
                 answer_caution=spec.answer_caution,
-                settings={"retrieval": retrieval, "inference_hints": hints},
+                settings={"retrieval": retrieval, "vectors": vectors, "inference_hints": hints},
                 embedder=runtime.embedder.name,
                 chunk_generation=0,
                 revision=0,
@@ -256,7 +296,9 @@ def _put_collection(
             repository.bump_revision(session, row, [(None, "reset")])
             rebuild_needed = False
         else:
-            retrieval_changed = current_settings.get("retrieval") != retrieval
+            retrieval_changed = current_settings.get("retrieval") != retrieval or (
+                current_settings.get("vectors", default_vectors()) != vectors
+            )
             active_or_pending = current_settings.get("pending_chunking") or row.chunking
             rebuild_needed = chunking != active_or_pending
             if spec.description is not None:
@@ -265,7 +307,12 @@ def _put_collection(
                 row.answer_caution = spec.answer_caution or None
             row.attributes = schema_json
             row.cite_attributes = list(cite)
-            settings = {**current_settings, "retrieval": retrieval, "inference_hints": hints}
+            settings = {
+                **current_settings,
+                "retrieval": retrieval,
+                "vectors": vectors,
+                "inference_hints": hints,
+            }
             if rebuild_needed:
                 if chunking == row.chunking:
                     settings.pop("pending_chunking", None)
@@ -355,6 +402,7 @@ def collection_view(
         "cite_attributes": row.cite_attributes,
         "answer_caution": row.answer_caution,
         "retrieval": row.settings.get("retrieval", DEFAULT_RETRIEVAL),
+        "vectors": row.settings.get("vectors", default_vectors()),
         "tokenizer": tokenizer,
         "embedder": row.embedder,
         "documents": documents,

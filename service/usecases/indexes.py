@@ -27,6 +27,7 @@ from service.filters.inference.hints import AttributeHints, stored_hints
 from service.index.analyzer import Analyzer, english_stopwords
 from service.index.collection_index import ChunkRecord, CollectionIndex, IndexSnapshot
 from service.index.document_text import gaps_between
+from service.index.graph import GraphSettings, VectorIndexSettings
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
 from service.index.records import chunk_record
 from service.index.vectors import Metric
@@ -37,6 +38,13 @@ from service.store.transactions import Transactions
 from service.usecases.drafts import MaterialisedDocument
 
 log = logging.getLogger("excerpta.index")
+
+
+def vector_settings(stored: Mapping[str, Any]) -> VectorIndexSettings:
+    """A collection's stored ``vectors`` settings (checked when they were put)."""
+    return VectorIndexSettings(
+        index=stored.get("index", "auto"), graph=GraphSettings(**stored.get("graph", {}))
+    )
 
 
 def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
@@ -57,6 +65,7 @@ class LoadedCollection:
     metric: Metric
     analyzer: Analyzer
     records: list[ChunkRecord]
+    vectors: VectorIndexSettings = field(default_factory=VectorIndexSettings)
 
 
 @dataclass(frozen=True)
@@ -106,6 +115,7 @@ class _Entry:
     revision: int
     checked_at: float
     lock: threading.Lock
+    vectors: VectorIndexSettings
 
 
 class IndexRegistry:
@@ -113,7 +123,8 @@ class IndexRegistry:
 
     ``poll_seconds`` bounds how stale a query's view of writes made elsewhere may be;
     ``compact_after`` tombstoned rows make the background thread (``start_background``)
-    rebuild an index without them.
+    rebuild an index without them. The same thread builds each collection's graph where its
+    vector settings want one, and builds it anew once stale (``maintain``).
     """
 
     def __init__(
@@ -134,6 +145,8 @@ class IndexRegistry:
         self._lock = threading.Lock()
         self._stopping = threading.Event()
         self._compactor: threading.Thread | None = None
+        # One maintenance round at a time, whether from the thread or a direct call.
+        self._maintaining = threading.Lock()
 
     # queries ------------------------------------------------------------------------------
 
@@ -196,6 +209,7 @@ class IndexRegistry:
             revision=loaded.revision,
             checked_at=time.monotonic(),
             lock=threading.Lock(),
+            vectors=loaded.vectors,
         )
 
     def _catch_up(self, name: str, entry: _Entry) -> None:
@@ -265,12 +279,45 @@ class IndexRegistry:
 
     def _compact_loop(self) -> None:
         while not self._stopping.wait(self._compact_every_seconds):
+            self.maintain()
+
+    def maintain(self) -> None:
+        """Compact each index past its tombstone threshold and build stale graphs.
+
+        Where a graph is wanted, compaction and the new graph go together
+        (``CollectionIndex.build_graph``): queries keep the old graph and rows until both are
+        published. A build that no longer fits when done (the rows were renumbered or deleted
+        meanwhile) is dropped and tried again on the next round.
+        """
+        with self._maintaining:
             with self._lock:
                 entries = list(self._entries.values())
             for entry in entries:
-                if entry.index.tombstoned_rows() >= self._compact_after:
-                    with entry.lock:
-                        entry.index.compact()
+                if self._stopping.is_set():
+                    return
+                self._maintain(entry)
+
+    def _maintain(self, entry: _Entry) -> None:
+        index = entry.index
+        snapshot = index.snapshot()
+        compact = index.tombstoned_rows() >= self._compact_after
+        if entry.vectors.wants_graph(snapshot.live_rows):
+            if compact or entry.vectors.graph_is_stale(snapshot.graph, snapshot.n_rows):
+                started = time.perf_counter()
+                published = index.build_graph(entry.vectors, compact=compact)
+                log.info(
+                    "graph for collection %s: %d rows in %.1f s%s",
+                    entry.facts.collection_id,
+                    index.snapshot().n_rows,
+                    time.perf_counter() - started,
+                    "" if published else ", dropped (rows changed meanwhile)",
+                )
+            return
+        if snapshot.graph is not None:
+            index.drop_graph()
+        if compact:
+            with entry.lock:
+                index.compact()
 
     def stop(self) -> None:
         self._stopping.set()
@@ -312,6 +359,7 @@ class StoreIndexSource:
                 metric=cast(Metric, retrieval.get("metric", "cosine")),
                 analyzer=analyzer,
                 records=_stored_records(analyzer, schema, rows),
+                vectors=vector_settings(row.settings.get("vectors", {})),
             )
 
     def update(

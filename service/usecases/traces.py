@@ -23,7 +23,7 @@ import uuid
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from contextvars import ContextVar, Token
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from typing import Any, Literal, get_args
 
 from service.errors import InvalidRequest, ServiceError, TraceNotFound
@@ -109,6 +109,7 @@ class TraceRecorder:
                 }
                 for entry in stage.top
             ],
+            **({} if stage.plan is None else {"plan": asdict(stage.plan)}),
             **details,
         )
 

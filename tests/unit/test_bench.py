@@ -260,3 +260,40 @@ def test_without_a_reference_library_the_bench_names_the_extra_and_exits_1(
     assert missing in captured.err
     assert "pip install -e '.[bench]'" in captured.err
     assert captured.out == ""
+
+
+def test_the_vector_index_bench_measures_every_filter_before_and_after_updates() -> None:
+    from service.bench.vector_index import run_vector_index
+    from service.index.graph import GraphSettings, VectorIndexSettings
+
+    rng = np.random.default_rng(3)
+    centres = rng.standard_normal((40, 16)).astype(np.float32)
+    centres /= np.linalg.norm(centres, axis=1, keepdims=True)
+    settings = VectorIndexSettings(
+        index="graph", graph=GraphSettings(links=8, build_breadth=32, search_breadth=32)
+    )
+    figures = run_vector_index(
+        3000,
+        dimension=16,
+        queries=6,
+        depth=20,
+        seed=1,
+        settings=settings,
+        centres=centres,
+        progress=lambda line: None,
+    )
+    assert figures["memory"]["graph_views_vectors"]
+    for phase in ("fresh", "replaced", "rebuilt"):
+        rows = figures[phase]
+        assert {(row["filter"], row["selectivity"]) for row in rows} >= {
+            ("random", 1.0),
+            ("random", 0.0001),
+            ("near", 0.01),
+            ("far", 0.01),
+        }
+        for row in rows:
+            assert sum(row["plans"].values()) == 6
+            assert row["outside_mask"] == 0
+            assert 0.0 <= row["worst_recall_at_10"] <= row["recall_at_10"] <= 1.0
+        # The graph is planned without a filter, wherever this setting lets it.
+        assert rows[0]["plans"].get("graph", 0) == 6

@@ -17,6 +17,7 @@ from service.attributes import AttributeType
 from service.errors import CollectionNotFound
 from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord
+from service.index.graph import GraphSettings, VectorIndexSettings
 from service.index.lexical import LexicalScoring
 from service.index.view import CollectionFacts, IndexView
 from service.usecases.drafts import ChunkDraft, MaterialisedDocument, PreparedDocument
@@ -251,3 +252,39 @@ def test_the_background_thread_compacts_an_index_past_its_tombstone_limit(
     finally:
         indexes.stop()
     assert indexes.view("bikes").snapshot.n_rows == 0
+
+
+def test_maintenance_builds_a_wanted_graph_and_compacts_with_it(source: FakeSource) -> None:
+    wanted = VectorIndexSettings(index="graph", graph=GraphSettings(links=4, build_breadth=16))
+    records = [chunk(f"doc{n}", 0, "word") for n in range(30)]
+    source.add("graphs", 8, records)
+    source.collections["graphs"] = replace(source.collections["graphs"], vectors=wanted)
+    indexes = registry(source, poll_seconds=3600, compact_after=3)
+    indexes.view("graphs")
+    indexes.maintain()
+    graph = indexes.view("graphs").snapshot.graph
+    assert graph is not None and graph.rows == 30
+    indexes.maintain()
+    assert indexes.view("graphs").snapshot.graph is graph, "a fresh graph is kept"
+
+    indexes.after_write("graphs", 2, {f"doc{n}": None for n in range(3)})
+    indexes.maintain()
+    snapshot = indexes.view("graphs").snapshot
+    assert snapshot.n_rows == snapshot.live_rows == 27
+    assert snapshot.graph is not None and snapshot.graph.rows == 27
+
+
+def test_maintenance_drops_the_graph_of_a_collection_that_no_longer_wants_one(
+    source: FakeSource,
+) -> None:
+    indexes = registry(source, poll_seconds=3600)
+    view = indexes.view("bikes")
+    index_settings = VectorIndexSettings(index="graph")
+    assert indexes.view("bikes").snapshot.graph is None
+    # The default (auto) wants no graph at this size: one built by hand is dropped.
+    entry_index = indexes._entry("bikes").index
+    assert entry_index.build_graph(index_settings, compact=False)
+    assert indexes.view("bikes").snapshot.graph is not None
+    indexes.maintain()
+    assert indexes.view("bikes").snapshot.graph is None
+    assert live_chunks(view) == ["ridge#0000", "ridge#0001"]

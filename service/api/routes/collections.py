@@ -34,6 +34,7 @@ def put_collection(
         cite_attributes=body.cite_attributes,
         answer_caution=body.answer_caution,
         retrieval=None if body.retrieval is None else body.retrieval.model_dump(exclude_none=True),
+        vectors=None if body.vectors is None else body.vectors.model_dump(exclude_none=True),
     )
     created, view = usecase.put_collection(runtime, caller, name, spec)
     response.status_code = 201 if created else 200

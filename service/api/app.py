@@ -14,7 +14,7 @@ from service.api.access_log import AccessLog
 from service.api.body import BodySizeLimit
 from service.api.errors import install_error_handlers
 from service.api.query_pool import QueryPool
-from service.api.routes import backups, collections, documents, health, retrieval, traces
+from service.api.routes import backups, collections, documents, health, jobs, retrieval, traces
 from service.usecases.ratelimit import RateLimiter
 from service.usecases.runtime import Runtime
 
@@ -28,6 +28,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
         runtime.indexes.start_background()
         runtime.rebuilds.resume()
+        runtime.jobs.start()
         yield
         query_pool.close()
         runtime.close()
@@ -45,7 +46,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     app.state.rate_limiter = RateLimiter(settings.rate_limit_per_second, settings.rate_limit_burst)
     install_error_handlers(app)
     # The retrieval routes come first: they are the busiest, and routes are matched in order.
-    for module in (retrieval, health, collections, documents, traces, backups):
+    for module in (retrieval, health, collections, documents, jobs, traces, backups):
         app.include_router(module.router)
     # Each added middleware wraps the ones before it. The access log is outermost, so it sees
     # every response; CORS wraps the body limit, so a browser can read even a 413.

@@ -14,6 +14,7 @@ from service.usecases.answering import (
     SearchResult,
 )
 from service.usecases.inference import InferredFilter
+from service.usecases.jobs import JobView
 
 
 def hit_json(hit: HitView) -> dict[str, Any]:
@@ -92,3 +93,28 @@ def answer_json(result: AnswerResult) -> dict[str, Any]:
     if result.reason is not None:
         body["reason"] = result.reason
     return body
+
+
+def job_json(job: JobView) -> dict[str, Any]:
+    return {
+        "job_id": job.id,
+        "collection": job.collection,
+        "kind": job.kind,
+        "state": job.state,
+        "key": job.key,
+        "counts": {
+            "documents": job.counts.documents,
+            "documents_done": job.counts.documents_done,
+            "chunks": job.counts.chunks,
+            "embedded": job.counts.embedded,
+            "cached": job.counts.cached,
+        },
+        "results": list(job.results),
+        "errors": list(job.errors),
+        "error": job.failure,
+        "cancel_requested": job.cancel_requested,
+        "worker": job.worker,
+        "created_at": job.created_at,
+        "started_at": job.started_at,
+        "finished_at": job.finished_at,
+    }

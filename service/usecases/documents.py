@@ -314,6 +314,8 @@ def check_documents(
     """Refuse the whole list when any document is invalid, before any of it is written: a job
     writes its documents in batches, but a request is accepted or refused whole."""
     with runtime.transaction() as session:
+        # A write checks its store before it reads: a replaced store has other collections.
+        runtime.store.check(session)
         row = load_collection(session, caller, collection)
         prepared, problems = _validated(documents, attribute_schema(row))
         existing = repository.documents_by_external_id(

@@ -54,7 +54,6 @@ def cmd_serve(args: argparse.Namespace) -> int:
     from functools import partial
 
     from service.api.server import serve
-    from service.embedding.threads import limit_torch_threads
     from service.logging_setup import configure_logging
     from service.usecases.runtime import Runtime, load_embedder
     from service.usecases.workers import serving_queue
@@ -65,7 +64,6 @@ def cmd_serve(args: argparse.Namespace) -> int:
     engine = _migrated_engine(args)
     jobs = serving_queue(settings, partial(load_embedder, settings))
     runtime = Runtime(settings, load_embedder(settings), engine=engine, jobs=jobs)
-    limit_torch_threads(settings.query_torch_threads)
     if settings.blas_threads:
         from threadpoolctl import threadpool_limits
 

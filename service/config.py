@@ -50,9 +50,6 @@ class Settings(BaseSettings):
     job_poll_ms: int = Field(500, ge=10, description="how often an idle worker looks for jobs")
     # The worker's share of the CPU: 0 leaves the query path one core (all cores but one).
     worker_torch_threads: int = Field(0, ge=0)
-    # The serving process embeds one query at a time; one thread is faster than two when the
-    # other core is busy with a worker.
-    query_torch_threads: int = Field(1, ge=0, description="0 keeps the library's own default")
     query_cache_entries: int = Field(4096, ge=0, description="query vectors kept in memory")
 
     max_body_bytes: int = 10 * 1024 * 1024

@@ -1,4 +1,5 @@
-"""The ``excerpta`` command: serve, ingest, keys, search, ask, explain, traces, eval, bench.
+"""The ``excerpta`` command: serve, worker, ingest, jobs, keys, search, ask, explain, traces,
+eval, bench.
 
 Also migrate, demo, backup and restore.
 
@@ -20,7 +21,7 @@ from pathlib import Path
 from typing import Any
 
 from service.config import Settings
-from service.errors import InvalidDocuments, ServiceError
+from service.errors import ServiceError
 
 DEMO_COLLECTION = "bikes"
 
@@ -34,13 +35,13 @@ def _settings(args: argparse.Namespace, **fixed: Any) -> Settings:
     return Settings(**overrides)
 
 
-def _runtime(args: argparse.Namespace, **fixed: Any) -> Any:
-    from service.usecases.runtime import Runtime, load_embedder
+def _runtime(args: argparse.Namespace, *, jobs: Any = None, **fixed: Any) -> Any:
+    """A runtime on the store directly; the model loads only if something embeds."""
+    from service.usecases.runtime import Runtime, embedder_on_first_use
 
     settings = _settings(args, **fixed)
-    # The store first: an unusable one is reported before the model takes seconds to load.
     engine = _migrated_engine(args)
-    return Runtime(settings, load_embedder(settings), engine=engine)
+    return Runtime(settings, embedder_on_first_use(settings), engine=engine, jobs=jobs)
 
 
 def _print_json(value: Any) -> None:
@@ -51,12 +52,21 @@ def _print_json(value: Any) -> None:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
+    """Serve queries; document writes become jobs that a worker process runs (this server's
+    own, or ``excerpta worker`` processes behind the broker)."""
+    from functools import partial
+
     from service.api.server import serve
     from service.logging_setup import configure_logging
+    from service.usecases.runtime import Runtime, load_embedder
+    from service.usecases.workers import serving_queue
 
-    configure_logging(log_format=_settings(args).log_format)
-    runtime = _runtime(args)
-    settings = runtime.settings
+    settings = _settings(args)
+    configure_logging(log_format=settings.log_format)
+    # The store first: an unusable one is reported before the model takes seconds to load.
+    engine = _migrated_engine(args)
+    jobs = serving_queue(settings, partial(load_embedder, settings))
+    runtime = Runtime(settings, load_embedder(settings), engine=engine, jobs=jobs)
     if settings.blas_threads:
         from threadpoolctl import threadpool_limits
 
@@ -66,6 +76,25 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
         limit_model_threads(settings.serve_model_threads)
     serve(runtime)
+    return 0
+
+
+def cmd_worker(args: argparse.Namespace) -> int:
+    """Run jobs: from the broker when ``EXCERPTA_BROKER_URL`` is set, else from the store."""
+    from service.embedding.threads import limit_torch_threads, worker_threads
+    from service.logging_setup import configure_logging
+    from service.usecases.runtime import Runtime, load_embedder
+    from service.usecases.workers import run_worker_process
+
+    settings = _settings(args)
+    configure_logging(log_format=settings.log_format)
+    engine = _migrated_engine(args)
+    runtime = Runtime(settings, load_embedder(settings), engine=engine)
+    limit_torch_threads(worker_threads(settings.worker_torch_threads))
+    try:
+        run_worker_process(runtime)
+    finally:
+        runtime.close()
     return 0
 
 
@@ -95,13 +124,20 @@ def ingest_path(
     batch_size: int,
     progress: bool = True,
     report: Callable[[str], None] = print,
+    bar_output: Any = None,
 ) -> tuple[int, int]:
-    """Ingest a folder or a .jsonl file; returns (documents written, files that failed)."""
+    """Ingest a folder or a .jsonl file as one job, following it document by document.
+
+    The job is recorded in the store and run by this process (unless a worker on the same
+    store takes it first); it writes ``batch_size`` documents per transaction, skips each
+    invalid document with its reason, and leaves what it wrote in place when interrupted, so a
+    second run embeds only what the first did not store. Returns (documents written, failed).
+    """
     from tqdm import tqdm
 
     from service.ingest.source_files import read_source
     from service.usecases import collections as collections_usecase
-    from service.usecases import documents as documents_usecase
+    from service.usecases import jobs
     from service.usecases.callers import LOCAL_ADMIN
 
     if schema_file is not None:
@@ -118,63 +154,126 @@ def ingest_path(
         )
         collections_usecase.put_collection(runtime, LOCAL_ADMIN, collection, spec)
 
-    failures = 0
-    written = 0
-    chunks = 0
-    started = time.perf_counter()
     items = list(read_source(path))
-    bar = tqdm(total=len(items), unit="doc", disable=not progress, file=sys.stderr)
-    batch: list[tuple[str, dict[str, Any]]] = []
+    output = bar_output or sys.stderr
+    bar = tqdm(
+        total=len(items),
+        unit="doc",
+        disable=not progress,
+        file=output,
+        # Every update drawn when the bar goes somewhere other than a terminal (a test reads it).
+        mininterval=0 if bar_output is not None else 0.1,
+        miniters=1 if bar_output is not None else None,
+    )
 
     def emit(line: str) -> None:
         # Through the bar when it is shown, so a report never lands inside its line.
         if progress:
-            bar.write(line, file=sys.stderr)
+            bar.write(line, file=output)
         else:
             report(line)
 
-    def flush() -> None:
-        nonlocal failures, written, chunks
-        pending = list(batch)
-        batch.clear()
-        while pending:
-            try:
-                results = documents_usecase.upsert_documents(
-                    runtime, LOCAL_ADMIN, collection, [doc for _, doc in pending]
-                )
-            except InvalidDocuments as exc:
-                bad = {problem["index"] for problem in exc.extra["documents"]}
-                for problem in exc.extra["documents"]:
-                    origin = pending[problem["index"]][0]
-                    named = f"document {problem['id']!r}: " if problem["id"] else ""
-                    emit(f"{origin}: {named}{problem['message']}")
-                failures += len(bad)
-                bar.update(len(bad))
-                pending = [item for i, item in enumerate(pending) if i not in bad]
-                continue
-            written += sum(1 for r in results if r["status"] != "unchanged")
-            chunks += sum(r["chunks"] for r in results)
-            bar.update(len(pending))
-            elapsed = max(time.perf_counter() - started, 1e-9)
-            bar.set_postfix(chunks=chunks, chunks_per_s=f"{chunks / elapsed:.1f}")
-            pending = []
-
+    shown = JobProgress(bar, emit)
+    documents: list[dict[str, Any]] = []
+    origins: list[str] = []
     for item in items:
         if item.error is not None or item.document is None:
-            emit(f"{item.origin}: {item.error}")
-            failures += 1
-            bar.update(1)
+            shown.rejected_file(item.origin, str(item.error))
             continue
-        batch.append((item.origin, item.document))
-        if len(batch) >= batch_size:
-            flush()
-    flush()
-    bar.close()
-    return written, failures
+        documents.append(item.document)
+        origins.append(item.origin)
+    try:
+        if not documents:
+            return 0, shown.failures
+        job = jobs.submit_upsert(
+            runtime,
+            LOCAL_ADMIN,
+            collection,
+            documents,
+            origins=origins,
+            skip_invalid=True,
+            batch_documents=batch_size,
+        )
+        finished = follow_job(runtime, job.id, shown)
+    finally:
+        bar.close()
+    if finished.state == "failed" and finished.failure is not None:
+        from service.errors import error_from_body
+
+        raise error_from_body(finished.failure)
+    written = sum(1 for r in finished.results if r["status"] != "unchanged")
+    return written, shown.failures
+
+
+class JobProgress:
+    """A job's documents on a progress bar as they are written, with chunks per second; each
+    rejected file or document is printed with its reason."""
+
+    def __init__(self, bar: Any, report: Callable[[str], None]) -> None:
+        self.bar = bar
+        self.report = report
+        self.failures = 0
+        self._results = 0
+        self._errors = 0
+        self._started = time.perf_counter()
+
+    def rejected_file(self, origin: str, reason: str) -> None:
+        self.report(f"{origin}: {reason}")
+        self.failures += 1
+        self.bar.update(1)
+
+    def show(self, job: Any) -> None:
+        for _ in job.results[self._results :]:
+            self.bar.update(1)
+        self._results = len(job.results)
+        for problem in job.errors[self._errors :]:
+            named = f"document {problem['id']!r}: " if problem.get("id") else ""
+            self.rejected_file(
+                problem.get("origin", f"#{problem['index']}"), named + problem["message"]
+            )
+        self._errors = len(job.errors)
+        elapsed = max(time.perf_counter() - self._started, 1e-9)
+        self.bar.set_postfix(
+            chunks=job.counts.chunks, chunks_per_s=f"{job.counts.chunks / elapsed:.1f}"
+        )
+
+
+def follow_job(runtime: Any, job_id: str, shown: JobProgress, *, pause: float = 0.2) -> Any:
+    """Run the job on a thread of this process (a worker may have taken it already) and show
+    its progress from the store until it finishes. Ctrl-C cancels it at the next batch."""
+    import threading
+
+    from service.usecases import jobs
+    from service.usecases.callers import LOCAL_ADMIN
+
+    runner = threading.Thread(
+        target=jobs.run_job,
+        args=(runtime, job_id),
+        kwargs={"worker": jobs.worker_name()},
+        name="excerpta-ingest",
+        daemon=True,
+    )
+    runner.start()
+    try:
+        while True:
+            job = jobs.get_job(runtime, LOCAL_ADMIN, job_id)
+            shown.show(job)
+            if job.finished:
+                runner.join()
+                return job
+            runner.join(pause)
+    except KeyboardInterrupt:
+        jobs.cancel_job(runtime, LOCAL_ADMIN, job_id)
+        shown.report("interrupted: the job stops after its current batch; run again to go on")
+        runner.join()
+        raise
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
-    runtime = _runtime(args)
+    from service.usecases.job_queues import StoreQueue
+
+    # The job goes to the store; this process runs it (see ``follow_job``).
+    runtime = _runtime(args, jobs=StoreQueue())
     try:
         written, failures = ingest_path(
             runtime,
@@ -184,10 +283,61 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             batch_size=args.batch_size,
             report=lambda line: print(line, file=sys.stderr),
         )
+    except KeyboardInterrupt:
+        return 130
     finally:
         runtime.close()
     print(f"{written} documents written, {failures} failed")
     return 1 if failures else 0
+
+
+# jobs --------------------------------------------------------------------------------------------
+
+
+def _job_line(job: Any) -> str:
+    counts = job.counts
+    return (
+        f"{job.id}  {job.state:<9} {job.collection:<20} {job.key:<16} "
+        f"{counts.documents_done}/{counts.documents} documents, {counts.chunks} chunks "
+        f"({counts.embedded} embedded, {counts.cached} cached)  {job.created_at:%Y-%m-%d %H:%M:%S}"
+    )
+
+
+def cmd_jobs(args: argparse.Namespace) -> int:
+    """List, show and cancel jobs in the store; no model is loaded."""
+    from service.api.render import job_json
+    from service.usecases import jobs
+    from service.usecases.callers import LOCAL_ADMIN
+
+    runtime = _runtime(args)
+    try:
+        if args.jobs_command == "list":
+            found = jobs.list_jobs(
+                runtime, LOCAL_ADMIN, collection=args.collection, state=args.state, limit=args.limit
+            )
+            if args.json:
+                _print_json([job_json(job) for job in found])
+            for job in [] if args.json else found:
+                print(_job_line(job))
+            return 0
+        if args.jobs_command == "show":
+            job = jobs.get_job(runtime, LOCAL_ADMIN, args.job_id)
+        else:
+            job = jobs.cancel_job(runtime, LOCAL_ADMIN, args.job_id)
+    finally:
+        runtime.close()
+    if args.json:
+        _print_json(job_json(job))
+        return 0
+    print(_job_line(job))
+    for problem in job.errors:
+        origin = problem.get("origin") or f"#{problem['index']}"
+        print(f"  {origin}: {problem.get('id') or '-'}: {problem['message']}")
+    if job.failure is not None:
+        print(f"  failed: {job.failure['message']}")
+    if job.cancel_requested and not job.finished:
+        print("  cancel requested: the job stops after its current batch")
+    return 0
 
 
 # keys --------------------------------------------------------------------------------------------
@@ -485,8 +635,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from service.store.db import unit_of_work
     from service.store.repository import collection_by_name
     from service.usecases import keys
+    from service.usecases.job_queues import StoreQueue
 
-    runtime = _runtime(args)
+    runtime = _runtime(args, jobs=StoreQueue())
     corpus = Path(args.corpus)
     try:
         with runtime.transaction() as session:
@@ -750,8 +901,31 @@ def build_parser() -> argparse.ArgumentParser:
     ingest.add_argument("collection")
     ingest.add_argument("path")
     ingest.add_argument("--schema", help="collection schema (JSON) to create or update first")
-    ingest.add_argument("--batch-size", type=int, default=64)
+    ingest.add_argument(
+        "--batch-size", type=int, default=4, help="documents written per transaction"
+    )
     ingest.set_defaults(handler=cmd_ingest)
+
+    worker = commands.add_parser(
+        "worker", help="run jobs from the broker (EXCERPTA_BROKER_URL), else from the store"
+    )
+    _common(worker)
+    worker.set_defaults(handler=cmd_worker)
+
+    jobs = commands.add_parser("jobs", help="list, show and cancel document jobs")
+    jobs_commands = jobs.add_subparsers(dest="jobs_command", required=True)
+    jobs_list = jobs_commands.add_parser("list")
+    _common(jobs_list)
+    jobs_list.add_argument("--collection")
+    jobs_list.add_argument("--state", choices=["queued", "running", "done", "failed", "cancelled"])
+    jobs_list.add_argument("--limit", type=int, default=100)
+    jobs_list.add_argument("--json", action="store_true")
+    for action in ("show", "cancel"):
+        one = jobs_commands.add_parser(action)
+        _common(one)
+        one.add_argument("job_id")
+        one.add_argument("--json", action="store_true")
+    jobs.set_defaults(handler=cmd_jobs)
 
     keys = commands.add_parser("keys", help="create, revoke and list API keys")
     keys_commands = keys.add_subparsers(dest="keys_command", required=True)

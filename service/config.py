@@ -35,6 +35,23 @@ class Settings(BaseSettings):
     # On SIGTERM the server stops accepting and gives requests in flight this long to finish.
     shutdown_grace_seconds: int = Field(30, ge=0)
 
+    # Document writes are jobs, run by worker processes: one the server starts (the default),
+    # or ``excerpta worker`` processes fed through a Celery broker when broker_url is set.
+    broker_url: str | None = None
+    # The broker queue the jobs go through: deployments sharing one broker each name their own.
+    broker_queue: str = Field("excerpta-jobs", min_length=1, max_length=200)
+    # How long the broker waits for a task's acknowledgement before handing it to another
+    # worker (Redis); longer than any one job should run.
+    broker_visibility_seconds: int = Field(3600, ge=1)
+    job_batch_documents: int = Field(16, ge=1, le=1000)
+    # A running job's worker renews its claim at every batch; a claim that ran out lets another
+    # worker take the job over where the store says it stopped.
+    job_lease_seconds: float = Field(300.0, gt=0)
+    job_poll_ms: int = Field(500, ge=10, description="how often an idle worker looks for jobs")
+    # The worker's share of the CPU: 0 leaves the query path one core (all cores but one).
+    worker_torch_threads: int = Field(0, ge=0)
+    query_cache_entries: int = Field(4096, ge=0, description="query vectors kept in memory")
+
     max_body_bytes: int = 10 * 1024 * 1024
     max_batch_documents: int = 1000
     max_document_text_bytes: int = 2 * 1024 * 1024

@@ -17,7 +17,8 @@ a 500.
     ├── NotFound                      missing, or hidden from the caller
     │   ├── CollectionNotFound
     │   ├── DocumentNotFound
-    │   └── TraceNotFound
+    │   ├── TraceNotFound
+    │   └── JobNotFound
     ├── Conflict                      an attribute's type changed or left out, a name taken
     ├── PayloadTooLarge               the body exceeds the size limit
     ├── UnsupportedMediaType          a body sent as something other than JSON
@@ -32,7 +33,7 @@ a 500.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 
@@ -123,6 +124,10 @@ class TraceNotFound(NotFound):
     code = "trace_not_found"
 
 
+class JobNotFound(NotFound):
+    code = "job_not_found"
+
+
 class Conflict(ServiceError):
     code = "conflict"
 
@@ -185,3 +190,23 @@ class StorageUnavailable(ServiceError):
     """
 
     code = "storage_unavailable"
+
+
+def error_from_body(body: Mapping[str, Any]) -> ServiceError:
+    """The error an error body describes, raised again where the sender of a job waits for it:
+    the job ran in another process, which recorded the error's body on the job."""
+    classes: dict[str, type[ServiceError]] = {}
+    pending: list[type[ServiceError]] = [ServiceError]
+    while pending:
+        kind = pending.pop()
+        classes.setdefault(kind.code, kind)
+        pending.extend(kind.__subclasses__())
+    kind = classes.get(str(body.get("code")), ServiceError)
+    error = kind.__new__(kind)
+    extra = {name: value for name, value in body.items() if name not in ("code", "message")}
+    ServiceError.__init__(error, str(body.get("message", "")), **extra)
+    if isinstance(error, Busy | RateLimited):
+        error.retry_after = 1
+    if isinstance(error, GeneratorUnavailable):
+        error.context = None
+    return error

@@ -94,9 +94,13 @@ def make_runtime(tmp_path: Path) -> Iterator[Callable[..., Runtime]]:
     """Build runtimes over a scratch data dir with the test-only hashing embedder by default."""
     built: list[Runtime] = []
 
-    def build(engine: Engine | None = None, embedder: Any = None, **settings: Any) -> Runtime:
+    def build(
+        engine: Engine | None = None, embedder: Any = None, jobs: Any = None, **settings: Any
+    ) -> Runtime:
         options: dict[str, Any] = {"data_dir": tmp_path / "data", "index_poll_ms": 0, **settings}
-        runtime = Runtime(Settings(**options), embedder or HashingTestEmbedder(), engine=engine)
+        runtime = Runtime(
+            Settings(**options), embedder or HashingTestEmbedder(), engine=engine, jobs=jobs
+        )
         built.append(runtime)
         return runtime
 

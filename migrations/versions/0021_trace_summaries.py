@@ -1,7 +1,7 @@
 """trace summaries: the columns a trace listing shows and filters by, filled for old traces
 
 Revision ID: 0021_trace_summaries
-Revises: 0002_store_identity
+Revises: 0017_jobs
 Create Date: 2026-12-03
 """
 
@@ -13,7 +13,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = "0021_trace_summaries"
-down_revision: str | None = "0002_store_identity"
+down_revision: str | None = "0017_jobs"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

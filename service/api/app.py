@@ -18,6 +18,7 @@ from service.api.routes import (
     collections,
     documents,
     health,
+    jobs,
     metrics,
     retrieval,
     traces,
@@ -39,6 +40,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
         runtime.indexes.start_background()
         runtime.rebuilds.resume()
+        runtime.jobs.start()
         yield
         query_pool.close()
         runtime.close()
@@ -58,7 +60,7 @@ def create_app(runtime: Runtime) -> FastAPI:
     app.state.rate_limiter = RateLimiter(settings.rate_limit_per_second, settings.rate_limit_burst)
     install_error_handlers(app)
     # The retrieval routes come first: they are the busiest, and routes are matched in order.
-    for module in (retrieval, health, collections, documents, traces, backups, metrics):
+    for module in (retrieval, health, collections, documents, jobs, traces, backups, metrics):
         app.include_router(module.router)
     mount_console(app)
     # Each added middleware wraps the ones before it. The access log is outermost, so it sees

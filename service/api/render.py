@@ -15,6 +15,7 @@ from service.usecases.answering import (
 )
 from service.usecases.explain import ChunkExplanation, Explanation, RankingCut, Standing
 from service.usecases.inference import InferredFilter
+from service.usecases.jobs import JobView
 from service.usecases.traces import TracePage, TraceSummary
 
 
@@ -192,4 +193,29 @@ def explanation_json(explanation: Explanation) -> dict[str, Any]:
         "cuts": [_cut_json(cut) for cut in explanation.cuts],
         "inferred_filter": inferred_json(explanation.inferred_filter),
         "chunks": [_chunk_explanation_json(chunk) for chunk in explanation.chunks],
+    }
+
+
+def job_json(job: JobView) -> dict[str, Any]:
+    return {
+        "job_id": job.id,
+        "collection": job.collection,
+        "kind": job.kind,
+        "state": job.state,
+        "key": job.key,
+        "counts": {
+            "documents": job.counts.documents,
+            "documents_done": job.counts.documents_done,
+            "chunks": job.counts.chunks,
+            "embedded": job.counts.embedded,
+            "cached": job.counts.cached,
+        },
+        "results": list(job.results),
+        "errors": list(job.errors),
+        "error": job.failure,
+        "cancel_requested": job.cancel_requested,
+        "worker": job.worker,
+        "created_at": job.created_at,
+        "started_at": job.started_at,
+        "finished_at": job.finished_at,
     }

@@ -140,6 +140,62 @@ class DocumentBatchIn(Strict):
             "Each is validated by the service so every invalid one is reported with its reason."
         )
     )
+    wait: bool = Field(
+        True,
+        description=(
+            "true: answer once the batch's job is done, with its results; false: answer 202 "
+            "with the job's id at once (follow it at /v1/jobs/{job_id})."
+        ),
+    )
+
+
+class JobAcceptedOut(BaseModel):
+    job_id: str
+    status: Literal["queued", "running", "done", "failed", "cancelled"]
+
+
+class JobCountsOut(BaseModel):
+    documents: int
+    documents_done: int
+    chunks: int
+    embedded: int
+    cached: int
+
+
+class JobDocumentResult(BaseModel):
+    id: str
+    index: int
+    status: Literal["created", "updated", "unchanged"]
+    chunks: int
+
+
+class JobDocumentError(BaseModel):
+    model_config = ConfigDict(extra="allow")
+    id: str | None
+    index: int
+    reason: str
+    message: str
+
+
+class JobOut(BaseModel):
+    job_id: str
+    collection: str
+    kind: str
+    state: Literal["queued", "running", "done", "failed", "cancelled"]
+    key: str
+    counts: JobCountsOut
+    results: list[JobDocumentResult]
+    errors: list[JobDocumentError]
+    error: ErrorBody | None
+    cancel_requested: bool
+    worker: str | None
+    created_at: dt.datetime
+    started_at: dt.datetime | None
+    finished_at: dt.datetime | None
+
+
+class JobListOut(BaseModel):
+    jobs: list[JobOut]
 
 
 class DocumentResult(BaseModel):

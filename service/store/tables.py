@@ -239,3 +239,45 @@ class StoreIdentityRow(Base):
     store_id: Mapped[str] = mapped_column(String(36), primary_key=True)
     created_at: Mapped[dt.datetime] = mapped_column(UtcDateTime)
     checked_at: Mapped[dt.datetime] = mapped_column(UtcDateTime)
+
+
+class JobRow(Base):
+    """A document write sent as a job: what it holds, who sent it, how far it got.
+
+    ``payload`` is the job's input (the documents, and for the command line where each came
+    from); it is read only by the worker that runs the job. ``documents_done`` moves in the same
+    transaction as the batch it counts, so a job taken over after a crash resumes exactly where
+    the store says it stopped. ``lease_expires_at`` is when another worker may take it over.
+    """
+
+    __tablename__ = "jobs"
+    __table_args__ = (
+        Index("ix_jobs_state_created", "state", "created_at"),
+        Index("ix_jobs_key_created", "key_id", "created_at"),
+    )
+
+    id: Mapped[str] = mapped_column(String(36), primary_key=True)
+    collection: Mapped[str] = mapped_column(binary_text(63))
+    kind: Mapped[str] = mapped_column(String(16))
+    state: Mapped[str] = mapped_column(String(16))
+    key_id: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    key_name: Mapped[str] = mapped_column(String(128))
+    caller: Mapped[dict[str, Any]] = mapped_column(JSON)
+    payload: Mapped[dict[str, Any]] = mapped_column(JSON, deferred=True)
+    batch_documents: Mapped[int] = mapped_column(Integer)
+    skip_invalid: Mapped[bool] = mapped_column(Boolean)
+    documents: Mapped[int] = mapped_column(Integer)
+    documents_done: Mapped[int] = mapped_column(Integer, default=0)
+    chunks: Mapped[int] = mapped_column(Integer, default=0)
+    embedded: Mapped[int] = mapped_column(Integer, default=0)
+    cached: Mapped[int] = mapped_column(Integer, default=0)
+    results: Mapped[list[dict[str, Any]]] = mapped_column(JSON)
+    errors: Mapped[list[dict[str, Any]]] = mapped_column(JSON)
+    failure: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
+    cancel_requested: Mapped[bool] = mapped_column(Boolean, default=False)
+    worker: Mapped[str | None] = mapped_column(String(200), nullable=True)
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    lease_expires_at: Mapped[dt.datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    created_at: Mapped[dt.datetime] = mapped_column(UtcDateTime)
+    started_at: Mapped[dt.datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    finished_at: Mapped[dt.datetime | None] = mapped_column(UtcDateTime, nullable=True)

@@ -126,7 +126,7 @@ def _retrieve(
     prepared = prepare_query(
         options,
         view,
-        runtime.embedder,
+        runtime.query_embedder,
         caller.visible_groups,
         whole_ranking=whole_ranking,
         proposer=runtime.generators.filter_proposer() if using_chat else None,

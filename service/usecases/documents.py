@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import partial
 from typing import Any
@@ -24,6 +24,7 @@ from service.attributes import (
     normalize_value,
     to_json_value,
 )
+from service.embedding.base import Embedder
 from service.errors import (
     Busy,
     DocumentNotFound,
@@ -159,7 +160,10 @@ def _check_text(value: str, field: str) -> None:
         raise DocumentProblem("invalid_text", f"The {field} is not valid Unicode text.") from None
 
 
-def _check_limits(runtime: Runtime, documents: Sequence[Any]) -> None:
+def check_batch_limits(runtime: Runtime, documents: Sequence[Any]) -> None:
+    """What a batch is refused for before it becomes a job: no documents, too many, too long."""
+    if not documents:
+        raise InvalidRequest("The batch must hold at least one document.", field="documents")
     settings = runtime.settings
     if len(documents) > settings.max_batch_documents:
         raise LimitExceeded(
@@ -219,26 +223,37 @@ MAX_PREPARATIONS = 5
 _Materials = dict[tuple[str, str, str], MaterialisedDocument]
 
 
+# Called inside a batch's write transaction with its results and vectors, so whatever it
+# records (a job's progress) commits or rolls back with the batch.
+WrittenHook = Callable[[Session, list[dict[str, Any]], "Vectors"], None]
+
+
 def upsert_documents(
-    runtime: Runtime, caller: Caller, collection: str, documents: Sequence[Any]
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    documents: Sequence[Any],
+    *,
+    embedder: Embedder | None = None,
+    on_written: WrittenHook | None = None,
 ) -> list[dict[str, Any]]:
     """Validate the whole batch, then write every changed document in one transaction.
 
     Parsing, chunking and embedding happen first, outside any lock. The write transaction then
     takes the collection's write lock before it reads the documents it replaces and writes only
     what the batch was prepared against; when another write got in between and changed that,
-    the batch is prepared again (the chunks and vectors already made are kept).
+    the batch is prepared again (the chunks and vectors already made are kept). ``embedder``
+    stands in for the runtime's (a job's embedder reports its progress).
     """
     caller.require(Role.WRITER)
-    _check_limits(runtime, documents)
-    if not documents:
-        raise InvalidRequest("The batch must hold at least one document.", field="documents")
+    check_batch_limits(runtime, documents)
+    model = embedder or runtime.embedder
     materials: _Materials = {}
     for _ in range(MAX_PREPARATIONS):
-        batch = _prepare_batch(runtime, caller, collection, documents, materials)
+        batch = _prepare_batch(runtime, model, caller, collection, documents, materials)
         try:
             results, revision, vectors = runtime.retries.run(
-                partial(_write_batch, runtime, caller, collection, batch)
+                partial(_write_batch, runtime, caller, collection, batch, on_written)
             )
         except _StalePreparation:
             continue
@@ -259,6 +274,7 @@ def upsert_documents(
 
 def _prepare_batch(
     runtime: Runtime,
+    embedder: Embedder,
     caller: Caller,
     collection: str,
     documents: Sequence[Any],
@@ -284,7 +300,7 @@ def _prepare_batch(
         for doc in changed:
             cached = (doc.external_id, doc.content_hash, key)
             if cached not in materials:
-                materials[cached] = materialise(runtime.embedder, doc, chunking)
+                materials[cached] = materialise(embedder, doc, chunking)
             made[doc.external_id] = materials[cached]
         return made
 
@@ -292,10 +308,27 @@ def _prepare_batch(
     rebuilt = built_with(layout.pending) if layout.pending else {}
     drafts = [c for m in (*built.values(), *rebuilt.values()) for c in m.chunks]
     with runtime.transaction() as session:
-        vectors = embed_drafts(runtime.embedder, session, drafts)
+        vectors = embed_drafts(embedder, session, drafts)
     if vectors.fresh:
         runtime.metrics.observe_embedding("documents", len(vectors.fresh), vectors.model_seconds)
     return PreparedBatch(layout, tuple(prepared), built, rebuilt, vectors)
+
+
+def check_documents(
+    runtime: Runtime, caller: Caller, collection: str, documents: Sequence[Any]
+) -> None:
+    """Refuse the whole list when any document is invalid, before any of it is written: a job
+    writes its documents in batches, but a request is accepted or refused whole."""
+    with runtime.transaction() as session:
+        # A write checks its store before it reads: a replaced store has other collections.
+        runtime.store.check(session)
+        row = load_collection(session, caller, collection)
+        prepared, problems = _validated(documents, attribute_schema(row))
+        existing = repository.documents_by_external_id(
+            session, row.id, [d.external_id for d in prepared]
+        )
+        stored = {doc_id: (d.content_hash, tuple(d.access)) for doc_id, d in existing.items()}
+    _reject(documents, problems + _not_writable(caller, prepared, stored))
 
 
 def _validated(
@@ -352,7 +385,11 @@ def _reject(documents: Sequence[Any], problems: list[dict[str, Any]]) -> None:
 
 
 def _write_batch(
-    runtime: Runtime, caller: Caller, collection: str, batch: PreparedBatch
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    batch: PreparedBatch,
+    on_written: WrittenHook | None,
 ) -> tuple[list[dict[str, Any]], int | None, dict[str, np.ndarray]]:
     """One attempt at the write: (results, the new revision or None when nothing changed, the
     vectors as stored)."""
@@ -418,6 +455,8 @@ def _write_batch(
             results.append(
                 {"id": doc.external_id, "status": status, "chunks": len(material.chunks)}
             )
+        if on_written is not None:
+            on_written(session, results, batch.vectors)
         if not changed:
             return results, None, vectors
         revision = repository.bump_revision(

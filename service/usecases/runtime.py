@@ -17,12 +17,14 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.config import Settings
 from service.embedding.base import Embedder
+from service.embedding.query_cache import CachedQueryEmbedder
 from service.store.db import make_engine, migrate, session_factory
 from service.store.identity import StoreGuard
 from service.store.repository import KeyReader
 from service.store.transactions import Transactions
 from service.usecases.generators import GeneratorRegistry
 from service.usecases.indexes import IndexRegistry, StoreIndexSource
+from service.usecases.job_queues import JobQueue, RunHere
 from service.usecases.metrics import HeldState, ServiceMetrics
 from service.usecases.rebuild import RebuildWorker, pending_rebuilds, rebuild_batch
 from service.usecases.trace_writer import TraceWriter, prune_traces, write_traces
@@ -37,9 +39,14 @@ class Runtime:
         *,
         engine: Engine | None = None,
         run_migrations: bool = True,
+        jobs: JobQueue | None = None,
     ) -> None:
         self.settings = settings
         self.embedder = embedder
+        # What queries embed with: the same model, with repeated questions answered from memory.
+        self.query_embedder = CachedQueryEmbedder(embedder, settings.query_cache_entries)
+        # Where submitted jobs go; by default this process runs them as they come.
+        self.jobs: JobQueue = jobs or RunHere()
         self.engine = engine or make_engine(settings.resolved_database_url())
         self.store = StoreGuard(self.engine)
         if run_migrations:
@@ -92,6 +99,7 @@ class Runtime:
             yield session
 
     def close(self) -> None:
+        self.jobs.stop()
         self.rebuilds.stop()
         self.indexes.stop()
         self.traces.stop()
@@ -104,4 +112,15 @@ def load_embedder(settings: Settings) -> Embedder:
         from service.embedding.minilm import MiniLmEmbedder
 
         return MiniLmEmbedder()
+    raise ValueError(f"unknown embedder {settings.embedder!r}")
+
+
+def embedder_on_first_use(settings: Settings) -> Embedder:
+    """The embedder the settings name, loaded only when something first embeds or counts."""
+    from service.embedding.lazy import LazyEmbedder
+
+    if settings.embedder == "minilm":
+        from service.embedding.minilm import MiniLmEmbedder
+
+        return LazyEmbedder(MiniLmEmbedder, partial(load_embedder, settings))
     raise ValueError(f"unknown embedder {settings.embedder!r}")

@@ -29,6 +29,7 @@ LOWER_PACKAGES = (
     "embedding",
     "evaluation",
     "store",
+    "taskqueue",
 )
 DATABASE_AND_SERVER = ("sqlalchemy", "alembic", "uvicorn")
 WEB_FRAMEWORK = ("fastapi", "starlette")

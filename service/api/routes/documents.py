@@ -6,6 +6,7 @@ import json
 from typing import Any
 
 from fastapi import APIRouter, Query, Response
+from fastapi.responses import JSONResponse
 
 from service.api.deps import CallerDep, RuntimeDep
 from service.api.errors import ERROR_RESPONSES
@@ -16,9 +17,12 @@ from service.api.schemas import (
     DocumentBatchOut,
     DocumentListOut,
     DocumentOut,
+    JobAcceptedOut,
 )
 from service.errors import InvalidRequest
 from service.usecases import documents as usecase
+from service.usecases import jobs
+from service.usecases.jobs import document_result
 
 router = APIRouter(
     prefix="/v1/collections/{name}/documents",
@@ -43,11 +47,19 @@ def _filter_param(value: str | None) -> str | dict[str, Any] | None:
     return value
 
 
-@router.post("", response_model=DocumentBatchOut)
+@router.post(
+    "",
+    response_model=DocumentBatchOut,
+    responses={202: {"model": JobAcceptedOut, "description": "The job, sent with wait: false"}},
+)
 def upsert_documents(
     name: str, body: DocumentBatchIn, runtime: RuntimeDep, caller: CallerDep
-) -> dict[str, object]:
-    return {"results": usecase.upsert_documents(runtime, caller, name, body.documents)}
+) -> Any:
+    job = jobs.submit_upsert(runtime, caller, name, body.documents)
+    if not body.wait:
+        return JSONResponse({"job_id": job.id, "status": job.state}, status_code=202)
+    done = jobs.wait_for_job(runtime, caller, job.id)
+    return {"results": [document_result(result) for result in done.results]}
 
 
 @router.get("", response_model=DocumentListOut)

@@ -1,0 +1,60 @@
+"""``excerpta serve`` runs document jobs in a worker process of its own, never in itself."""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import httpx
+
+from service.usecases.runtime import Runtime
+from tests.api_helpers import make_key
+from tests.served import ServerProcess
+
+COLLECTION = "/v1/collections/notes"
+
+
+def test_a_servers_jobs_run_in_its_worker_process_and_their_writes_are_searchable_at_once(
+    tmp_path: Path, make_runtime: Callable[..., Runtime], store_url: str
+) -> None:
+    data = tmp_path / "data"
+    key = make_key(make_runtime(data_dir=data, database_url=store_url), "admin", name="admin")
+    server = ServerProcess(data, store_url, test_job_workers="1", job_poll_ms="2000")
+    server.start()
+    try:
+        headers = {"Authorization": f"Bearer {key}"}
+        with httpx.Client(base_url=server.base_url, headers=headers, timeout=60) as client:
+            assert client.put(COLLECTION, json={}).status_code == 201
+            notes = [{"id": f"note-{n}", "text": f"saddle height note {n}"} for n in range(3)]
+            waited = client.post(f"{COLLECTION}/documents", json={"documents": notes})
+            assert waited.status_code == 200, waited.text
+            assert [r["status"] for r in waited.json()["results"]] == ["created"] * 3
+            found = client.post(f"{COLLECTION}/search", json={"query": "saddle", "mode": "lexical"})
+            assert {hit["document_id"] for hit in found.json()["hits"]} == {
+                "note-0",
+                "note-1",
+                "note-2",
+            }
+
+            later = {"id": "note-9", "text": "chain wear note"}
+            sent = client.post(
+                f"{COLLECTION}/documents", json={"documents": [later], "wait": False}
+            )
+            assert sent.status_code == 202, sent.text
+            job_id = sent.json()["job_id"]
+            deadline = time.monotonic() + 30
+            job = client.get(f"/v1/jobs/{job_id}").json()
+            while job["state"] != "done" and time.monotonic() < deadline:
+                time.sleep(0.05)
+                job = client.get(f"/v1/jobs/{job_id}").json()
+            assert job["state"] == "done", job
+
+            jobs = client.get("/v1/jobs", params={"collection": "notes"}).json()["jobs"]
+            assert len(jobs) == 2
+            assert server.process is not None
+            workers = {job["worker"] for job in jobs}
+            assert len(workers) == 1
+            assert not workers.pop().endswith(f":{server.process.pid}")
+    finally:
+        server.stop()

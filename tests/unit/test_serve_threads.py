@@ -21,11 +21,18 @@ def torch_threads_restored() -> Iterator[None]:
 
 
 def _serve_with(monkeypatch: pytest.MonkeyPatch, settings: Settings) -> list[object]:
+    """``cmd_serve`` with the store, the model and the job queue stood in for."""
     served: list[object] = []
-    runtime = SimpleNamespace(settings=settings)
-    monkeypatch.setattr(cli, "_runtime", lambda args: runtime)
+    monkeypatch.setattr(cli, "_settings", lambda args: settings)
+    monkeypatch.setattr(cli, "_migrated_engine", lambda args: None)
+    monkeypatch.setattr("service.usecases.workers.serving_queue", lambda *args: None)
+    monkeypatch.setattr("service.usecases.runtime.load_embedder", lambda settings: None)
+    monkeypatch.setattr(
+        "service.usecases.runtime.Runtime",
+        lambda settings, embedder, **parts: SimpleNamespace(settings=settings),
+    )
     monkeypatch.setattr("service.api.server.serve", served.append)
-    monkeypatch.setattr("service.logging_setup.configure_logging", lambda **_: None)
+    monkeypatch.setattr("service.logging_setup.configure_logging", lambda **kwargs: None)
     assert cli.cmd_serve(argparse.Namespace()) == 0
     return served
 

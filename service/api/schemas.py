@@ -8,6 +8,8 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, PlainValidator, WithJsonSchema
 from pydantic_core import PydanticCustomError
 
+from service.usecases.explain import Stage as ExplainStage
+
 
 class Strict(BaseModel):
     model_config = ConfigDict(extra="forbid")
@@ -403,20 +405,6 @@ class AnswerOut(BaseModel):
     caution: str | None = None
     trace_id: str
     inferred_filter: InferredFilterOut | None = None
-
-
-ExplainStage = Literal[
-    "access",
-    "filter",
-    "time_window",
-    "inferred_filter",
-    "lexical",
-    "semantic",
-    "fusion",
-    "top_k",
-    "packing",
-    "generation",
-]
 
 
 class ExplainIn(AnswerIn):

@@ -23,7 +23,7 @@ from typing import Any, Protocol
 
 from tqdm import tqdm
 
-from service.evaluation.inputs import FilterSpec, LabelFileError
+from service.evaluation.inputs import FilterSpec, LabelFileError, content_lines
 from service.evaluation.runner import Interval, combine_filters
 from service.evaluation.significance import bootstrap_interval
 
@@ -108,17 +108,9 @@ def read_answer_questions(path: str | Path) -> list[AnswerQuestion]:
     path = Path(path)
     if path.suffix.lower() != ".jsonl":
         raise LabelFileError(path, None, "answer questions must be a .jsonl file")
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except OSError as error:
-        raise LabelFileError(path, None, f"cannot be read ({error.strerror or error})") from error
-    except UnicodeDecodeError as error:
-        raise LabelFileError(path, None, "is not UTF-8 text") from error
     questions: list[AnswerQuestion] = []
     seen: dict[str, int] = {}
-    for number, line in enumerate(text.splitlines(), start=1):
-        if not line.strip():
-            continue
+    for number, line in content_lines(path):
         question = _parse_question(path, number, line)
         if question.qid in seen:
             raise LabelFileError(

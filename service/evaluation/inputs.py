@@ -54,7 +54,7 @@ def read_queries(path: str | Path) -> list[LabeledQuery]:
         )
     queries: list[LabeledQuery] = []
     line_of_qid: dict[str, int] = {}
-    for line_number, line in _content_lines(path):
+    for line_number, line in content_lines(path):
         query = parse(path, line_number, line)
         if query.qid in line_of_qid:
             raise LabelFileError(
@@ -75,7 +75,7 @@ def read_qrels(path: str | Path) -> dict[str, dict[str, int]]:
     """
     path = Path(path)
     qrels: dict[str, dict[str, int]] = {}
-    for line_number, line in _content_lines(path):
+    for line_number, line in content_lines(path):
         fields = line.split()
         if len(fields) != 4:
             raise LabelFileError(
@@ -106,7 +106,8 @@ def inline_qrels(queries: list[LabeledQuery]) -> dict[str, dict[str, int]]:
     return {query.qid: dict(query.qrels) for query in queries if query.qrels is not None}
 
 
-def _content_lines(path: Path) -> list[tuple[int, str]]:
+def content_lines(path: Path) -> list[tuple[int, str]]:
+    """The file's non-blank lines with their numbers; an unreadable file is a label error."""
     try:
         text = path.read_text(encoding="utf-8-sig")
     except OSError as error:

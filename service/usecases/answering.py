@@ -13,11 +13,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
-
 from service.attributes import to_json_value
 from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
-from service.filters.syntax import Node
 from service.generation.base import AnswerSupport, GeneratedAnswer, Generator, cited_sentences
 from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
@@ -30,6 +27,7 @@ from service.usecases.inference import InferredFilter
 from service.usecases.runtime import Runtime
 from service.usecases.search import (
     QUERY_VECTOR_SOURCE,
+    PreparedQuery,
     SearchOptions,
     check_limits,
     prepare_query,
@@ -99,13 +97,65 @@ class AnswerResult:
 
 
 @dataclass(frozen=True)
-class _Retrieval:
+class QueryRun:
+    """A request checked and run through the retrieval core, as every route and explain run it."""
+
     view: IndexView
+    prepared: PreparedQuery
     result: RetrievalResult
+
+
+def run_query(
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    options: SearchOptions,
+    groups: frozenset[str] | None,
+    *,
+    whole_ranking: bool,
+) -> QueryRun:
+    """Check the request against the limits and the caller's collections, then retrieve with
+    ``groups`` deciding what is seen (the caller's own, or another key's for explain)."""
+    caller.require(Role.READER)
+    check_limits(options, runtime.settings, runtime.embedder.dimensions)
+    caller.require_collection(collection)
+    view = runtime.indexes.view(collection)
+    using_chat = options.infer_filter.active and options.infer_filter.using == "chat-http"
+    prepared = prepare_query(
+        options,
+        view,
+        runtime.query_embedder,
+        groups,
+        whole_ranking=whole_ranking,
+        proposer=runtime.generators.filter_proposer() if using_chat else None,
+    )
+    return QueryRun(view, prepared, retrieve(view.snapshot, prepared.retrieval))
+
+
+def support_for(run: QueryRun, question: str, passages: Sequence[Passage]) -> AnswerSupport | None:
+    """What a span-scoring generator reads beside the passages; None for a vector-only query."""
+    if not question.strip():
+        return None
+    query = run.prepared.retrieval
+    return answer_support(run.view, passages, query.vector, query.filter)
+
+
+@dataclass(frozen=True)
+class _Retrieval:
+    run: QueryRun
     recorder: TraceRecorder
-    inferred: InferredFilter | None
-    query_vector: np.ndarray | None = None
-    filter: Node | None = None
+
+    @property
+    def view(self) -> IndexView:
+        return self.run.view
+
+    @property
+    def result(self) -> RetrievalResult:
+        return self.run.result
+
+    @property
+    def inferred(self) -> InferredFilter | None:
+        return self.run.prepared.inferred
 
 
 def _retrieve(
@@ -117,22 +167,12 @@ def _retrieve(
     *,
     whole_ranking: bool,
 ) -> _Retrieval:
-    """Check the request, run the retrieval core, and record its stages."""
-    caller.require(Role.READER)
-    check_limits(options, runtime.settings, runtime.embedder.dimensions)
-    caller.require_collection(collection)
-    view = runtime.indexes.view(collection)
-    using_chat = options.infer_filter.active and options.infer_filter.using == "chat-http"
-    prepared = prepare_query(
-        options,
-        view,
-        runtime.query_embedder,
-        caller.visible_groups,
-        whole_ranking=whole_ranking,
-        proposer=runtime.generators.filter_proposer() if using_chat else None,
+    """Run the query and record its stages."""
+    run = run_query(
+        runtime, caller, collection, options, caller.visible_groups, whole_ranking=whole_ranking
     )
-    result = retrieve(view.snapshot, prepared.retrieval)
-    for stage in result.stages:
+    prepared = run.prepared
+    for stage in run.result.stages:
         notes = prepared.filter_notes if stage.name == "filter" else {}
         recorder.retrieval_stage(stage, **notes)
         if stage.name == "filter" and prepared.embedding_milliseconds is not None:
@@ -141,14 +181,7 @@ def _retrieve(
                 prepared.embedding_milliseconds,
                 source=prepared.embedding_source,
             )
-    return _Retrieval(
-        view,
-        result,
-        recorder,
-        prepared.inferred,
-        prepared.retrieval.vector,
-        prepared.retrieval.filter,
-    )
+    return _Retrieval(run, recorder)
 
 
 def _finish(runtime: Runtime, caller: Caller, retrieval: _Retrieval, **summary: Any) -> None:
@@ -452,13 +485,10 @@ def _generate(
     considered with each part of their scores, its threshold and why it answered or not."""
     recorder = retrieval.recorder
     started = time.perf_counter()
-    support: AnswerSupport | None = None
-    if question.strip():
-        support = answer_support(
-            retrieval.view, packed.passages, retrieval.query_vector, retrieval.filter
-        )
     try:
-        generated = generator.generate(question, packed.passages, support)
+        generated = generator.generate(
+            question, packed.passages, support_for(retrieval.run, question, packed.passages)
+        )
     except GeneratorUnavailable as exc:
         recorder.stage(
             "generation",

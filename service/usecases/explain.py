@@ -1,13 +1,14 @@
 """Why a document's chunks did or did not reach a response.
 
-Explain runs the request it is given as search, context or answer run it: the same check
-(``check_limits``, ``prepare_query``), the one retrieval entry (``retrieve``), the same packer
-(``answering.pack_hits``) and generator. It then follows each chunk of the named document
-through those stages and reports the first one that left it out, and why: the key may not see
-it, a filter clause (the request's own, the time window's, or the inferred one applied) was
-false or unknown for it, a ranking placed it beyond depth, its fused rank was beyond the cut,
-the packer turned it away, or the answer did not cite it. Ranks beyond depth come from a second
-run of ``retrieve`` whose rankings are cut at the number of candidates, that is, not at all.
+Explain runs the request it is given as search, context or answer run it: the same check and
+retrieval (``answering.run_query``), the same packer (``answering.pack_hits``), and the same
+generator with the same support (``answering.support_for``). It then follows each chunk of the
+named document through those stages and reports the first one that left it out, and why: the key
+may not see it, a filter clause (the request's own, the time window's, or the inferred one
+applied) was false or unknown for it, a ranking placed it beyond depth, its fused rank was
+beyond the cut, the packer turned it away, or the answer did not cite it. Ranks beyond depth
+come from a second run of ``retrieve`` whose rankings are cut at the number of candidates, that
+is, not at all.
 
 A document the caller may not see is reported exactly like a missing one. An admin may ask as
 another key (``as_key``): that key's groups and collections then decide what is seen, and a
@@ -33,13 +34,12 @@ from service.index.collection_index import IndexSnapshot
 from service.packing.packer import PackedContext, PackOutcome, Passage, normalize_for_duplicates
 from service.retrieval.query import RetrievalResult, retrieve
 from service.retrieval.ranking import Ranking
-from service.usecases.answer_support import answer_support
-from service.usecases.answering import check_budget, pack_hits
+from service.usecases.answering import check_budget, pack_hits, run_query, support_for
 from service.usecases.callers import Caller, Role
 from service.usecases.inference import InferredFilter
 from service.usecases.keys import caller_named
 from service.usecases.runtime import Runtime
-from service.usecases.search import FilterParts, SearchOptions, check_limits, prepare_query
+from service.usecases.search import FilterParts, SearchOptions
 
 ExplainRoute = Literal["search", "context", "answer"]
 ClauseSource = Literal["filter", "time_window", "inferred_filter"]
@@ -161,29 +161,24 @@ class Explanation:
 def explain(
     runtime: Runtime, caller: Caller, collection: str, request: ExplainRequest
 ) -> Explanation:
-    caller.require(Role.READER)
     options = request.options
-    check_limits(options, runtime.settings, runtime.embedder.dimensions)
     if request.route != "search":
         check_budget(runtime, request.token_budget)
     subject = _subject(runtime, caller, request.as_key)
-    caller.require_collection(collection)
-    view = runtime.indexes.view(collection)
-    snapshot = view.snapshot
-    document_id, rows = _target(snapshot, caller, request)
     generator = runtime.generators.get(request.generator) if request.route == "answer" else None
-
-    using_chat = options.infer_filter.active and options.infer_filter.using == "chat-http"
-    prepared = prepare_query(
+    run = run_query(
+        runtime,
+        caller,
+        collection,
         options,
-        view,
-        runtime.embedder,
         subject.visible_groups,
         whole_ranking=request.route != "search",
-        proposer=runtime.generators.filter_proposer() if using_chat else None,
     )
+    snapshot = run.view.snapshot
+    document_id, rows = _target(snapshot, caller, request)
+    prepared = run.prepared
     query = prepared.retrieval
-    result = retrieve(snapshot, query)
+    result = run.result
     uncut = retrieve(snapshot, replace(query, depth=max(query.depth, result.candidates), keep=1))
     followed = _Followed(
         snapshot,
@@ -202,10 +197,7 @@ def explain(
         packed = pack_hits(runtime, snapshot, result.hits, request.token_budget, margin)
         if generator is not None:
             # Generated only once a chunk of the document is found in the context.
-            # With the same support the answer route hands its generator.
-            support = None
-            if options.query.strip():
-                support = answer_support(view, packed.passages, query.vector, query.filter)
+            support = support_for(run, options.query, packed.passages)
             answer = cache(partial(generator.generate, options.query, packed.passages, support))
 
     reads_collection = subject.collections is None or collection in subject.collections

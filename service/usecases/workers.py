@@ -8,6 +8,7 @@ bounded number of torch threads runs them, so a query keeps at least one core to
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import multiprocessing
 import os
@@ -15,7 +16,7 @@ import signal
 import threading
 from collections.abc import Callable
 from functools import partial
-from multiprocessing.synchronize import Event
+from multiprocessing.connection import Connection
 
 from service.config import Settings
 from service.embedding.base import Embedder
@@ -54,11 +55,13 @@ def work_from_store(
 def _local_worker_main(
     settings: Settings,
     make_embedder: Callable[[], Embedder],
-    stop: Event,
-    wake: Event,
+    signals: Connection,
     parent: int,
 ) -> None:
-    """The worker process's body: its share of the CPU, its own embedder, the store's jobs."""
+    """The worker process's body: its share of the CPU, its own embedder, the store's jobs.
+
+    ``signals`` is the read end of a pipe from the server: a message cuts an idle wait short,
+    and the server closing its end (or dying) stops the worker."""
     from service.logging_setup import configure_logging
 
     configure_logging(log_format=settings.log_format)
@@ -66,13 +69,19 @@ def _local_worker_main(
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     runtime = Runtime(settings, make_embedder())
     limit_torch_threads(worker_threads(settings.worker_torch_threads))
+    closed = threading.Event()
 
     def idle(seconds: float) -> None:
-        wake.wait(seconds)
-        wake.clear()
+        if not signals.poll(seconds):
+            return
+        try:
+            while signals.poll(0):
+                signals.recv_bytes()
+        except (EOFError, OSError):
+            closed.set()
 
     try:
-        work_from_store(runtime, stop=lambda: stop.is_set() or os.getppid() != parent, idle=idle)
+        work_from_store(runtime, stop=lambda: closed.is_set() or os.getppid() != parent, idle=idle)
     finally:
         runtime.close()
 
@@ -82,34 +91,44 @@ class LocalWorker(StoreQueue):
 
     ``make_embedder`` is called in the worker process (it must be picklable: a class, or a
     function of the settings), so the model is loaded there with the worker's thread limit.
+    The server reaches the worker through a one-way pipe whose writes never block: a process
+    that died leaves a broken pipe, which is ignored, where a shared event would hang
+    whoever set it next.
     """
 
     def __init__(self, settings: Settings, make_embedder: Callable[[], Embedder]) -> None:
         context = multiprocessing.get_context("spawn")
-        self._stop = context.Event()
-        self._wake_event = context.Event()
-        super().__init__(wake=self._wake_event.set)
+        self._reader, self._writer = context.Pipe(duplex=False)
+        os.set_blocking(self._writer.fileno(), False)
+        super().__init__(wake=self._wake)
         self._process = context.Process(
             target=_local_worker_main,
-            args=(settings, make_embedder, self._stop, self._wake_event, os.getpid()),
+            args=(settings, make_embedder, self._reader, os.getpid()),
             name="excerpta-worker",
             daemon=True,
         )
         self._lock = threading.Lock()
         self._started = False
 
+    def _wake(self) -> None:
+        # A full pipe already holds a wake-up, and a closed or broken one has no reader.
+        with contextlib.suppress(OSError):
+            self._writer.send_bytes(b"w")
+
     def start(self) -> None:
         with self._lock:
             if not self._started:
                 self._process.start()
+                # The worker holds the read end now; without this copy, its death breaks
+                # the pipe instead of leaving writes to fill it.
+                self._reader.close()
                 self._started = True
 
     def stop(self) -> None:
         with self._lock:
             if not self._started:
                 return
-            self._stop.set()
-            self._wake_event.set()
+            self._writer.close()
             self._process.join(STOP_SECONDS)
             if self._process.is_alive():
                 log.warning("the worker did not stop in %.0f s; ending it", STOP_SECONDS)

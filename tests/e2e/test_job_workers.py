@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+import signal
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -56,5 +58,35 @@ def test_a_servers_jobs_run_in_its_worker_process_and_their_writes_are_searchabl
             workers = {job["worker"] for job in jobs}
             assert len(workers) == 1
             assert not workers.pop().endswith(f":{server.process.pid}")
+    finally:
+        server.stop()
+
+
+def test_a_server_whose_worker_was_killed_still_takes_jobs_and_stops_at_once(
+    tmp_path: Path, make_runtime: Callable[..., Runtime], store_url: str
+) -> None:
+    # A worker killed while it waits for work (the out-of-memory killer, an operator) must
+    # leave nothing behind that blocks the server: not the next job's wake-up, not the stop.
+    data = tmp_path / "data"
+    key = make_key(make_runtime(data_dir=data, database_url=store_url), "admin", name="admin")
+    server = ServerProcess(data, store_url, test_job_workers="1", job_poll_ms="2000")
+    server.start()
+    try:
+        headers = {"Authorization": f"Bearer {key}"}
+        with httpx.Client(base_url=server.base_url, headers=headers, timeout=15) as client:
+            assert client.put(COLLECTION, json={}).status_code == 201
+            first = {"documents": [{"id": "note-1", "text": "brake pad wear"}]}
+            assert client.post(f"{COLLECTION}/documents", json=first).status_code == 200
+            (job,) = client.get("/v1/jobs", params={"collection": "notes"}).json()["jobs"]
+            worker_pid = int(job["worker"].rsplit(":", 1)[1])
+            time.sleep(0.5)  # the worker is back in its idle wait
+            os.kill(worker_pid, signal.SIGKILL)
+
+            later = {"documents": [{"id": "note-2", "text": "chain wear"}], "wait": False}
+            sent = client.post(f"{COLLECTION}/documents", json=later)
+            assert sent.status_code == 202, sent.text
+        started = time.monotonic()
+        assert server.terminate(timeout=20) == 0
+        assert time.monotonic() - started < 10, server.log()
     finally:
         server.stop()

@@ -35,7 +35,9 @@ _DIGIT_NUMBER = r"\d+(?:[.,]\d+)*"
 _NUMBER = re.compile(rf"(?<![\w-])(?!(?:19|20)\d\d\b)\d|\b(?:{_NUMBER_WORDS})\b", re.IGNORECASE)
 _DURATION = re.compile(
     rf"(?:{_DIGIT_NUMBER}|\b(?:{_NUMBER_WORDS}|a|an))[\s-]+(?:\w+[\s-]+)?{_TIME_UNITS}\b"
-    r"|\blifetime\b|\b(?:daily|weekly|monthly|yearly|annual|annually)\b",
+    r"|\blifetime\b|\b(?:daily|weekly|monthly|yearly|annual|annually)\b"
+    # An interval is also written as a distance or a count of uses: "every 300 km".
+    rf"|\bevery\s+(?:{_DIGIT_NUMBER}|(?:{_NUMBER_WORDS})\b)",
     re.IGNORECASE,
 )
 _MONEY = re.compile(
@@ -113,8 +115,40 @@ def answer_type(question: str) -> AnswerType:
     return "any"
 
 
-def holds_type(kind: AnswerType, text: str) -> bool:
-    """Whether ``text`` holds what a question of ``kind`` asks for."""
+# The numbers, codes and names a question gives: a span repeating them has not yet answered it.
+_GIVEN = re.compile(r"[\w.-]*\d[\w.-]*|(?<=\w[\s,;:(])[A-Z][\w-]+")
+
+
+def given_values(question: str) -> re.Pattern[str] | None:
+    """A pattern of the numbers, codes and names ``question`` itself gives ("75 kg", "E-21",
+    "Ridgeline"), or None when it gives none."""
+    values = {match.group(0).strip(".-") for match in _GIVEN.finditer(question)}
+    values.discard("")
+    if not values:
+        return None
+    alternatives = "|".join(re.escape(v) for v in sorted(values, key=len, reverse=True))
+    return re.compile(rf"(?<![\w-])(?:{alternatives})(?![\w-]|[.,]\d)")
+
+
+_COUNTED = re.compile(r"\bhow many\s+([\w-]+)", re.IGNORECASE)
+
+
+def counted_noun(question: str) -> str | None:
+    """What a "how many" question counts, by the word that follows it ("how many passengers",
+    "how many charge cycles"): a number answers it only beside that word, for "about 83,000
+    pounds" counts no passengers."""
+    found = _COUNTED.search(question)
+    if found is None or found.group(1).casefold() in QUESTION_WORDS:
+        return None
+    return found.group(1)
+
+
+def holds_type(kind: AnswerType, text: str, given: re.Pattern[str] | None = None) -> bool:
+    """Whether ``text`` holds what a question of ``kind`` asks for, beyond the values the
+    question gives (``given``, from ``given_values``): a span that only repeats the question's
+    "75 kg" or "Ridgeline" holds no answer."""
+    if given is not None:
+        text = given.sub(" ", text)
     if kind == "money":
         return bool(_MONEY.search(text))
     if kind == "duration":
@@ -141,12 +175,16 @@ def literal_entities(text: str) -> frozenset[Entity]:
 
 
 # Words that frame a question rather than say what it is about (common practice in question
-# answering: "wh-" words, auxiliaries, pronouns, and the measuring words of "how much/long").
+# answering: "wh-" words, auxiliaries, pronouns, and the measuring words of "how much/long"),
+# and the light verbs of English ("does it take", "should I run", "do they use"), which carry
+# the question's grammar while its nouns carry what it asks about.
 _QUESTION_WORD_TEXT = (
     "a about after an and any are as at be been before by can could did do does for from"
     " get had has have how i if in into is it its me much many my long often far of on or"
     " our should so than that the their them there these they this those to too up us was"
     " we were what when where which who whom whose why will with would you your"
+    " take takes took taken use uses used need needs run runs give gives make makes keep"
+    " keeps kept go goes put puts come comes got gets"
 )
 QUESTION_WORDS = frozenset(_QUESTION_WORD_TEXT.split())
 _QUESTION_WORD = re.compile(r"[\w'-]+")

@@ -94,10 +94,18 @@ def _window(snapshot: IndexSnapshot, passage: Passage) -> PassageWindow:
     after_end = min(last, passage.char_end + TEXT_AFTER)
     before = snapshot.document_span(passage.document_id, before_start, passage.char_start) or ""
     after = snapshot.document_span(passage.document_id, passage.char_end, after_end) or ""
-    if before_start > first:
-        # Start at a block (else a line), so a table read from here starts at its header.
-        cut = before.find("\n\n")
-        before = before[cut + 2 :] if cut >= 0 else before[before.find("\n") + 1 :]
+    # Only the blocks the passage begins and ends inside can widen a candidate (every candidate
+    # overlaps the passage and none crosses a blank line), so the window keeps no other block:
+    # it starts where the passage's first block starts (a table read from there starts at its
+    # header) and ends where its last block ends.
+    cut = before.rfind("\n\n")
+    if cut >= 0:
+        before = before[cut + 2 :]
+    elif before_start > first:
+        before = before[before.find("\n") + 1 :]
+    cut = after.find("\n\n")
+    if cut >= 0:
+        after = after[:cut]
     return PassageWindow(passage, before, after)
 
 

@@ -18,7 +18,7 @@ from service.errors import GeneratorUnavailable, InvalidRequest, LimitExceeded
 from service.generation.base import AnswerSupport, GeneratedAnswer, Generator, cited_sentences
 from service.index.collection_index import IndexSnapshot
 from service.index.view import IndexView
-from service.packing.citing import section_of_quote
+from service.packing.citing import section_at, section_of_quote
 from service.packing.packer import PackCandidate, PackedContext, Passage, pack_context
 from service.retrieval.query import Hit, RetrievalResult, retrieve
 from service.usecases.answer_support import answer_support
@@ -522,10 +522,16 @@ def _citations(
     view: IndexView, packed: PackedContext, generated: GeneratedAnswer
 ) -> tuple[CitationView, ...]:
     """Citations of the markers used, each document's source and attributes as of the snapshot
-    the passages came from, and the section the first sentence citing it lies in."""
+    the passages came from, and the section its first quote lies in: for a generator that
+    reports the spans it quoted, where that span starts in the document (exact, also for a
+    table row quoted with its header or a sentence widened past the passage); otherwise where
+    the first sentence citing it is found in the passage's words."""
     by_marker = {p.marker: p for p in packed.passages}
     used = [by_marker[m] for m in sorted(set(generated.markers_used)) if m in by_marker]
     quotes = cited_sentences(generated.answer or "")
+    first_quoted: dict[int, int] = {}
+    for span in generated.quoted:  # in the answer's order
+        first_quoted.setdefault(span.marker, span.start)
     snapshot = view.snapshot
     cited = view.facts.cite_attributes
     citations = []
@@ -537,7 +543,11 @@ def _citations(
                 marker=passage.marker,
                 document_id=passage.document_id,
                 title=passage.title,
-                section=section_of_quote(passage, quotes.get(passage.marker, ("",))[0]),
+                section=(
+                    section_at(passage, first_quoted[passage.marker])
+                    if passage.marker in first_quoted
+                    else section_of_quote(passage, quotes.get(passage.marker, ("",))[0])
+                ),
                 chunk_ids=passage.chunk_ids,
                 source_url=snapshot.source_url(passage.document_id),
                 attributes={

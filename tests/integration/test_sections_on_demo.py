@@ -25,6 +25,8 @@ pytestmark = pytest.mark.model
 # passage's nearest section instead of the one they come from. The goal is 0.95.
 REQUIRED_SECTION_ACCURACY = 0.9
 _WORD = re.compile(r"\w+")
+# One "Header: cell" part of a table row quoted with its header, up to the next "; " or the end.
+_LABELLED_CELL = re.compile(r"(?:^|; )[^:;]+: ([^;]+?)(?=; |\.?$)")
 
 
 def demo_document(api: Api, document_id: str) -> dict[str, Any]:
@@ -52,12 +54,20 @@ def test_plain_text_manuals_take_their_upper_case_headings_as_sections(demo_api:
     assert "TRANSFER TO A NEW OWNER" in sections
 
 
+def quoted_words(sentence: str) -> list[str]:
+    """The words a quote shares with its document: a table row is quoted with its header
+    ("Code: E-14; Meaning: ..."), and only its cells' words stand in the row."""
+    cells = _LABELLED_CELL.findall(sentence)
+    text = " ".join(cells) if len(cells) >= 2 else sentence
+    return [word.casefold() for word in _WORD.findall(text)]
+
+
 def section_holding(document: dict[str, Any], sentence: str) -> str | None:
     """The section of the last stored chunk starting at or before ``sentence`` in the
     document's text, the sentence compared word by word (chunks never straddle a heading)."""
     words = list(_WORD.finditer(document["text"]))
     folded = [word.group(0).casefold() for word in words]
-    wanted = [word.casefold() for word in _WORD.findall(sentence)]
+    wanted = quoted_words(sentence)
     for index in range(len(folded) - len(wanted) + 1):
         if wanted and folded[index : index + len(wanted)] == wanted:
             offset = words[index].start()

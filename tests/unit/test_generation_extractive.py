@@ -101,7 +101,7 @@ def test_the_answer_is_the_best_span_ending_with_its_marker():
     assert answer.decision.startswith("answered: the best span scored")
 
 
-def test_quoted_spans_keep_passage_order_then_text_order_whatever_their_scores():
+def test_quoted_spans_keep_passage_order_whatever_their_scores():
     answer = generator(evidence_threshold=0.1, keep_ratio=0.0).generate(
         "brake pads wear in rain and warranty years", PASSAGES
     )

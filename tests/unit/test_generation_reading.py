@@ -8,6 +8,7 @@ from service.generation.reading import (
     Entity,
     answer_type,
     conflicting,
+    given_values,
     holds_type,
     literal_entities,
 )
@@ -39,6 +40,16 @@ def test_spans_hold_a_type_only_when_they_say_it() -> None:
     assert not holds_type("money", "it costs 40 percent less")
     assert holds_type("count", "six batteries came out")
     assert holds_type("name", "The pads are TW-S4 finned sintered.")
+
+
+def test_values_the_question_gives_do_not_count_as_its_answer() -> None:
+    given = given_values("What front tyre pressure is recommended for a 75 kg rider?")
+    assert not holds_type("quantity", "For a 75 kg rider on mixed gravel.", given)
+    assert holds_type("quantity", "For a 75 kg rider, use 4.6 bar.", given)
+    named = given_values("Which battery does the Ridgeline 2024 use?")
+    assert not holds_type("name", "Register your new Ridgeline 2024 online.", named)
+    assert holds_type("name", "The Ridgeline 2024 takes the TW-B2 battery.", named)
+    assert given_values("how long is the warranty?") is None
 
 
 def test_years_and_codes_are_entities_with_codes_grouped_by_their_letters() -> None:

@@ -29,6 +29,7 @@ from service.generation.base import (
 from service.generation.reading import (
     CODE_KIND_PREFIX,
     HARD_TYPES,
+    YEAR_KIND,
     Entity,
     answer_type,
     conflicting,
@@ -184,6 +185,15 @@ class ExtractiveGenerator:
         counted_terms = set(tokens(counted)) if counted else set()
         asked = find(question)
         wanted = asked | support.filter_entities
+        # A span's entities matter only for the kinds asked about or pinned by the filter (the
+        # rules and the penalty read no others); the collection's names are looked for in each
+        # span only when one of those kinds is a name, which is most of the reading's time.
+        if not wanted:
+            read_span: Callable[[str], frozenset[Entity]] = _no_entities
+        elif all(e.kind == YEAR_KIND or e.kind.startswith(CODE_KIND_PREFIX) for e in wanted):
+            read_span = literal_entities
+        else:
+            read_span = find
         asked_kinds = sorted({entity.kind for entity in asked})
         # The words naming the asked model, year or region are checked by the rules below; the
         # lexical part measures whether a span speaks of what is asked about them. A code ("E-21")
@@ -237,7 +247,7 @@ class ExtractiveGenerator:
                         )
                     )
                     continue
-                named = find(text)
+                named = read_span(text)
                 context = named | heading_entities | document
                 notes: list[str] = []
                 for missing in asked_kinds:
@@ -407,6 +417,10 @@ def _entity_reader(support: AnswerSupport) -> Callable[[str], frozenset[Entity]]
         return literal_entities(text) | finder(text)
 
     return read
+
+
+def _no_entities(_text: str) -> frozenset[Entity]:
+    return frozenset()
 
 
 def _unknown_names(question: str, support: AnswerSupport) -> list[str]:

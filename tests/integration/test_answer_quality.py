@@ -6,9 +6,10 @@ the threshold was fitted on them. The Cranfield questions
 15 the collection cannot answer, and were never used to tune anything: they show how the
 answerer does on documents the project did not write.
 
-The floors are the measured figures (README, "Measuring answer quality"), so a change that
-answers worse fails here; decline recall is still below the goal of 0.90 on the demo and 0.80
-on Cranfield.
+The floors are the goals, which the measured figures meet (README, "Measuring answer
+quality"): on the demo answer accuracy, decline precision and decline recall at least 0.90 and
+citation section accuracy at least 0.95; on Cranfield answer accuracy at least 0.70 and decline
+precision and recall at least 0.80.
 """
 
 from __future__ import annotations
@@ -71,7 +72,8 @@ def test_the_demo_questions_are_answered_right_and_declined_right(
     result = measured(demo.runtime, DEMO_COLLECTION, DEMO_CORPUS / "answer_questions.jsonl")
     assert mean(result, "answer_accuracy") >= 0.90
     assert mean(result, "decline_precision") >= 0.90
-    assert mean(result, "decline_recall") >= 0.80
+    assert mean(result, "decline_recall") >= 0.90
+    assert mean(result, "section_accuracy") >= 0.95
 
 
 def test_questions_on_cranfield_abstracts_are_answered_right_and_declined_right(
@@ -86,7 +88,7 @@ def test_questions_on_cranfield_abstracts_are_answered_right_and_declined_right(
     result = measured(cranfield_runtime, CRANFIELD_COLLECTION, CRANFIELD_QUESTIONS)
     assert mean(result, "answer_accuracy") >= 0.70
     assert mean(result, "decline_precision") >= 0.80
-    assert mean(result, "decline_recall") >= 0.70
+    assert mean(result, "decline_recall") >= 0.80
 
 
 def ask(api: Api, question: str, filter_text: str | None = None) -> dict[str, Any]:
@@ -134,6 +136,21 @@ def test_a_question_about_one_model_under_a_filter_for_another_is_declined(
     result = ask(demo_api, "What tyre pressure should I run on my Ridgeline?", "model = 'Larkspur'")
     assert result["answer"] is None
     assert result["reason"] == "insufficient_evidence"
+
+
+def test_a_question_on_a_part_the_filtered_model_lacks_is_declined(demo_api: Api) -> None:
+    # The Larkspur is a gravel bike with a rigid fork: its manual's only sentence naming the
+    # fork speaks of crash damage, which is no answer to a question on its travel.
+    result = ask(
+        demo_api,
+        "How much fork travel does the Larkspur have?",
+        "model = 'Larkspur' AND model_year = 2023 AND doc_type = 'manual'",
+    )
+    assert result["answer"] is None
+    trace = demo_api.get(f"/v1/traces/{result['trace_id']}").json()
+    generation = next(s for s in trace["stages"] if s["stage"] == "generation")
+    assert generation["decision"].startswith("declined")
+    assert generation["candidates"][0]["lexical"] < 0.36
 
 
 def test_an_answer_trace_shows_each_part_of_the_winning_spans_score(demo_api: Api) -> None:

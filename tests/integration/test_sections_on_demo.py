@@ -20,10 +20,7 @@ from tests.integration.conftest import DEMO_COLLECTION, DEMO_CORPUS
 
 pytestmark = pytest.mark.model
 
-# The floor is the figure measured with the span-reading answerer (33 of 36): three of its
-# quotes are widened past their passage by the document's own text, and are placed in the
-# passage's nearest section instead of the one they come from. The goal is 0.95.
-REQUIRED_SECTION_ACCURACY = 0.9
+REQUIRED_SECTION_ACCURACY = 0.95
 _WORD = re.compile(r"\w+")
 # One "Header: cell" part of a table row quoted with its header, up to the next "; " or the end.
 _LABELLED_CELL = re.compile(r"(?:^|; )[^:;]+: ([^;]+?)(?=; |\.?$)")

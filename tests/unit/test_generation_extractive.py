@@ -311,3 +311,36 @@ def test_a_question_naming_a_word_the_collection_never_holds_is_declined():
     )
     assert answer.answer is None
     assert answer.decision == "declined: the collection never mentions Canada"
+
+
+def test_a_best_span_weak_on_both_words_and_meaning_is_declined():
+    question = "What torque does the main pivot bolt take?"
+    text = "Stem bolts: Torque 6 Nm"
+    weights = {"main": 3.0, "pivot": 3.0, "torque": 1.0, "bolt": 1.0}
+    far = AnswerSupport(
+        term_weight=lambda term: weights.get(term, 1.0),
+        query_vector=embed(question),
+        chunk_vectors={1: (ChunkVector(0, len(text), embed("rain and mud")),)},
+    )
+    declined = generator(evidence_threshold=0.0).generate(question, [passage(1, text)], far)
+    assert declined.answer is None
+    assert declined.considered[0].lexical == pytest.approx(2 / 8)
+    assert "below 0.36" in declined.decision and "below 0.5" in declined.decision
+    # The same words from a chunk that means what the question asks are evidence.
+    near = AnswerSupport(
+        term_weight=far.term_weight,
+        query_vector=far.query_vector,
+        chunk_vectors={1: (ChunkVector(0, len(text), embed(question)),)},
+    )
+    answered = generator(evidence_threshold=0.0).generate(question, [passage(1, text)], near)
+    assert answered.answer == "Stem bolts: Torque 6 Nm. [1]"
+
+
+def test_a_count_is_answered_only_by_a_number_of_the_counted_thing():
+    question = "How many passengers can the bomber carry?"
+    weights = passage(1, "The bomber flew at 30,000 feet with a gross weight of 83,000 pounds.")
+    answer = generator(evidence_threshold=0.0).generate(question, [weights])
+    assert answer.answer is None
+    assert "holds no count" in answer.decision
+    seats = passage(1, "The bomber carries 12 passengers.")
+    assert generator(evidence_threshold=0.0).generate(question, [seats]).answer is not None

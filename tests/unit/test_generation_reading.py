@@ -8,6 +8,7 @@ from service.generation.reading import (
     Entity,
     answer_type,
     conflicting,
+    counted_noun,
     given_values,
     holds_type,
     literal_entities,
@@ -40,6 +41,15 @@ def test_spans_hold_a_type_only_when_they_say_it() -> None:
     assert not holds_type("money", "it costs 40 percent less")
     assert holds_type("count", "six batteries came out")
     assert holds_type("name", "The pads are TW-S4 finned sintered.")
+    assert holds_type("duration", "Check the pads every 300 km.")
+    assert not holds_type("duration", "Check the pads every ride.")
+
+
+def test_a_how_many_question_counts_the_word_that_follows() -> None:
+    assert counted_noun("How many passengers can the bomber carry?") == "passengers"
+    assert counted_noun("How many charge cycles does it cover?") == "charge"
+    assert counted_noun("How many of them are left?") is None
+    assert counted_noun("How long is the warranty?") is None
 
 
 def test_values_the_question_gives_do_not_count_as_its_answer() -> None:

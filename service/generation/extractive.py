@@ -136,10 +136,9 @@ class ExtractiveGenerator:
     The answerer declines with ``insufficient_evidence`` when the best span scores below
     ``evidence_threshold``, or when it repeats less than ``min_lexical`` of the question's
     weighted terms and its chunk is less similar than ``min_semantic``; otherwise it quotes the
-    spans scoring at
-    least ``max(evidence_threshold, keep_ratio * best)`` that do not overlap a better one, at
-    most ``max_sentences``, in passage order and each passage's best first, each ending in its
-    marker.
+    spans scoring at least ``max(evidence_threshold, keep_ratio * best)`` that do not overlap a
+    better one, at most ``max_sentences``, in passage order and each passage's best first, each
+    ending in its marker.
     Passages without stored chunk vectors in the support (a caller outside the answer route)
     are embedded whole, once each.
     """

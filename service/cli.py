@@ -239,8 +239,9 @@ class JobProgress:
         self.rejected_file(origin, named + reason)
 
     def documents_done(self, count: int) -> None:
-        if count:
-            self.bar.update(count)
+        # One step per document, so every count is drawn even when a read finds several.
+        for _ in range(count):
+            self.bar.update(1)
 
     def chunks_done(self, chunks: int) -> None:
         elapsed = max(time.perf_counter() - self._started, 1e-9)

@@ -7,12 +7,10 @@ import io
 import json
 import re
 import threading
-import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import httpx
-import numpy as np
 import pytest
 
 from service.cli import ingest_to_server, main
@@ -21,27 +19,16 @@ from service.usecases.job_queues import StoreQueue
 from service.usecases.runtime import Runtime
 from service.usecases.workers import work_from_store
 from tests.api_helpers import make_key
-from tests.hashing_embedder import HashingTestEmbedder
 from tests.served import server_in_thread
 
 SCHEMA = {"attributes": {"shop": {"type": "keyword"}}}
-
-
-class SlowEmbedder(HashingTestEmbedder):
-    """Takes a tenth of a second a batch, so a follower reading every 10 ms sees each one."""
-
-    def embed_documents(self, texts: Sequence[str]) -> np.ndarray:
-        time.sleep(0.1)
-        return super().embed_documents(texts)
 
 
 @pytest.fixture
 def served(make_runtime: Callable[..., Runtime]) -> Iterator[tuple[str, Runtime]]:
     """A server whose jobs wait in the store for a worker thread, as a worker process would
     take them, one document per batch."""
-    runtime = make_runtime(
-        embedder=SlowEmbedder(), jobs=StoreQueue(), job_batch_documents=1, job_poll_ms=20
-    )
+    runtime = make_runtime(jobs=StoreQueue(), job_batch_documents=1, job_poll_ms=20)
     stop = threading.Event()
     worker = threading.Thread(
         target=work_from_store,
@@ -93,7 +80,6 @@ def test_ingest_to_a_server_sends_jobs_moves_per_document_and_names_each_rejecte
     positions = [int(n) for n in re.findall(r"\| *(\d+)/7 \[", drawn)]
     assert positions[0] == 0 and positions[-1] == 7
     assert positions == sorted(positions)
-    # One document a batch on the server: the bar passes through every count on its way.
     assert set(range(8)) <= set(positions), positions
     assert "chunks_per_s=" in drawn
     assert re.search(r"notes\.jsonl:2: document 'bad-note': Attribute 'colour'", drawn), drawn

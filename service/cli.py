@@ -435,7 +435,7 @@ def _follow_remote_jobs(
 def _job_line(job: Any) -> str:
     counts = job.counts
     return (
-        f"{job.id}  {job.state:<9} {job.collection:<20} {job.key:<16} "
+        f"{job.id}  {job.kind:<7} {job.state:<9} {job.collection:<20} {job.key:<16} "
         f"{counts.documents_done}/{counts.documents} documents, {counts.chunks} chunks "
         f"({counts.embedded} embedded, {counts.cached} cached)  {job.created_at:%Y-%m-%d %H:%M:%S}"
     )

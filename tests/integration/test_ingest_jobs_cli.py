@@ -86,7 +86,7 @@ def test_jobs_command_lists_shows_and_refuses_to_cancel_a_finished_job(
 
     assert main(["jobs", "list", "--data-dir", str(data), "--state", "done"]) == 0
     listed = capsys.readouterr().out
-    assert job.id in listed and "5/5 documents" in listed
+    assert job.id in listed and "upsert" in listed and "5/5 documents" in listed
 
     assert main(["jobs", "show", job.id, "--data-dir", str(data), "--json"]) == 0
     shown = json.loads(capsys.readouterr().out)

@@ -57,9 +57,10 @@ from service.usecases.runtime import Runtime, embedder_on_first_use
 
 INGEST_COLLECTION = "ingest"
 # Documents per job the feeder sends, and per batch (one write transaction) of the server's
-# worker: small batches let an idle window begin soon after the feeder pauses.
+# worker: one document a batch lets an idle window begin soon after the feeder pauses, and the
+# chunks stored in a window are counted to the document.
 FEED_JOB_DOCUMENTS = 16
-FEED_BATCH_DOCUMENTS = 4
+FEED_BATCH_DOCUMENTS = 1
 FEED_JOBS_AHEAD = 2
 FEED_POLL_SECONDS = 0.2
 WARM_UP_TIMEOUT_SECONDS = 300.0

@@ -82,6 +82,8 @@ def test_ingest_to_a_server_sends_jobs_moves_per_document_and_names_each_rejecte
     assert positions == sorted(positions)
     assert set(range(8)) <= set(positions), positions
     assert "chunks_per_s=" in drawn
+    # Each update shows the time spent and the time left (tqdm's "elapsed<remaining").
+    assert re.search(r"\| *3/7 \[\d\d:\d\d<\d\d:\d\d", drawn), drawn
     assert re.search(r"notes\.jsonl:2: document 'bad-note': Attribute 'colour'", drawn), drawn
     assert re.search(r"notes\.jsonl:5: The line is not valid JSON", drawn), drawn
 

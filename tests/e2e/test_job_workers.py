@@ -118,6 +118,10 @@ def test_a_servers_rechunking_runs_in_its_worker_process_as_a_job(
             assert (job["kind"], job["state"]) == ("rechunk", "done"), job
             assert server.process is not None
             assert not job["worker"].endswith(f":{server.process.pid}")
+            # The worker yields the CPU to the server's queries (EXCERPTA_WORKER_NICE, 10).
+            worker_pid = int(job["worker"].rsplit(":", 1)[1])
+            served_at = os.getpriority(os.PRIO_PROCESS, server.process.pid)
+            assert os.getpriority(os.PRIO_PROCESS, worker_pid) == min(19, served_at + 10)
             after = client.get(COLLECTION).json()
             assert after["chunks"] > before and after["chunking"]["max_tokens"] == 16
     finally:

@@ -358,7 +358,6 @@ def ingest_to_server(
     document by document. A batch the server refuses for some of its documents is sent again
     without them, each printed with its reason; Ctrl-C cancels the jobs not yet done.
     Returns (documents written, failed)."""
-    from service.ingest.remote_jobs import DocumentsRefused
     from service.ingest.source_files import read_source
 
     if schema_file is not None:
@@ -375,20 +374,7 @@ def ingest_to_server(
     sent: list[tuple[str, list[str]]] = []  # job id, the origin of each of its documents
     try:
         for start in range(0, len(documents), job_documents):
-            batch = documents[start : start + job_documents]
-            while batch:
-                try:
-                    job_id = remote.submit(collection, [document for _, document in batch])
-                except DocumentsRefused as refused:
-                    for problem in refused.documents:
-                        shown.rejected_document(
-                            batch[problem.index][0], problem.id, problem.message
-                        )
-                    bad = {problem.index for problem in refused.documents}
-                    batch = [entry for place, entry in enumerate(batch) if place not in bad]
-                    continue
-                sent.append((job_id, [origin for origin, _ in batch]))
-                break
+            _send_batch(remote, collection, documents[start : start + job_documents], shown, sent)
         written = _follow_remote_jobs(remote, sent, shown, pause)
     except KeyboardInterrupt:
         for job_id, _ in sent:
@@ -398,6 +384,40 @@ def ingest_to_server(
     finally:
         bar.close()
     return written, shown.failures
+
+
+def _send_batch(
+    remote: Any,
+    collection: str,
+    batch: list[tuple[str, dict[str, Any]]],
+    shown: JobProgress,
+    sent: list[tuple[str, list[str]]],
+) -> None:
+    """Send (origin, document) pairs as one job; the documents the server refuses are shown
+    and the rest sent again, and a batch past one of its limits is sent in halves, so only a
+    document that is itself too large is refused."""
+    from service.ingest.remote_jobs import BatchTooLarge, DocumentsRefused
+
+    while batch:
+        try:
+            job_id = remote.submit(collection, [document for _, document in batch])
+        except DocumentsRefused as refused:
+            for problem in refused.documents:
+                shown.rejected_document(batch[problem.index][0], problem.id, problem.message)
+            bad = {problem.index for problem in refused.documents}
+            batch = [entry for place, entry in enumerate(batch) if place not in bad]
+            continue
+        except BatchTooLarge as too_large:
+            if len(batch) == 1:
+                origin, document = batch[0]
+                shown.rejected_document(origin, document.get("id"), str(too_large))
+                return
+            middle = len(batch) // 2
+            _send_batch(remote, collection, batch[:middle], shown, sent)
+            _send_batch(remote, collection, batch[middle:], shown, sent)
+            return
+        sent.append((job_id, [origin for origin, _ in batch]))
+        return
 
 
 def _follow_remote_jobs(

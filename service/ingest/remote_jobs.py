@@ -38,6 +38,11 @@ class DocumentsRefused(Exception):
         self.documents = tuple(documents)
 
 
+class BatchTooLarge(Exception):
+    """The server refused a batch for one of its limits (size of the body, of the batch or of
+    a text); the message is the server's."""
+
+
 @dataclass(frozen=True)
 class RemoteJob:
     """A job as the server reports it: its state, how far it got, and what it refused."""
@@ -73,16 +78,19 @@ class RemoteJobs:
 
     def submit(self, collection: str, documents: Sequence[Mapping[str, Any]]) -> str:
         """Record a job writing ``documents``; its id. A batch with an invalid document is
-        refused whole (``DocumentsRefused`` names each)."""
+        refused whole (``DocumentsRefused`` names each), as is one past a limit
+        (``BatchTooLarge``)."""
         response = self._request(
             "POST",
             f"/v1/collections/{collection}/documents",
             json={"documents": list(documents), "wait": False},
         )
-        if response.status_code == 422:
+        if response.status_code in (413, 422):
             error = response.json().get("error", {})
             if error.get("code") == "invalid_documents":
                 raise DocumentsRefused([_refused(problem) for problem in error["documents"]])
+            if error.get("code") in ("payload_too_large", "limit_exceeded"):
+                raise BatchTooLarge(str(error.get("message")))
         if response.status_code != 202:
             raise ServerRefused(_refusal(response))
         return str(response.json()["job_id"])

@@ -8,6 +8,7 @@ import json
 import re
 import threading
 from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
@@ -24,11 +25,10 @@ from tests.served import server_in_thread
 SCHEMA = {"attributes": {"shop": {"type": "keyword"}}}
 
 
-@pytest.fixture
-def served(make_runtime: Callable[..., Runtime]) -> Iterator[tuple[str, Runtime]]:
-    """A server whose jobs wait in the store for a worker thread, as a worker process would
-    take them, one document per batch."""
-    runtime = make_runtime(jobs=StoreQueue(), job_batch_documents=1, job_poll_ms=20)
+@contextmanager
+def serving(runtime: Runtime) -> Iterator[str]:
+    """The runtime served, its jobs taken from the store by a worker thread, as a worker
+    process would take them."""
     stop = threading.Event()
     worker = threading.Thread(
         target=work_from_store,
@@ -39,10 +39,18 @@ def served(make_runtime: Callable[..., Runtime]) -> Iterator[tuple[str, Runtime]
     worker.start()
     try:
         with server_in_thread(runtime) as url:
-            yield url, runtime
+            yield url
     finally:
         stop.set()
         worker.join(30)
+
+
+@pytest.fixture
+def served(make_runtime: Callable[..., Runtime]) -> Iterator[tuple[str, Runtime]]:
+    """A server whose worker writes one document per batch."""
+    runtime = make_runtime(jobs=StoreQueue(), job_batch_documents=1, job_poll_ms=20)
+    with serving(runtime) as url:
+        yield url, runtime
 
 
 def write_source(folder: Path) -> tuple[Path, Path]:
@@ -115,6 +123,31 @@ def test_ingest_command_with_url_stores_nothing_twice_and_exits_1_for_rejected_f
     assert main([*argv, "--batch-size", "2"]) == 2
     assert main(["ingest", "notes", str(source), "--url", url, "--key", "not-a-key"]) == 1
     assert "401" in capsys.readouterr().err
+
+
+def test_a_batch_past_a_server_limit_is_sent_in_halves_until_only_the_large_document_is_refused(
+    tmp_path: Path, make_runtime: Callable[..., Runtime]
+) -> None:
+    runtime = make_runtime(jobs=StoreQueue(), job_poll_ms=20, max_document_text_bytes=400)
+    key = make_key(runtime, "admin", name="admin")
+    notes = [{"id": f"note-{n}", "text": f"brake bleed note {n}"} for n in range(4)]
+    notes.insert(2, {"id": "long-note", "text": "bleed the brake " * 40})
+    source = tmp_path / "notes.jsonl"
+    source.write_text("\n".join(json.dumps(note) for note in notes) + "\n", encoding="utf-8")
+    shown: list[str] = []
+    with serving(runtime) as url:
+        remote = RemoteJobs(url, key)
+        try:
+            remote.put_collection("notes", {})
+            written, failed = ingest_to_server(
+                remote, "notes", source, schema_file=None, progress=False, report=shown.append
+            )
+        finally:
+            remote.close()
+    assert (written, failed) == (4, 1)
+    [refusal] = shown
+    assert refusal.startswith("notes.jsonl:3: document 'long-note': ")
+    assert refusal.endswith("A document's text may hold at most 400 bytes.")
 
 
 def test_a_refusal_of_the_server_is_reported_in_one_sentence(tmp_path: Path) -> None:

@@ -154,6 +154,7 @@ def ingest_path(
             vectors=raw.get("vectors"),
         )
         collections_usecase.put_collection(runtime, LOCAL_ADMIN, collection, spec)
+        _run_rechunking(runtime, collection, report)
 
     items = list(read_source(path))
     bar, emit = _progress_bar(len(items), progress, report, bar_output)
@@ -215,6 +216,19 @@ def _progress_bar(
             report(line)
 
     return bar, emit
+
+
+def _run_rechunking(runtime: Any, collection: str, report: Callable[[str], None]) -> None:
+    """A changed chunking's job, run here before the documents are written (so they are chunked
+    once, the new way), unless a worker on the same store has taken it already."""
+    from service.store.job_rows import RECHUNK
+    from service.usecases import jobs
+    from service.usecases.callers import LOCAL_ADMIN
+
+    for job in jobs.list_jobs(runtime, LOCAL_ADMIN, collection=collection, state="queued"):
+        if job.kind == RECHUNK:
+            report(f"re-chunking the {job.counts.documents} documents of {collection!r} first")
+            jobs.run_job(runtime, job.id, worker=jobs.worker_name())
 
 
 class JobProgress:

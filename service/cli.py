@@ -24,6 +24,9 @@ from service.config import Settings
 from service.errors import ServiceError
 
 DEMO_COLLECTION = "bikes"
+DEFAULT_INGEST_BATCH = 4
+# Documents per job sent to a server: well under its batch and body limits for ordinary files.
+SERVER_JOB_DOCUMENTS = 100
 
 
 def _settings(args: argparse.Namespace, **fixed: Any) -> Settings:
@@ -133,8 +136,6 @@ def ingest_path(
     invalid document with its reason, and leaves what it wrote in place when interrupted, so a
     second run embeds only what the first did not store. Returns (documents written, failed).
     """
-    from tqdm import tqdm
-
     from service.ingest.source_files import read_source
     from service.usecases import collections as collections_usecase
     from service.usecases import jobs
@@ -153,26 +154,10 @@ def ingest_path(
             vectors=raw.get("vectors"),
         )
         collections_usecase.put_collection(runtime, LOCAL_ADMIN, collection, spec)
+        _run_rechunking(runtime, collection, report)
 
     items = list(read_source(path))
-    output = bar_output or sys.stderr
-    bar = tqdm(
-        total=len(items),
-        unit="doc",
-        disable=not progress,
-        file=output,
-        # Every update drawn when the bar goes somewhere other than a terminal (a test reads it).
-        mininterval=0 if bar_output is not None else 0.1,
-        miniters=1 if bar_output is not None else None,
-    )
-
-    def emit(line: str) -> None:
-        # Through the bar when it is shown, so a report never lands inside its line.
-        if progress:
-            bar.write(line, file=output)
-        else:
-            report(line)
-
+    bar, emit = _progress_bar(len(items), progress, report, bar_output)
     shown = JobProgress(bar, emit)
     documents: list[dict[str, Any]] = []
     origins: list[str] = []
@@ -205,6 +190,47 @@ def ingest_path(
     return written, shown.failures
 
 
+def _progress_bar(
+    total: int, progress: bool, report: Callable[[str], None], bar_output: Any
+) -> tuple[Any, Callable[[str], None]]:
+    """A bar of ``total`` documents (with its rate and time left), and how to print a line
+    beside it."""
+    from tqdm import tqdm
+
+    output = bar_output or sys.stderr
+    bar = tqdm(
+        total=total,
+        unit="doc",
+        disable=not progress,
+        file=output,
+        # Every update drawn when the bar goes somewhere other than a terminal (a test reads it).
+        mininterval=0 if bar_output is not None else 0.1,
+        miniters=1 if bar_output is not None else None,
+    )
+
+    def emit(line: str) -> None:
+        # Through the bar when it is shown, so a report never lands inside its line.
+        if progress:
+            bar.write(line, file=output)
+        else:
+            report(line)
+
+    return bar, emit
+
+
+def _run_rechunking(runtime: Any, collection: str, report: Callable[[str], None]) -> None:
+    """A changed chunking's job, run here before the documents are written (so they are chunked
+    once, the new way), unless a worker on the same store has taken it already."""
+    from service.store.job_rows import RECHUNK
+    from service.usecases import jobs
+    from service.usecases.callers import LOCAL_ADMIN
+
+    for job in jobs.list_jobs(runtime, LOCAL_ADMIN, collection=collection, state="queued"):
+        if job.kind == RECHUNK:
+            report(f"re-chunking the {job.counts.documents} documents of {collection!r} first")
+            jobs.run_job(runtime, job.id, worker=jobs.worker_name())
+
+
 class JobProgress:
     """A job's documents on a progress bar as they are written, with chunks per second; each
     rejected file or document is printed with its reason."""
@@ -222,20 +248,28 @@ class JobProgress:
         self.failures += 1
         self.bar.update(1)
 
-    def show(self, job: Any) -> None:
-        for _ in job.results[self._results :]:
+    def rejected_document(self, origin: str, document_id: str | None, reason: str) -> None:
+        named = f"document {document_id!r}: " if document_id else ""
+        self.rejected_file(origin, named + reason)
+
+    def documents_done(self, count: int) -> None:
+        # One step per document, so every count is drawn even when a read finds several.
+        for _ in range(count):
             self.bar.update(1)
+
+    def chunks_done(self, chunks: int) -> None:
+        elapsed = max(time.perf_counter() - self._started, 1e-9)
+        self.bar.set_postfix(chunks=chunks, chunks_per_s=f"{chunks / elapsed:.1f}")
+
+    def show(self, job: Any) -> None:
+        self.documents_done(len(job.results) - self._results)
         self._results = len(job.results)
         for problem in job.errors[self._errors :]:
-            named = f"document {problem['id']!r}: " if problem.get("id") else ""
-            self.rejected_file(
-                problem.get("origin", f"#{problem['index']}"), named + problem["message"]
+            self.rejected_document(
+                problem.get("origin", f"#{problem['index']}"), problem.get("id"), problem["message"]
             )
         self._errors = len(job.errors)
-        elapsed = max(time.perf_counter() - self._started, 1e-9)
-        self.bar.set_postfix(
-            chunks=job.counts.chunks, chunks_per_s=f"{job.counts.chunks / elapsed:.1f}"
-        )
+        self.chunks_done(job.counts.chunks)
 
 
 def follow_job(runtime: Any, job_id: str, shown: JobProgress, *, pause: float = 0.2) -> Any:
@@ -270,6 +304,8 @@ def follow_job(runtime: Any, job_id: str, shown: JobProgress, *, pause: float = 
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
+    if args.url:
+        return _ingest_to_server(args)
     from service.usecases.job_queues import StoreQueue
 
     # The job goes to the store; this process runs it (see ``follow_job``).
@@ -280,7 +316,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             args.collection,
             Path(args.path),
             schema_file=Path(args.schema) if args.schema else None,
-            batch_size=args.batch_size,
+            batch_size=args.batch_size or DEFAULT_INGEST_BATCH,
             report=lambda line: print(line, file=sys.stderr),
         )
     except KeyboardInterrupt:
@@ -291,13 +327,149 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     return 1 if failures else 0
 
 
+def _ingest_to_server(args: argparse.Namespace) -> int:
+    from service.ingest.remote_jobs import RemoteJobs, ServerRefused
+
+    if args.batch_size is not None:
+        print(
+            "error: --batch-size works on the store; a server writes its own batches",
+            file=sys.stderr,
+        )
+        return 2
+    remote = RemoteJobs(args.url, args.key or os.environ.get("EXCERPTA_KEY"))
+    try:
+        written, failures = ingest_to_server(
+            remote,
+            args.collection,
+            Path(args.path),
+            schema_file=Path(args.schema) if args.schema else None,
+            report=lambda line: print(line, file=sys.stderr),
+        )
+    except ServerRefused as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+    finally:
+        remote.close()
+    print(f"{written} documents written, {failures} failed")
+    return 1 if failures else 0
+
+
+def ingest_to_server(
+    remote: Any,
+    collection: str,
+    path: Path,
+    *,
+    schema_file: Path | None,
+    job_documents: int = SERVER_JOB_DOCUMENTS,
+    progress: bool = True,
+    report: Callable[[str], None] = print,
+    bar_output: Any = None,
+    pause: float = 0.2,
+) -> tuple[int, int]:
+    """Send a folder or a .jsonl file to a server as jobs of ``job_documents`` and follow them
+    document by document. A batch the server refuses for some of its documents is sent again
+    without them, each printed with its reason; Ctrl-C cancels the jobs not yet done.
+    Returns (documents written, failed)."""
+    from service.ingest.source_files import read_source
+
+    if schema_file is not None:
+        remote.put_collection(collection, json.loads(schema_file.read_text(encoding="utf-8")))
+    items = list(read_source(path))
+    bar, emit = _progress_bar(len(items), progress, report, bar_output)
+    shown = JobProgress(bar, emit)
+    documents: list[tuple[str, dict[str, Any]]] = []
+    for item in items:
+        if item.error is not None or item.document is None:
+            shown.rejected_file(item.origin, str(item.error))
+        else:
+            documents.append((item.origin, item.document))
+    sent: list[tuple[str, list[str]]] = []  # job id, the origin of each of its documents
+    try:
+        for start in range(0, len(documents), job_documents):
+            _send_batch(remote, collection, documents[start : start + job_documents], shown, sent)
+        written = _follow_remote_jobs(remote, sent, shown, pause)
+    except KeyboardInterrupt:
+        for job_id, _ in sent:
+            remote.cancel(job_id)
+        shown.report("interrupted: the jobs stop after their current batch; run again to go on")
+        raise
+    finally:
+        bar.close()
+    return written, shown.failures
+
+
+def _send_batch(
+    remote: Any,
+    collection: str,
+    batch: list[tuple[str, dict[str, Any]]],
+    shown: JobProgress,
+    sent: list[tuple[str, list[str]]],
+) -> None:
+    """Send (origin, document) pairs as one job; the documents the server refuses are shown
+    and the rest sent again, and a batch past one of its limits is sent in halves, so only a
+    document that is itself too large is refused."""
+    from service.ingest.remote_jobs import BatchTooLarge, DocumentsRefused
+
+    while batch:
+        try:
+            job_id = remote.submit(collection, [document for _, document in batch])
+        except DocumentsRefused as refused:
+            for problem in refused.documents:
+                shown.rejected_document(batch[problem.index][0], problem.id, problem.message)
+            bad = {problem.index for problem in refused.documents}
+            batch = [entry for place, entry in enumerate(batch) if place not in bad]
+            continue
+        except BatchTooLarge as too_large:
+            if len(batch) == 1:
+                origin, document = batch[0]
+                shown.rejected_document(origin, document.get("id"), str(too_large))
+                return
+            middle = len(batch) // 2
+            _send_batch(remote, collection, batch[:middle], shown, sent)
+            _send_batch(remote, collection, batch[middle:], shown, sent)
+            return
+        sent.append((job_id, [origin for origin, _ in batch]))
+        return
+
+
+def _follow_remote_jobs(
+    remote: Any, sent: Sequence[tuple[str, list[str]]], shown: JobProgress, pause: float
+) -> int:
+    """Read each job until it finishes, moving the bar by each document it wrote."""
+    seen = {job_id: (0, 0) for job_id, _ in sent}  # results, errors already shown
+    chunks = {job_id: 0 for job_id, _ in sent}
+    written = 0
+    for job_id, origins in sent:
+        while True:
+            job = remote.job(job_id)
+            results, errors = seen[job_id]
+            shown.documents_done(len(job.statuses) - results)
+            for problem in job.refused[errors:]:
+                shown.rejected_document(origins[problem.index], problem.id, problem.message)
+            seen[job_id] = (len(job.statuses), len(job.refused))
+            chunks[job_id] = job.chunks
+            shown.chunks_done(sum(chunks.values()))
+            if job.finished:
+                break
+            time.sleep(pause)
+        if job.state != "done":
+            # Refused documents were counted as they were shown; the rest were not written.
+            if job.state == "failed":
+                shown.report(f"job {job_id} failed: {job.failure}")
+            shown.failures += job.documents - len(job.statuses) - len(job.refused)
+        written += sum(1 for status in job.statuses if status != "unchanged")
+    return written
+
+
 # jobs --------------------------------------------------------------------------------------------
 
 
 def _job_line(job: Any) -> str:
     counts = job.counts
     return (
-        f"{job.id}  {job.state:<9} {job.collection:<20} {job.key:<16} "
+        f"{job.id}  {job.kind:<7} {job.state:<9} {job.collection:<20} {job.key:<16} "
         f"{counts.documents_done}/{counts.documents} documents, {counts.chunks} chunks "
         f"({counts.embedded} embedded, {counts.cached} cached)  {job.created_at:%Y-%m-%d %H:%M:%S}"
     )
@@ -902,8 +1074,12 @@ def build_parser() -> argparse.ArgumentParser:
     ingest.add_argument("path")
     ingest.add_argument("--schema", help="collection schema (JSON) to create or update first")
     ingest.add_argument(
-        "--batch-size", type=int, default=4, help="documents written per transaction"
+        "--batch-size",
+        type=int,
+        help=f"documents written per transaction (default {DEFAULT_INGEST_BATCH}; not with --url)",
     )
+    ingest.add_argument("--url", help="send the documents to this running server as jobs")
+    ingest.add_argument("--key", help="API key for --url (or EXCERPTA_KEY)")
     ingest.set_defaults(handler=cmd_ingest)
 
     worker = commands.add_parser(

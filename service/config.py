@@ -50,6 +50,9 @@ class Settings(BaseSettings):
     job_poll_ms: int = Field(500, ge=10, description="how often an idle worker looks for jobs")
     # The worker's share of the CPU: 0 leaves the query path one core (all cores but one).
     worker_torch_threads: int = Field(0, ge=0)
+    # The server's own worker also yields the CPU to queries whenever both want it (a process
+    # niceness added to the server's; 0 leaves it equal). ``excerpta worker`` keeps its own.
+    worker_nice: int = Field(10, ge=0, le=19)
     query_cache_entries: int = Field(4096, ge=0, description="query vectors kept in memory")
 
     max_body_bytes: int = 10 * 1024 * 1024

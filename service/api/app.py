@@ -39,7 +39,9 @@ def create_app(runtime: Runtime) -> FastAPI:
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
         runtime.indexes.start_background()
-        runtime.rebuilds.resume()
+        if runtime.jobs.runs_here:
+            # Else the workers take unfinished re-chunking jobs up from the store.
+            runtime.rebuilds.resume()
         runtime.jobs.start()
         yield
         query_pool.close()

@@ -165,10 +165,13 @@ class JobCountsOut(BaseModel):
 
 
 class JobDocumentResult(BaseModel):
-    id: str
-    index: int
-    status: Literal["created", "updated", "unchanged"]
-    chunks: int
+    """A written document (upsert: every field), a deleted one (delete: id and status), or the
+    switch of a re-chunked collection (rechunk: status and the chunks it holds now)."""
+
+    id: str | None = None
+    index: int | None = None
+    status: Literal["created", "updated", "unchanged", "deleted", "switched"]
+    chunks: int | None = None
 
 
 class JobDocumentError(BaseModel):
@@ -182,7 +185,7 @@ class JobDocumentError(BaseModel):
 class JobOut(BaseModel):
     job_id: str
     collection: str
-    kind: str
+    kind: Literal["upsert", "delete", "rechunk"]
     state: Literal["queued", "running", "done", "failed", "cancelled"]
     key: str
     counts: JobCountsOut

@@ -202,8 +202,9 @@ class InProcessHybrid:
 class Server:
     """``excerpta serve`` in a subprocess on 127.0.0.1, with its output in a log file."""
 
-    def __init__(self, data_dir: Path, port: int) -> None:
+    def __init__(self, data_dir: Path, port: int, settings: dict[str, str] | None = None) -> None:
         self.data_dir = data_dir
+        self.settings = dict(settings or {})
         self.port = port
         self.base_url = f"http://127.0.0.1:{port}"
         self.log_path = data_dir / "server.log"
@@ -211,6 +212,8 @@ class Server:
 
     def start(self) -> None:
         environment = dict(os.environ)
+        # The embedded default: the server's own worker process runs document jobs.
+        environment.pop("EXCERPTA_BROKER_URL", None)
         environment.update(
             {
                 "EXCERPTA_DATA_DIR": str(self.data_dir),
@@ -220,6 +223,7 @@ class Server:
                 "EXCERPTA_AUTH": "required",
                 "EXCERPTA_BLAS_THREADS": str(SERVICE_BLAS_THREADS),
                 "EXCERPTA_RATE_LIMIT_PER_SECOND": "0",
+                **self.settings,
             }
         )
         command = [sys.executable, "-m", "service.cli", "serve"]
@@ -277,14 +281,14 @@ def request_bodies(queries: QuerySet, *, top_k: int, depth: int) -> list[bytes]:
 
 
 @dataclass
-class _Samples:
+class Samples:
     """What one stretch of driving saw: each success's latency and each failure's message."""
 
     latencies_ms: list[float] = field(default_factory=list)
     errors: list[str] = field(default_factory=list)
     seconds: float = 0.0
 
-    def add(self, other: _Samples) -> None:
+    def add(self, other: Samples) -> None:
         self.latencies_ms += other.latencies_ms
         self.errors += other.errors
         self.seconds += other.seconds
@@ -305,12 +309,12 @@ def search_requests(port: int, key: str, bodies: Sequence[bytes]) -> list[bytes]
 
 def drive(port: int, requests: Sequence[bytes], *, clients: int, seconds: float) -> dict[str, Any]:
     """``clients`` threads sending requests back to back until the time is up."""
-    return _level(clients, _samples(port, requests, clients=clients, seconds=seconds))
+    return level_figures(clients, samples(port, requests, clients=clients, seconds=seconds))
 
 
-def _samples(
+def samples(
     port: int, requests: Sequence[bytes], *, clients: int, seconds: float, first: int = 0
-) -> _Samples:
+) -> Samples:
     latencies: list[list[float]] = [[] for _ in range(clients)]
     errors: list[list[str]] = [[] for _ in range(clients)]
     start_line = threading.Barrier(clients + 1)
@@ -355,7 +359,7 @@ def _samples(
     start_line.wait()
     for thread in threads:
         thread.join(seconds + REQUEST_TIMEOUT_SECONDS + 5)
-    return _Samples(
+    return Samples(
         [value for values in latencies for value in values],
         [error for values in errors for error in values],
         max([*finished_at, started + 1e-9]) - started,
@@ -371,15 +375,15 @@ def drive_alternating(
 ) -> dict[str, Any]:
     """One client in rounds, the in-process reference timed between them."""
     rounds = max(1, round(seconds / ROUND_SECONDS))
-    seen = _Samples()
+    seen = Samples()
     for _ in range(rounds):
         sent = len(seen.latencies_ms) + len(seen.errors)
-        seen.add(_samples(port, requests, clients=1, seconds=seconds / rounds, first=sent))
+        seen.add(samples(port, requests, clients=1, seconds=seconds / rounds, first=sent))
         reference.time_round()
-    return _level(1, seen)
+    return level_figures(1, seen)
 
 
-def _level(clients: int, seen: _Samples) -> dict[str, Any]:
+def level_figures(clients: int, seen: Samples) -> dict[str, Any]:
     latencies, errors, elapsed = seen.latencies_ms, seen.errors, seen.seconds
     figures: dict[str, Any] = {
         "clients": clients,

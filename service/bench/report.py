@@ -202,3 +202,66 @@ def print_http(http: dict[str, Any], write: Write) -> None:
         write(f"  error: {error}")
     for target in http["targets"]:
         write(_verdict(target))
+
+
+def print_http_with_ingest(run: dict[str, Any], write: Write) -> None:
+    write("")
+    write(
+        f"== over HTTP while ingesting: {run['chunks']:,} chunks served, hybrid search with "
+        f"query_vector; real text ({run['ingest_documents']} documents a pass, from "
+        f"{', '.join(run['ingest_sources'])}) sent as jobs to the server's worker; "
+        f"{run['rounds']} rounds of idle then ingest windows, {run['seconds_per_level']:g} s "
+        "of each per level =="
+    )
+    write(
+        f"  {'clients':>7} {'window':>7} {'requests':>9} {'req/s':>9} {'p50 ms':>9} "
+        f"{'p99 ms':>9} {'errors':>7} {'chunks':>7}"
+    )
+    for level in run["levels"]:
+        for part in ("idle", "ingest"):
+            figures = level[part]
+            chunks = str(level["chunks_ingested"]) if part == "ingest" else "-"
+            write(
+                f"  {level['clients']:>7} {part:>7} {figures['requests']:>9} "
+                f"{figures['requests_per_second']:>9.1f} {figures['p50_ms']:>9.2f} "
+                f"{figures['p99_ms']:>9.2f} {figures['errors']:>7} {chunks:>7}"
+            )
+        write(
+            f"  {'':>7} {'ratio':>7} p50 {level['p50_ratio']:.2f}x, p99 {level['p99_ratio']:.2f}x"
+        )
+    write(
+        f"  ingested during the ingest windows: {run['chunks_ingested']} chunks in "
+        f"{run['ingest_seconds']:.1f} s, {run['chunks_per_second']:.1f} chunks/s "
+        f"({run['jobs_done']} of {run['jobs_sent']} jobs done, the rest cancelled before "
+        f"each idle window; {run['ingest_errors']} ingest errors)"
+    )
+    for error in run.get("error_samples", []):
+        write(f"  error: {error}")
+    for target in run["targets"]:
+        write(_verdict(target))
+
+
+def print_ingest_throughput(run: dict[str, Any], write: Write) -> None:
+    write("")
+    write(
+        f"== ingestion through jobs: {run['documents']} documents from "
+        f"{', '.join(run['sources'])}, {run['torch_threads_per_worker']} torch thread(s) "
+        "per worker =="
+    )
+    write(
+        f"  {'workers':>7} {'jobs':>5} {'chunks':>7} {'embedded':>9} {'seconds':>8} "
+        f"{'chunks/s':>9} {'ran jobs':>9}"
+    )
+    for item in run["runs"]:
+        write(
+            f"  {item['workers']:>7} {item['jobs']:>5} {item['chunks']:>7} {item['embedded']:>9} "
+            f"{item['seconds']:>8.1f} {item['chunks_per_second']:>9.1f} "
+            f"{item['workers_that_ran_jobs']:>9}"
+        )
+    per_core = run["chunks_per_second_per_core"]
+    if per_core:
+        write(
+            f"  one worker: {per_core:.1f} chunks/s per core; a million chunks in an hour "
+            f"(278 chunks/s) needs about {run['cores_for_a_million_chunks_an_hour']} "
+            "worker cores at that rate"
+        )

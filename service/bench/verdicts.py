@@ -288,3 +288,47 @@ def answering_targets(answering: dict[str, Any]) -> list[dict[str, Any]]:
 
 def _mib(value: float) -> str:
     return f"{value / 2**20:.1f} MiB"
+
+
+INGEST_P50_LIMIT = 1.5
+INGEST_P99_LIMIT = 2.0
+
+
+def ingest_targets(run: dict[str, Any]) -> list[dict[str, Any]]:
+    """Hybrid search while the server ingests, against the same run's idle figures."""
+    found = []
+    for level in run["levels"]:
+        stated = f"{run['chunks']:,} chunks served, {level['clients']} client(s)"
+        idle, busy = level["idle"], level["ingest"]
+        found.append(
+            _target(
+                f"p50 while ingesting at most {INGEST_P50_LIMIT:g}x idle",
+                stated,
+                level["p50_ratio"] <= INGEST_P50_LIMIT,
+                f"{level['p50_ratio']:.2f}x ({busy['p50_ms']:.2f} ms vs {idle['p50_ms']:.2f} ms)",
+                value=level["p50_ratio"],
+                limit=INGEST_P50_LIMIT,
+            )
+        )
+        found.append(
+            _target(
+                f"p99 while ingesting at most {INGEST_P99_LIMIT:g}x idle",
+                stated,
+                level["p99_ratio"] <= INGEST_P99_LIMIT,
+                f"{level['p99_ratio']:.2f}x ({busy['p99_ms']:.2f} ms vs {idle['p99_ms']:.2f} ms)",
+                value=level["p99_ratio"],
+                limit=INGEST_P99_LIMIT,
+            )
+        )
+    errors = sum(level[part]["errors"] for level in run["levels"] for part in ("idle", "ingest"))
+    errors += run["ingest_errors"]
+    found.append(
+        _target(
+            "searches and ingest jobs: zero errors",
+            "every level",
+            errors == 0,
+            f"{errors} errors",
+            value=errors,
+        )
+    )
+    return found

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Sequence
+from typing import Any
 
 from sqlalchemy import or_, select
 from sqlalchemy.orm import Session, undefer
@@ -11,6 +12,71 @@ from sqlalchemy.orm import Session, undefer
 from service.store.tables import JobRow
 
 ACTIVE_STATES = ("queued", "running")
+# What a job does: write documents, delete the documents a filter matches, or re-chunk and
+# re-embed a collection whose chunking changed.
+UPSERT = "upsert"
+DELETE = "delete"
+RECHUNK = "rechunk"
+
+
+def add_job(
+    session: Session,
+    *,
+    job_id: str,
+    collection: str,
+    kind: str,
+    key_id: int | None,
+    key_name: str,
+    caller: dict[str, Any],
+    payload: dict[str, Any],
+    documents: int,
+    batch_documents: int,
+    skip_invalid: bool,
+    now: dt.datetime,
+) -> JobRow:
+    """A new queued job, added to the session and flushed."""
+    row = JobRow(
+        id=job_id,
+        collection=collection,
+        kind=kind,
+        state="queued",
+        key_id=key_id,
+        key_name=key_name,
+        caller=caller,
+        payload=payload,
+        batch_documents=batch_documents,
+        skip_invalid=skip_invalid,
+        documents=documents,
+        documents_done=0,
+        chunks=0,
+        embedded=0,
+        cached=0,
+        results=[],
+        errors=[],
+        failure=None,
+        cancel_requested=False,
+        attempts=0,
+        created_at=now,
+    )
+    session.add(row)
+    session.flush()
+    return row
+
+
+def lock_open_job(session: Session, collection: str, kind: str) -> JobRow | None:
+    """The collection's queued or running job of ``kind``, under its row lock."""
+    query = (
+        select(JobRow)
+        .where(
+            JobRow.collection == collection,
+            JobRow.kind == kind,
+            JobRow.state.in_(ACTIVE_STATES),
+        )
+        .order_by(JobRow.created_at, JobRow.id)
+        .limit(1)
+        .with_for_update()
+    )
+    return session.scalars(query).first()
 
 
 def job_by_id(session: Session, job_id: str, *, with_payload: bool = False) -> JobRow | None:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from enum import IntEnum
+from typing import Any
 
 from service.errors import CollectionNotFound, Forbidden
 
@@ -48,6 +49,24 @@ class Caller:
 
     def may_see(self, access: list[str] | tuple[str, ...]) -> bool:
         return self.is_admin or not access or not self.groups.isdisjoint(access)
+
+    def record(self) -> dict[str, Any]:
+        """What a job keeps of its sender, so its worker acts with the sender's rights."""
+        return {
+            "role": self.role.name.lower(),
+            "groups": sorted(self.groups),
+            "collections": None if self.collections is None else sorted(self.collections),
+        }
+
+    @classmethod
+    def from_record(cls, key_id: int | None, name: str, record: dict[str, Any]) -> Caller:
+        return cls(
+            key_id=key_id,
+            name=name,
+            role=Role.parse(record["role"]),
+            groups=frozenset(record["groups"]),
+            collections=None if record["collections"] is None else frozenset(record["collections"]),
+        )
 
 
 LOCAL_ADMIN = Caller(

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import re
+import uuid
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -19,8 +20,8 @@ from service.attributes import (
 from service.errors import CollectionNotFound, Conflict, InvalidRequest, quoted_names
 from service.filters.inference.hints import HINT_KEYS, HintError, parse_attribute_hints
 from service.index.graph import BREADTH_RANGE, INDEX_MODES, LINKS_RANGE, VectorIndexSettings
-from service.store import repository
-from service.store.tables import CollectionRow
+from service.store import job_rows, repository
+from service.store.tables import CollectionRow, JobRow
 from service.usecases.callers import Caller, Role
 from service.usecases.drafts import content_hash
 from service.usecases.runtime import Runtime
@@ -214,12 +215,17 @@ def put_collection(
     except AttributeValueError as exc:
         raise InvalidRequest(f"{exc}.", field="attributes") from None
     removals = _checked_removals(spec.remove_attributes or [], new_schema)
-    created, view, rebuild_needed = runtime.retries.run(
+    created, view, rechunk_job = runtime.retries.run(
         lambda: _put_collection(runtime, caller, name, spec, new_schema, removals)
     )
     runtime.indexes.expire(name)
-    if rebuild_needed:
-        runtime.rebuilds.start(name)
+    if rechunk_job is not None:
+        # The command line and the tests re-chunk on a thread of their own; a server leaves
+        # the job to its workers, so its queries never wait on the model.
+        if runtime.jobs.runs_here:
+            runtime.rebuilds.start(name)
+        else:
+            runtime.jobs.submitted(rechunk_job)
     return created, view
 
 
@@ -230,8 +236,9 @@ def _put_collection(
     spec: CollectionSpec,
     new_schema: Schema,
     removals: list[str],
-) -> tuple[bool, dict[str, Any], bool]:
-    """One attempt at a PUT, in one write transaction: (created, view, rebuild needed)."""
+) -> tuple[bool, dict[str, Any], str | None]:
+    """One attempt at a PUT, in one write transaction: (created, view, the id of a new
+    re-chunking job)."""
     window = runtime.embedder.window
     with runtime.write_transaction() as session:
         row = repository.lock_collection(session, name)
@@ -314,16 +321,24 @@ def _put_collection(
                 "inference_hints": hints,
             }
             if rebuild_needed:
+                open_job = job_rows.lock_open_job(session, name, job_rows.RECHUNK)
                 if chunking == row.chunking:
                     settings.pop("pending_chunking", None)
                     row.rebuild_done = None
                     row.rebuild_total = None
                     rebuild_needed = False
+                    if open_job is not None:
+                        _close_rechunk_job(open_job, now)
                 else:
                     settings["pending_chunking"] = chunking
                     repository.drop_generations_except(session, row.id, row.chunk_generation)
                     row.rebuild_done = 0
                     row.rebuild_total = repository.count_documents(session, row.id, None)[0]
+                    # A re-chunking under way goes on with the newest chunking.
+                    rebuild_needed = open_job is None
+                    if open_job is not None:
+                        open_job.documents = row.rebuild_total
+                        open_job.documents_done = 0
             row.settings = settings
             row.updated_at = now
             if removed:
@@ -331,7 +346,30 @@ def _put_collection(
             if retrieval_changed or removed or set(new_schema) - set(old_schema):
                 repository.bump_revision(session, row, [(None, "reset")])
         view = collection_view(session, row, caller, runtime.embedder.tokenizer_name)
-    return created, view, rebuild_needed
+        job = None
+        if rebuild_needed:
+            job = job_rows.add_job(
+                session,
+                job_id=str(uuid.uuid4()),
+                collection=name,
+                kind=job_rows.RECHUNK,
+                key_id=caller.key_id,
+                key_name=caller.name,
+                caller=caller.record(),
+                payload={},
+                documents=row.rebuild_total or 0,
+                batch_documents=runtime.settings.job_batch_documents,
+                skip_invalid=False,
+                now=now,
+            ).id
+    return created, view, job
+
+
+def _close_rechunk_job(job: JobRow, now: dt.datetime) -> None:
+    """The chunking was put back before the re-chunking finished: its job ends, cancelled."""
+    job.state = "cancelled"
+    job.finished_at = now
+    job.lease_expires_at = None
 
 
 def _checked_removals(names: list[str], new_schema: Schema) -> list[str]:

@@ -601,16 +601,38 @@ def list_documents(
     }
 
 
-def delete_by_filter(
-    runtime: Runtime, caller: Caller, collection: str, filter_value: str | dict[str, Any] | None
-) -> int:
-    """Remove every visible document the filter matches; an empty filter is refused."""
+def _require_filter(caller: Caller, filter_value: str | dict[str, Any] | None) -> None:
     caller.require(Role.WRITER)
     if filter_value is None or (isinstance(filter_value, str) and not filter_value.strip()):
         raise InvalidRequest(
             "Deleting by filter needs a non-empty filter; delete the collection to remove all.",
             field="filter",
         )
+
+
+def check_delete_filter(
+    runtime: Runtime, caller: Caller, collection: str, filter_value: str | dict[str, Any] | None
+) -> None:
+    """Refuse a delete whose filter is empty or does not fit the collection, before any job."""
+    _require_filter(caller, filter_value)
+    with runtime.transaction() as session:
+        _filter_condition(load_collection(session, caller, collection), filter_value)
+
+
+def delete_by_filter(
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    filter_value: str | dict[str, Any] | None,
+    *,
+    on_deleted: Callable[[Session, list[str]], None] | None = None,
+) -> int:
+    """Remove every visible document the filter matches; an empty filter is refused.
+
+    ``on_deleted(session, ids)`` runs inside the delete's transaction (a job records its
+    results there, so they are never counted without the delete, nor the delete without them).
+    """
+    _require_filter(caller, filter_value)
 
     def attempt() -> tuple[list[str], int | None]:
         with runtime.write_transaction() as session:
@@ -621,10 +643,12 @@ def delete_by_filter(
                 groups=caller.visible_groups,
                 condition=_filter_condition(row, filter_value),
             )
+            deleted = [ext for _, ext in matches]
+            if on_deleted is not None:
+                on_deleted(session, deleted)
             if not matches:
                 return [], None
             repository.delete_documents(session, [pk for pk, _ in matches])
-            deleted = [ext for _, ext in matches]
             return deleted, repository.bump_revision(session, row, [(e, "delete") for e in deleted])
 
     deleted, revision = runtime.retries.run(attempt)

@@ -34,18 +34,25 @@ from service.errors import (
     error_from_body,
 )
 from service.store import job_rows, repository
+from service.store.job_rows import DELETE, RECHUNK, UPSERT
 from service.store.tables import JobRow
 from service.usecases.callers import Caller, Role
 from service.usecases.collections import load_collection
-from service.usecases.documents import check_batch_limits, check_documents, upsert_documents
+from service.usecases.documents import (
+    check_batch_limits,
+    check_delete_filter,
+    check_documents,
+    delete_by_filter,
+    upsert_documents,
+)
 from service.usecases.drafts import Vectors
+from service.usecases.rebuild import rebuild_batch
 from service.usecases.runtime import Runtime
 
 log = logging.getLogger("excerpta.jobs")
 
 STATES = ("queued", "running", "done", "failed", "cancelled")
 FINISHED = ("done", "failed", "cancelled")
-UPSERT = "upsert"
 # A bug in a job is kept on it in these words; the worker's log has the traceback.
 UNEXPECTED = {"code": "job_stopped", "message": "The job stopped on an unexpected error."}
 MAX_LISTED = 1000
@@ -147,44 +154,60 @@ def submit_upsert(
     def attempt() -> JobView:
         with runtime.write_transaction() as session:
             load_collection(session, caller, collection)
-            row = JobRow(
-                id=job_id,
+            row = job_rows.add_job(
+                session,
+                job_id=job_id,
                 collection=collection,
                 kind=UPSERT,
-                state="queued",
                 key_id=caller.key_id,
                 key_name=caller.name,
-                caller={
-                    "role": caller.role.name.lower(),
-                    "groups": sorted(caller.groups),
-                    "collections": None
-                    if caller.collections is None
-                    else sorted(caller.collections),
-                },
+                caller=caller.record(),
                 payload={"documents": list(documents), "origins": list(origins or [])},
+                documents=len(documents),
                 batch_documents=batch,
                 skip_invalid=skip_invalid,
-                documents=len(documents),
-                documents_done=0,
-                chunks=0,
-                embedded=0,
-                cached=0,
-                results=[],
-                errors=[],
-                failure=None,
-                cancel_requested=False,
-                attempts=0,
-                created_at=repository.utcnow(),
+                now=repository.utcnow(),
             )
-            session.add(row)
-            session.flush()
             return JobView.of(row)
 
-    job = runtime.retries.run(attempt)
+    return _hand_over(runtime, runtime.retries.run(attempt))
+
+
+def submit_delete(
+    runtime: Runtime, caller: Caller, collection: str, filter_value: str | dict[str, Any] | None
+) -> JobView:
+    """Record a job that deletes every document the filter matches (as the caller sees them),
+    and hand it to the runtime's queue; a bad filter is refused here, before any job."""
+    check_delete_filter(runtime, caller, collection, filter_value)
+    job_id = str(uuid.uuid4())
+
+    def attempt() -> JobView:
+        with runtime.write_transaction() as session:
+            load_collection(session, caller, collection)
+            row = job_rows.add_job(
+                session,
+                job_id=job_id,
+                collection=collection,
+                kind=DELETE,
+                key_id=caller.key_id,
+                key_name=caller.name,
+                caller=caller.record(),
+                payload={"filter": filter_value},
+                documents=0,
+                batch_documents=runtime.settings.job_batch_documents,
+                skip_invalid=False,
+                now=repository.utcnow(),
+            )
+            return JobView.of(row)
+
+    return _hand_over(runtime, runtime.retries.run(attempt))
+
+
+def _hand_over(runtime: Runtime, job: JobView) -> JobView:
     if runtime.jobs.runs_here:
-        run_job(runtime, job_id, worker=worker_name())
+        run_job(runtime, job.id, worker=worker_name())
     else:
-        runtime.jobs.submitted(job_id)
+        runtime.jobs.submitted(job.id)
     return job
 
 
@@ -236,6 +259,11 @@ def cancel_job(runtime: Runtime, caller: Caller, job_id: str) -> JobView:
             row = _visible(caller, job_rows.lock_job(session, job_id), job_id)
             if row.state in FINISHED:
                 raise Conflict(f"Job {job_id!r} has already finished ({row.state}).")
+            if row.kind == RECHUNK:
+                raise Conflict(
+                    f"Job {job_id!r} re-chunks its collection and cannot be cancelled; "
+                    "put the collection's previous chunking back to stop it."
+                )
             if row.state == "queued":
                 _close(row, "cancelled")
             else:
@@ -280,7 +308,9 @@ class JobTakenOver(Exception):
 class ClaimedJob:
     id: str
     collection: str
+    kind: str
     caller: Caller
+    filter: str | dict[str, Any] | None
     documents: tuple[Any, ...]
     origins: tuple[str, ...]
     position: int
@@ -345,20 +375,13 @@ def _claim(runtime: Runtime, job_id: str, worker: str) -> ClaimedJob | float | N
         row.started_at = row.started_at or now
         row.lease_expires_at = now + dt.timedelta(seconds=runtime.settings.job_lease_seconds)
         payload = row.payload
-        caller = row.caller
         return ClaimedJob(
             id=row.id,
             collection=row.collection,
-            caller=Caller(
-                key_id=row.key_id,
-                name=row.key_name,
-                role=Role.parse(caller["role"]),
-                groups=frozenset(caller["groups"]),
-                collections=None
-                if caller["collections"] is None
-                else frozenset(caller["collections"]),
-            ),
-            documents=tuple(payload["documents"]),
+            kind=row.kind,
+            caller=Caller.from_record(row.key_id, row.key_name, row.caller),
+            filter=payload.get("filter"),
+            documents=tuple(payload.get("documents") or ()),
             origins=tuple(payload.get("origins") or ()),
             position=row.documents_done,
             batch_documents=row.batch_documents,
@@ -373,6 +396,12 @@ def _work(runtime: Runtime, job: ClaimedJob, worker: str, should_stop: Callable[
         every_seconds=runtime.settings.job_lease_seconds / 3,
     )
     try:
+        if job.kind == RECHUNK:
+            _rechunk(runtime, job, worker, embedder, should_stop)
+            return
+        if job.kind == DELETE:
+            _delete(runtime, job, worker)
+            return
         if not job.skip_invalid:
             check_documents(runtime, job.caller, job.collection, job.documents)
         position = job.position
@@ -444,6 +473,41 @@ def _write_slice(
             _advance(session, job.id, worker, [], skipped, end, runtime, Vectors({}, {}))
 
     runtime.retries.run(attempt)
+
+
+def _rechunk(
+    runtime: Runtime,
+    job: ClaimedJob,
+    worker: str,
+    embedder: Embedder,
+    should_stop: Callable[[], bool],
+) -> None:
+    """Re-chunk the collection a batch at a time until it switches over; each batch's write
+    also moves the job (``rebuild.rebuild_batch``), so its progress is the collection's."""
+    while not rebuild_batch(runtime.transactions, runtime.retries, embedder, job.collection):
+        if should_stop():
+            _finish(runtime, job.id, worker, "queued")
+            return
+        _renew_lease(runtime, job.id, worker)
+    _finish(runtime, job.id, worker, "done")
+
+
+def _delete(runtime: Runtime, job: ClaimedJob, worker: str) -> None:
+    """Delete what the filter matches in one write, which also records each deleted document
+    on the job; a job taken over meanwhile has that write rolled back."""
+    if _cancel_wanted(runtime, job.id):
+        _finish(runtime, job.id, worker, "cancelled")
+        return
+
+    def record(session: Session, deleted: Sequence[str]) -> None:
+        row = job_rows.lock_job(session, job.id)
+        if row is None or row.state != "running" or row.worker != worker:
+            raise JobTakenOver(job.id)
+        row.documents = row.documents_done = len(deleted)
+        row.results = [{"id": document, "status": "deleted"} for document in deleted]
+
+    delete_by_filter(runtime, job.caller, job.collection, job.filter, on_deleted=record)
+    _finish(runtime, job.id, worker, "done")
 
 
 def _with_origins(job: ClaimedJob, problems: Sequence[dict[str, Any]]) -> list[dict[str, Any]]:

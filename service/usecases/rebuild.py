@@ -17,7 +17,9 @@ from collections.abc import Callable
 from functools import partial
 
 from service.embedding.base import Embedder
-from service.store import repository
+from service.store import job_rows, repository
+from service.store.job_rows import RECHUNK
+from service.store.tables import JobRow
 from service.store.transactions import Transactions
 from service.usecases.drafts import (
     MaterialisedDocument,
@@ -153,6 +155,7 @@ def _write_batch(
             return True
         if row.settings.get("pending_chunking") != pending or row.chunk_generation != generation:
             return False  # the chunking changed again; the next step reads afresh
+        job = job_rows.lock_open_job(session, name, RECHUNK)
         if not materials:
             if repository.documents_without_generation(session, row.id, target, 1):
                 return False  # a document was added meanwhile
@@ -165,6 +168,8 @@ def _write_batch(
             row.rebuild_total = None
             repository.drop_generations_except(session, row.id, target)
             repository.bump_revision(session, row, [(None, "reset")])
+            if job is not None:
+                _job_done(job, repository.count_documents(session, row.id, None)[1])
             return True
         vectors.stored(session, embedder)
         current = repository.documents_by_external_id(
@@ -179,4 +184,30 @@ def _write_batch(
             written += 1
         row.rebuild_done = (row.rebuild_done or 0) + written
         row.rebuild_total = max(row.rebuild_total or 0, row.rebuild_done)
+        if job is not None:
+            _job_moved(job, row.rebuild_done, row.rebuild_total, materials, vectors)
     return False
+
+
+def _job_moved(
+    job: JobRow, done: int, total: int, materials: list[MaterialisedDocument], vectors: Vectors
+) -> None:
+    """The collection's re-chunking job follows the batch just written (in its transaction)."""
+    now = repository.utcnow()
+    if job.state == "queued":
+        # Run by this process's own rebuild thread rather than a worker that claimed it.
+        job.state = "running"
+        job.started_at = now
+    job.documents = total
+    job.documents_done = done
+    job.chunks += sum(len(m.chunks) for m in materials)
+    job.embedded += len(vectors.fresh)
+    job.cached += len(vectors.cached)
+
+
+def _job_done(job: JobRow, chunks: int) -> None:
+    job.state = "done"
+    job.started_at = job.started_at or repository.utcnow()
+    job.finished_at = repository.utcnow()
+    job.lease_expires_at = None
+    job.results = [{"status": "switched", "chunks": chunks}]

@@ -67,6 +67,8 @@ def _local_worker_main(
     configure_logging(log_format=settings.log_format)
     # Ctrl-C reaches the whole process group; the server stops this worker itself.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if settings.worker_nice:
+        os.nice(settings.worker_nice)
     runtime = Runtime(settings, make_embedder())
     limit_torch_threads(worker_threads(settings.worker_torch_threads))
     closed = threading.Event()

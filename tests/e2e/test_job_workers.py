@@ -90,3 +90,39 @@ def test_a_server_whose_worker_was_killed_still_takes_jobs_and_stops_at_once(
         assert time.monotonic() - started < 10, server.log()
     finally:
         server.stop()
+
+
+def test_a_servers_rechunking_runs_in_its_worker_process_as_a_job(
+    tmp_path: Path, make_runtime: Callable[..., Runtime], store_url: str
+) -> None:
+    data = tmp_path / "data"
+    key = make_key(make_runtime(data_dir=data, database_url=store_url), "admin", name="admin")
+    server = ServerProcess(data, store_url, test_job_workers="1", job_poll_ms="2000")
+    server.start()
+    try:
+        headers = {"Authorization": f"Bearer {key}"}
+        with httpx.Client(base_url=server.base_url, headers=headers, timeout=60) as client:
+            coarse = {"chunking": {"max_tokens": 64, "overlap_tokens": 0}}
+            assert client.put(COLLECTION, json=coarse).status_code == 201
+            text = " ".join(f"Step {n}: true the wheel at spoke {n}." for n in range(20))
+            notes = [{"id": f"note-{n}", "text": text} for n in range(2)]
+            assert client.post(f"{COLLECTION}/documents", json={"documents": notes}).is_success
+            before = client.get(COLLECTION).json()["chunks"]
+            fine = {"chunking": {"max_tokens": 16, "overlap_tokens": 0}}
+            assert client.put(COLLECTION, json=fine).status_code == 200
+            deadline = time.monotonic() + 30
+            [job] = client.get("/v1/jobs", params={"collection": "notes"}).json()["jobs"][:1]
+            while job["state"] != "done" and time.monotonic() < deadline:
+                time.sleep(0.05)
+                job = client.get(f"/v1/jobs/{job['job_id']}").json()
+            assert (job["kind"], job["state"]) == ("rechunk", "done"), job
+            assert server.process is not None
+            assert not job["worker"].endswith(f":{server.process.pid}")
+            # The worker yields the CPU to the server's queries (EXCERPTA_WORKER_NICE, 10).
+            worker_pid = int(job["worker"].rsplit(":", 1)[1])
+            served_at = os.getpriority(os.PRIO_PROCESS, server.process.pid)
+            assert os.getpriority(os.PRIO_PROCESS, worker_pid) == min(19, served_at + 10)
+            after = client.get(COLLECTION).json()
+            assert after["chunks"] > before and after["chunking"]["max_tokens"] == 16
+    finally:
+        server.stop()

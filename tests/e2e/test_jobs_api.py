@@ -258,3 +258,122 @@ def test_a_worker_told_to_stop_puts_its_job_back_at_a_batch_boundary_for_the_nex
     done = writer.get(f"/v1/jobs/{job_id}").json()
     assert done["state"] == "done" and done["worker"] == "test-worker"
     assert [r["index"] for r in done["results"]] == [0, 1, 2, 3, 4]
+
+
+def long_manual(number: int) -> dict[str, Any]:
+    steps = " ".join(
+        f"Step {s}: tighten bolt {s} of frame {number} to the torque." for s in range(8)
+    )
+    return {**manual(number), "text": steps}
+
+
+def test_a_delete_by_filter_is_a_job_that_records_each_deleted_document(
+    writer: Api, queued_runtime: Runtime
+) -> None:
+    send(writer, *(manual(n) for n in range(4)))
+    run_one(queued_runtime)
+    sent = writer.delete(DOCUMENTS, params={"filter": "model_year >= 2022", "wait": "false"})
+    assert sent.status_code == 202, sent.text
+    job_id = sent.json()["job_id"]
+    queued = writer.get(f"/v1/jobs/{job_id}").json()
+    assert (queued["kind"], queued["state"]) == ("delete", "queued")
+    assert writer.get(f"{DOCUMENTS}/manual-3").status_code == 200
+
+    run_one(queued_runtime)
+
+    done = writer.get(f"/v1/jobs/{job_id}").json()
+    assert done["state"] == "done" and done["error"] is None
+    assert sorted((r["id"], r["status"]) for r in done["results"]) == [
+        ("manual-2", "deleted"),
+        ("manual-3", "deleted"),
+    ]
+    assert done["counts"]["documents"] == done["counts"]["documents_done"] == 2
+    assert writer.get(f"{DOCUMENTS}/manual-3").status_code == 404
+    assert writer.get(f"{DOCUMENTS}/manual-1").status_code == 200
+    kinds = [job["kind"] for job in writer.get("/v1/jobs", params={"state": "done"}).json()["jobs"]]
+    assert kinds == ["delete", "upsert"]
+
+    refused = writer.delete(DOCUMENTS, params={"filter": "colour = 'red'", "wait": "false"})
+    assert refused.status_code == 400
+    assert refused.json()["error"]["code"] == "filter_unknown_attribute"
+    assert writer.delete(DOCUMENTS, params={"filter": " "}).status_code == 422
+    assert len(writer.get("/v1/jobs").json()["jobs"]) == 2
+
+
+def test_a_delete_by_filter_that_waits_answers_with_the_count_its_job_recorded(
+    make_runtime: Callable[..., Runtime],
+) -> None:
+    runtime = make_runtime()
+    with TestClient(create_app(runtime)) as client:
+        admin = Api(client, make_key(runtime, "admin", name="admin"))
+        assert admin.put("/v1/collections/bikes", json=BIKE_SCHEMA).status_code == 201
+        documents = {"documents": [manual(n) for n in range(3)]}
+        assert admin.post(DOCUMENTS, json=documents).status_code == 200
+        deleted = admin.delete(DOCUMENTS, params={"filter": "model_year < 2022"})
+        assert deleted.status_code == 200 and deleted.json() == {"deleted": 2}
+        [job] = admin.get("/v1/jobs", params={"state": "done", "collection": "bikes"}).json()[
+            "jobs"
+        ][:1]
+        assert job["kind"] == "delete" and job["counts"]["documents_done"] == 2
+
+
+def test_a_changed_chunking_is_a_rechunk_job_that_a_worker_runs_and_none_may_cancel(
+    admin: Api, writer: Api, queued_runtime: Runtime
+) -> None:
+    send(writer, *(long_manual(n) for n in range(3)))
+    run_one(queued_runtime)
+    before = admin.get("/v1/collections/bikes").json()["chunks"]
+    finer = {**BIKE_SCHEMA, "chunking": {"max_tokens": 24, "overlap_tokens": 0}}
+    assert admin.put("/v1/collections/bikes", json=finer).status_code == 200
+    [job] = admin.get("/v1/jobs", params={"state": "queued"}).json()["jobs"]
+    assert (job["kind"], job["key"], job["counts"]["documents"]) == ("rechunk", "admin", 3)
+    assert writer.get(f"/v1/jobs/{job['job_id']}").status_code == 404
+    refused = admin.delete(f"/v1/jobs/{job['job_id']}")
+    assert refused.status_code == 409 and refused.json()["error"]["code"] == "conflict"
+    # A second change while the first is pending goes on in the same job.
+    finest = {**BIKE_SCHEMA, "chunking": {"max_tokens": 16, "overlap_tokens": 0}}
+    assert admin.put("/v1/collections/bikes", json=finest).status_code == 200
+    assert len(admin.get("/v1/jobs", params={"state": "queued"}).json()["jobs"]) == 1
+    assert admin.get("/v1/collections/bikes").json()["chunks"] == before
+
+    run_one(queued_runtime)
+
+    done = admin.get(f"/v1/jobs/{job['job_id']}").json()
+    collection = admin.get("/v1/collections/bikes").json()
+    assert done["state"] == "done" and done["started_at"] <= done["finished_at"]
+    assert done["counts"]["documents_done"] == done["counts"]["documents"] == 3
+    [switched] = done["results"]
+    assert (switched["status"], switched["chunks"]) == ("switched", collection["chunks"])
+    assert done["counts"]["chunks"] == collection["chunks"] > before
+    assert collection["chunking"]["max_tokens"] == 16 and collection.get("rebuild") is None
+
+
+def test_putting_the_chunking_back_cancels_the_rechunk_job(
+    admin: Api, writer: Api, queued_runtime: Runtime
+) -> None:
+    send(writer, long_manual(1))
+    run_one(queued_runtime)
+    finer = {**BIKE_SCHEMA, "chunking": {"max_tokens": 16, "overlap_tokens": 0}}
+    assert admin.put("/v1/collections/bikes", json=finer).status_code == 200
+    assert admin.put("/v1/collections/bikes", json=BIKE_SCHEMA).status_code == 200
+    [job] = admin.get("/v1/jobs", params={"collection": "bikes"}).json()["jobs"][:1]
+    assert (job["kind"], job["state"]) == ("rechunk", "cancelled")
+    assert not run_next_job(queued_runtime, worker="test-worker")
+
+
+def test_a_rechunk_job_of_a_process_that_runs_its_own_jobs_moves_with_its_rebuild_thread(
+    make_runtime: Callable[..., Runtime],
+) -> None:
+    runtime = make_runtime()
+    with TestClient(create_app(runtime)) as client:
+        admin = Api(client, make_key(runtime, "admin", name="admin"))
+        assert admin.put("/v1/collections/bikes", json=BIKE_SCHEMA).status_code == 201
+        documents = {"documents": [long_manual(n) for n in range(2)]}
+        assert admin.post(DOCUMENTS, json=documents).status_code == 200
+        finer = {**BIKE_SCHEMA, "chunking": {"max_tokens": 16, "overlap_tokens": 0}}
+        assert admin.put("/v1/collections/bikes", json=finer).status_code == 200
+        assert runtime.rebuilds.wait(30)
+        [job] = admin.get("/v1/jobs", params={"collection": "bikes"}).json()["jobs"][:1]
+        assert (job["kind"], job["state"]) == ("rechunk", "done")
+        assert job["counts"]["documents_done"] == 2
+        assert job["results"][0]["chunks"] == admin.get("/v1/collections/bikes").json()["chunks"]

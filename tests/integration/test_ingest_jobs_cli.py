@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 
 from service.cli import ingest_path, main
+from service.store import repository
 from service.usecases import jobs
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.job_queues import StoreQueue
@@ -86,7 +87,7 @@ def test_jobs_command_lists_shows_and_refuses_to_cancel_a_finished_job(
 
     assert main(["jobs", "list", "--data-dir", str(data), "--state", "done"]) == 0
     listed = capsys.readouterr().out
-    assert job.id in listed and "5/5 documents" in listed
+    assert job.id in listed and "upsert" in listed and "5/5 documents" in listed
 
     assert main(["jobs", "show", job.id, "--data-dir", str(data), "--json"]) == 0
     shown = json.loads(capsys.readouterr().out)
@@ -111,3 +112,40 @@ def test_commands_that_need_no_model_do_not_load_it(tmp_path: Path) -> None:
     )
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip().splitlines()[-1] == "[]"
+
+
+def test_ingest_with_a_changed_chunking_runs_the_rechunk_job_first(
+    tmp_path: Path, make_runtime: Callable[..., Runtime]
+) -> None:
+    runtime = make_runtime(jobs=StoreQueue())
+    source, schema = write_source(tmp_path / "source")
+    ingest_path(runtime, "notes", source, schema_file=schema, batch_size=2, progress=False)
+    finer = tmp_path / "finer.json"
+    finer.write_text(
+        json.dumps({**SCHEMA, "chunking": {"max_tokens": 16, "overlap_tokens": 0}}),
+        encoding="utf-8",
+    )
+    lines: list[str] = []
+
+    again = ingest_path(
+        runtime,
+        "notes",
+        source,
+        schema_file=finer,
+        batch_size=2,
+        progress=False,
+        report=lines.append,
+    )
+
+    assert again == (0, 1)
+    assert lines[0] == "re-chunking the 4 documents of 'notes' first"
+    newest = jobs.list_jobs(runtime, LOCAL_ADMIN, collection="notes")
+    assert [(job.kind, job.state) for job in newest[:2]] == [
+        ("upsert", "done"),
+        ("rechunk", "done"),
+    ]
+    assert newest[1].counts.documents_done == 4
+    with runtime.transaction() as session:
+        row = repository.collection_by_name(session, "notes")
+        assert row is not None and row.chunking["max_tokens"] == 16
+        assert not row.settings.get("pending_chunking")

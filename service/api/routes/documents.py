@@ -76,14 +76,23 @@ def list_documents(
     )
 
 
-@router.delete("", response_model=DeletedOut)
+@router.delete(
+    "",
+    response_model=DeletedOut,
+    responses={202: {"model": JobAcceptedOut, "description": "The job, sent with wait=false"}},
+)
 def delete_by_filter(
     name: str,
     runtime: RuntimeDep,
     caller: CallerDep,
     filter: str | None = Query(None, max_length=16_384),
-) -> dict[str, int]:
-    return {"deleted": usecase.delete_by_filter(runtime, caller, name, _filter_param(filter))}
+    wait: bool = Query(True, description="false: answer 202 with the job's id at once"),
+) -> Any:
+    job = jobs.submit_delete(runtime, caller, name, _filter_param(filter))
+    if not wait:
+        return JSONResponse({"job_id": job.id, "status": job.state}, status_code=202)
+    done = jobs.wait_for_job(runtime, caller, job.id)
+    return {"deleted": done.counts.documents_done}
 
 
 @router.get("/{document_id}", response_model=DocumentOut)

@@ -32,6 +32,7 @@ from service.index.graph import (
     DEFAULT_MAX_SEARCH_BREADTH,
     DEFAULT_SEARCH_BREADTH,
     GraphSettings,
+    IndexMode,
     VectorIndexSettings,
 )
 
@@ -99,6 +100,11 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
         "--graph-max-search-breadth", type=_positive, default=DEFAULT_MAX_SEARCH_BREADTH
     )
     parser.add_argument(
+        "--restart",
+        action="store_true",
+        help="time a start from a saved index against one that builds the index from the store",
+    )
+    parser.add_argument(
         "--http",
         action="store_true",
         help="drive the real server over HTTP instead of the in-process run",
@@ -143,7 +149,7 @@ def _progress(line: str) -> None:
 
 def run_bench(args: argparse.Namespace) -> dict[str, Any]:
     """Run what ``args`` ask for, print it, and return every figure."""
-    if not args.http and not args.answering:
+    if not args.http and not args.answering and not args.restart:
         require_reference_libraries()
     info = machine()
     print_machine(info, print)
@@ -171,6 +177,9 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
         results["answering"] = answering
     if args.vector_index:
         results["vector_index"] = _run_vector_index(args)
+        return results
+    if args.restart:
+        results["restart"] = _run_restart(args)
         return results
     queries = make_queries(args.queries, args.dims, args.seed)
     if args.http:
@@ -223,11 +232,9 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
     return results
 
 
-def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
-    from service.bench.vector_index import model_centres, print_vector_index, run_vector_index
-
-    settings = VectorIndexSettings(
-        index="auto",
+def _graph_settings(args: argparse.Namespace, index: IndexMode) -> VectorIndexSettings:
+    return VectorIndexSettings(
+        index=index,
         graph=GraphSettings(
             links=args.graph_links,
             build_breadth=args.graph_build_breadth,
@@ -235,6 +242,30 @@ def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
             max_search_breadth=args.graph_max_search_breadth,
         ),
     )
+
+
+def _run_restart(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.restart import print_restart, run_restart
+
+    figures = []
+    for size in args.chunks:
+        result = run_restart(
+            size,
+            dimension=args.dims,
+            seed=args.seed,
+            vectors=_graph_settings(args, "graph"),
+            progress=_progress,
+        )
+        print_restart(result, print)
+        sys.stdout.flush()
+        figures.append(result)
+    return figures
+
+
+def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.vector_index import model_centres, print_vector_index, run_vector_index
+
+    settings = _graph_settings(args, "auto")
     _progress("embedding the corpus paragraphs (cluster centres)")
     centres = model_centres()
     figures = []

@@ -1,0 +1,182 @@
+"""``excerpta bench --restart``: how long a start takes to be ready, from a saved index and
+without one.
+
+A scratch SQLite store gets the synthetic collection (``service.bench.synthetic``, written
+through the store layer as ``--http`` writes it), with a graph as its vector index. Then three
+starts, each a fresh index registry over the store, as a server's is:
+
+- ``rebuilt``: nothing saved, so the index is built from the store (every chunk and vector read,
+  every text analysed); the registry is ready then. Its background round then builds the graph
+  and saves the index, timed apart (``graph_and_save_seconds``).
+- ``loaded``: the saved index read back: the manifest, the identity and every file's checksum
+  checked, the arrays read (the vectors mapped from their file), the graph's links read.
+- ``caught_up``: the same after 1% of the documents were written anew in the store: the saved
+  index read back, then brought up to date from the change log.
+
+Each start's index is checked against the first (the same live rows, the same ranking of a
+query); the figures say how warm the page cache was (the files were just written).
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from service.bench.http import COLLECTION, write_collection
+from service.bench.synthetic import CHUNKS_PER_DOCUMENT, document_id_of, make_collection
+from service.config import Settings
+from service.index.graph import VectorIndexSettings
+from service.index.saved import IndexDirectory
+from service.retrieval.ranking import exact_semantic_ranking
+from service.store import repository
+from service.usecases.indexes import IndexRegistry, SavedIndexes, StoreIndexSource
+from service.usecases.runtime import Runtime, embedder_on_first_use
+
+REWRITTEN_SHARE = 0.01
+
+
+def _registry(runtime: Runtime, folder: Path) -> IndexRegistry:
+    store_id = runtime.store.store_id
+    if store_id is None:
+        raise RuntimeError("the scratch store has no identity")
+    return IndexRegistry(
+        StoreIndexSource(runtime.transactions),
+        dimensions=runtime.embedder.dimensions,
+        poll_seconds=3600.0,
+        compact_after=runtime.settings.compact_after_deleted_rows,
+        saved=SavedIndexes(
+            directory=IndexDirectory(folder),
+            store_id=store_id,
+            embedder=runtime.embedder.name,
+            every_seconds=runtime.settings.index_save_seconds,
+        ),
+    )
+
+
+def _ready(registry: IndexRegistry) -> float:
+    started = time.perf_counter()
+    registry.view(COLLECTION)
+    return time.perf_counter() - started
+
+
+def _ranking(registry: IndexRegistry, query: np.ndarray) -> list[str]:
+    snapshot = registry.view(COLLECTION).snapshot
+    rows = exact_semantic_ranking(snapshot, query, snapshot.live.copy(), 10).rows
+    return [snapshot.chunk_ids[int(row)] for row in rows]
+
+
+def _rewrite(runtime: Runtime, documents: int, share: float, seed: int) -> int:
+    """Write ``share`` of the documents anew in the store (their chunks keep their vectors,
+    their titles change), as another process would, logging each in the change log."""
+    rng = np.random.default_rng(seed)
+    count = max(1, round(share * documents))
+    chosen = sorted(rng.choice(documents, count, replace=False).tolist())
+    with runtime.write_transaction() as session:
+        row = repository.collection_by_name(session, COLLECTION)
+        assert row is not None
+        found = repository.documents_by_external_id(
+            session, row.id, [document_id_of(n) for n in chosen]
+        )
+        for document in found.values():
+            document.title = f"{document.title} (revised)"
+        repository.bump_revision(session, row, [(d, "upsert") for d in sorted(found)])
+    return len(found)
+
+
+def run_restart(
+    size: int,
+    *,
+    dimension: int,
+    seed: int,
+    vectors: VectorIndexSettings,
+    progress: Callable[[str], None],
+) -> dict[str, Any]:
+    collection = make_collection(size, dimension, seed)
+    with tempfile.TemporaryDirectory(prefix="excerpta-bench-restart-") as scratch:
+        data_dir = Path(scratch)
+        settings = Settings(data_dir=data_dir)
+        runtime = Runtime(settings, embedder_on_first_use(settings))
+        if runtime.embedder.dimensions != dimension:
+            raise ValueError(f"--restart needs --dims {runtime.embedder.dimensions}")
+        try:
+            write_collection(
+                runtime,
+                collection,
+                vectors={"index": vectors.index, "graph": vectors.graph.__dict__},
+            )
+            del collection
+            progress(
+                f"{size:,} chunks written to the scratch store; starting without a saved index"
+            )
+            folder = settings.resolved_index_dir()
+            figures: dict[str, Any] = {"chunks": size, "documents": size // CHUNKS_PER_DOCUMENT}
+
+            first = _registry(runtime, folder)
+            figures["rebuilt_ready_seconds"] = _ready(first)
+            figures["load_average_rebuilt"] = os.getloadavg()[0]
+            started = time.perf_counter()
+            first.maintain()
+            figures["graph_and_save_seconds"] = time.perf_counter() - started
+            info = IndexDirectory(folder).describe(COLLECTION)
+            figures["saved_bytes"] = info.bytes
+            figures["saved_graph_rows"] = info.graph_rows
+            query = np.random.default_rng(seed).standard_normal(dimension).astype(np.float32)
+            expected = _ranking(first, query)
+            first.stop()
+            del first
+            progress(f"{size:,} chunks: rebuilt in {figures['rebuilt_ready_seconds']:.1f} s")
+
+            loaded = _registry(runtime, folder)
+            figures["loaded_ready_seconds"] = _ready(loaded)
+            figures["load_average_loaded"] = os.getloadavg()[0]
+            if loaded.start_counts() != {("loaded", ""): 1}:
+                raise RuntimeError(f"the saved index was not read back: {loaded.start_counts()}")
+            if _ranking(loaded, query) != expected:
+                raise RuntimeError("the index read back ranks otherwise than the one saved")
+            if loaded.view(COLLECTION).snapshot.graph is None:
+                raise RuntimeError("the index read back has no graph")
+            loaded.stop()
+            del loaded
+            progress(f"{size:,} chunks: read back in {figures['loaded_ready_seconds']:.1f} s")
+
+            figures["rewritten_documents"] = _rewrite(
+                runtime, figures["documents"], REWRITTEN_SHARE, seed
+            )
+            caught_up = _registry(runtime, folder)
+            figures["caught_up_ready_seconds"] = _ready(caught_up)
+            if caught_up.start_counts() != {("caught_up", ""): 1}:
+                raise RuntimeError(f"the saved index was not caught up: {caught_up.start_counts()}")
+            caught_up.stop()
+        finally:
+            runtime.close()
+    return figures
+
+
+def print_restart(figures: dict[str, Any], emit: Callable[[str], None]) -> None:
+    emit("")
+    emit(
+        f"restart at {figures['chunks']:,} chunks ({figures['documents']:,} documents), "
+        f"saved index {figures['saved_bytes'] / 2**20:.0f} MiB with a graph over "
+        f"{figures['saved_graph_rows']:,} rows:"
+    )
+    emit(
+        f"  ready without a saved index (built from the store)  "
+        f"{figures['rebuilt_ready_seconds']:>8.2f} s  (load average "
+        f"{figures['load_average_rebuilt']:.2f}); then graph and save "
+        f"{figures['graph_and_save_seconds']:.1f} s"
+    )
+    emit(
+        f"  ready from the saved index                          "
+        f"{figures['loaded_ready_seconds']:>8.2f} s  (load average "
+        f"{figures['load_average_loaded']:.2f}; files in the page cache)"
+    )
+    emit(
+        f"  ready from it, {figures['rewritten_documents']:,} documents caught up         "
+        f"{figures['caught_up_ready_seconds']:>8.2f} s"
+    )

@@ -21,9 +21,9 @@ from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord
 from service.index.graph import GraphSettings, VectorIndexSettings
 from service.index.lexical import LexicalScoring
+from service.index.saved import IndexDirectory
 from service.index.view import CollectionFacts, IndexView
 from service.usecases.drafts import ChunkDraft, MaterialisedDocument, PreparedDocument
-from service.index.saved import IndexDirectory
 from service.usecases.indexes import (
     CollectionHeader,
     CollectionUpdate,

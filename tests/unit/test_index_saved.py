@@ -254,3 +254,15 @@ def test_a_save_that_dies_before_its_manifest_leaves_the_last_index_in_place(
         directory.save("notes", index.snapshot(), IDENTITY)
     monkeypatch.undo()
     assert load(directory).snapshot().revision == 7
+
+
+def test_an_empty_index_is_read_back_and_takes_its_first_rows(tmp_path: Path) -> None:
+    directory = IndexDirectory(tmp_path)
+    empty = CollectionIndex.build([], metric="cosine", dimension=DIMENSION, schema=SCHEMA)
+    directory.save("notes", empty.snapshot(), IDENTITY)
+    read = load(directory)
+    assert read.snapshot().n_rows == 0
+    read.replace_documents({"d001": records(1)}, revision=1)
+    empty.replace_documents({"d001": records(1)}, revision=1)
+    assert list(read.snapshot().chunk_ids) == list(empty.snapshot().chunk_ids)
+    assert np.array_equal(read.snapshot().vectors.rows, empty.snapshot().vectors.rows)

@@ -165,18 +165,23 @@ def print_restart(figures: dict[str, Any], emit: Callable[[str], None]) -> None:
         f"saved index {figures['saved_bytes'] / 2**20:.0f} MiB with a graph over "
         f"{figures['saved_graph_rows']:,} rows:"
     )
-    emit(
-        f"  ready without a saved index (built from the store)  "
-        f"{figures['rebuilt_ready_seconds']:>8.2f} s  (load average "
-        f"{figures['load_average_rebuilt']:.2f}); then graph and save "
-        f"{figures['graph_and_save_seconds']:.1f} s"
-    )
-    emit(
-        f"  ready from the saved index                          "
-        f"{figures['loaded_ready_seconds']:>8.2f} s  (load average "
-        f"{figures['load_average_loaded']:.2f}; files in the page cache)"
-    )
-    emit(
-        f"  ready from it, {figures['rewritten_documents']:,} documents caught up         "
-        f"{figures['caught_up_ready_seconds']:>8.2f} s"
-    )
+    rows = [
+        (
+            "ready without a saved index (built from the store)",
+            figures["rebuilt_ready_seconds"],
+            f"(load average {figures['load_average_rebuilt']:.2f}); then graph and save "
+            f"{figures['graph_and_save_seconds']:.1f} s",
+        ),
+        (
+            "ready from the saved index",
+            figures["loaded_ready_seconds"],
+            f"(load average {figures['load_average_loaded']:.2f}; files in the page cache)",
+        ),
+        (
+            f"ready from it, {figures['rewritten_documents']:,} documents caught up",
+            figures["caught_up_ready_seconds"],
+            "",
+        ),
+    ]
+    for label, seconds, note in rows:
+        emit(f"  {label:<52} {seconds:>8.2f} s  {note}".rstrip())

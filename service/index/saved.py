@@ -195,6 +195,10 @@ class IndexDirectory:
         _verify_files(version, manifest["files"])
         try:
             snapshot = _read_snapshot(version, manifest, schema, vectors)
+        except OSError as exc:
+            raise SavedIndexRejected(
+                "corrupt", f"its files cannot be read ({exc.strerror or exc})."
+            ) from exc
         except (ValueError, KeyError, TypeError, IndexError, RuntimeError) as exc:
             raise SavedIndexRejected("corrupt", f"its files do not fit together ({exc}).") from exc
         index = CollectionIndex.restored(snapshot, schema=schema, bm25_k1=bm25_k1, bm25_b=bm25_b)
@@ -470,6 +474,10 @@ def _verify_files(version: Path, files: Mapping[str, Mapping[str, Any]]) -> None
                 raise SavedIndexRejected("corrupt", f"its file {name} does not match its checksum.")
         except FileNotFoundError:
             raise SavedIndexRejected("corrupt", f"its file {name} is missing.") from None
+        except OSError as exc:
+            raise SavedIndexRejected(
+                "corrupt", f"its file {name} cannot be read ({exc.strerror or exc})."
+            ) from exc
 
 
 def _read_snapshot(

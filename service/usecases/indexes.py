@@ -193,7 +193,7 @@ class _Entry:
     checked_at: float
     lock: threading.Lock
     vectors: VectorIndexSettings
-    metric: Metric = "cosine"
+    metric: Metric
     # The shape last saved (or read back) and when; None until this index is saved.
     saved: _SavedShape | None = None
     saved_at: float = float("-inf")

@@ -75,20 +75,15 @@ def _chunk_hash(chunk_id: str) -> str:
     return hashlib.sha256(f"bench:{chunk_id}".encode()).hexdigest()
 
 
-def write_collection(
-    runtime: Runtime, collection: SyntheticCollection, vectors: dict[str, Any] | None = None
-) -> None:
+def write_collection(runtime: Runtime, collection: SyntheticCollection) -> None:
     """The collection made by the service with the bench's settings, then the synthetic rows
-    as its documents, chunks and stored embeddings.
-
-    ``vectors`` is the collection's vector index setting; by default exact: the in-process
-    reference is exact, and a graph built in the background would share the cores with the
-    clients (``--vector-index`` measures the graph, ``--restart`` saves and reads it).
-    """
+    as its documents, chunks and stored embeddings."""
+    # Exact vectors: the in-process reference is exact, and a graph built in the background
+    # would share the cores with the clients (``--vector-index`` measures the graph).
     spec = CollectionSpec(
         description="Synthetic bench collection",
         retrieval=BENCH_RETRIEVAL,
-        vectors=vectors or {"index": "exact"},
+        vectors={"index": "exact"},
     )
     put_collection(runtime, LOCAL_ADMIN, COLLECTION, spec)
     with runtime.transaction() as session:

@@ -24,6 +24,7 @@ import hashlib
 import itertools
 import json
 import logging
+import sys
 import threading
 import time
 from collections import Counter
@@ -776,7 +777,12 @@ def _rows_made_by(schema: Schema, analyzer: Analyzer) -> str:
 def _stored_records(
     analyzer: Analyzer, schema: Schema, rows: Sequence[tuple[DocumentRow, ChunkRow, bytes]]
 ) -> list[ChunkRecord]:
-    """Index rows from stored chunks, which ``index_rows`` gives by document, in ordinal order."""
+    """Index rows from stored chunks, which ``index_rows`` gives by document, in ordinal order.
+
+    The analyzer makes a new string for every token; all records are held until the index is
+    built, so each token is replaced by one shared copy of its term (at a million chunks the
+    copies alone would take gigabytes).
+    """
     records: list[ChunkRecord] = []
     for _, group in itertools.groupby(rows, key=lambda r: r[0].id):
         chunks = list(group)
@@ -797,6 +803,8 @@ def _stored_records(
                     vector=np.frombuffer(vector, dtype=np.float32),
                 )
             )
+            tokens = records[-1].lexical_tokens
+            tokens[:] = map(sys.intern, tokens)
     return records
 
 

@@ -23,9 +23,10 @@ from __future__ import annotations
 
 import hashlib
 import os
+import sys
 import tempfile
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -41,14 +42,18 @@ from service.bench.synthetic import (
     CHUNKS_PER_DOCUMENT,
     VOCABULARY_SIZE,
     ZIPF_EXPONENT,
+    collection_analyzer,
     document_id_of,
     term,
     unit_vectors,
     zipf_probabilities,
 )
 from service.config import Settings
+from service.index.collection_index import ChunkRecord, CollectionIndex
 from service.index.graph import VectorIndexSettings
-from service.index.saved import IndexDirectory
+from service.index.records import chunk_record
+from service.index.saved import IndexDirectory, SavedIdentity
+from service.ingest.chunking import ChunkSpan
 from service.retrieval.ranking import exact_semantic_ranking
 from service.store import repository
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
@@ -62,33 +67,38 @@ REWRITTEN_SHARE = 0.01
 SLICE_ROWS = 20_000
 
 
+def _slices(
+    size: int, dimension: int, seed: int
+) -> Iterator[tuple[int, list[str], list[int], np.ndarray]]:
+    """The collection's rows a slice at a time: (first row, texts, token counts, vectors),
+    each slice drawn from its own seeded generator."""
+    vocabulary = np.array([term(i) for i in range(VOCABULARY_SIZE)], dtype=object)
+    cdf = np.cumsum(zipf_probabilities(VOCABULARY_SIZE, ZIPF_EXPONENT))
+    cdf[-1] = 1.0
+    for first in range(0, size, SLICE_ROWS):
+        count = min(SLICE_ROWS, size - first)
+        rng = np.random.default_rng([seed, first])
+        lengths = rng.integers(CHUNK_TOKENS_MIN, CHUNK_TOKENS_MAX + 1, count)
+        ids = np.searchsorted(cdf, rng.random(int(lengths.sum())), side="right")
+        ends = np.cumsum(lengths)
+        texts = [" ".join(vocabulary[ids[e - n : e]]) for e, n in zip(ends, lengths, strict=True)]
+        yield first, texts, lengths.tolist(), unit_vectors(rng, count, dimension)
+
+
 def _write_store(runtime: Runtime, size: int, dimension: int, seed: int, vectors: Any) -> None:
-    """The collection made by the service, then its rows written straight into the store, a
-    slice at a time (each slice's texts and vectors drawn from its own seeded generator)."""
+    """The collection made by the service, then its rows written straight into the store."""
     spec = CollectionSpec(
         description="Synthetic restart bench collection",
         retrieval=BENCH_RETRIEVAL,
         vectors=vectors,
     )
     put_collection(runtime, LOCAL_ADMIN, COLLECTION, spec)
-    vocabulary = np.array([term(i) for i in range(VOCABULARY_SIZE)], dtype=object)
-    cdf = np.cumsum(zipf_probabilities(VOCABULARY_SIZE, ZIPF_EXPONENT))
-    cdf[-1] = 1.0
     with runtime.write_transaction() as session:
         row = repository.collection_by_name(session, COLLECTION)
         assert row is not None
         now = repository.utcnow()
-        for first in range(0, size, SLICE_ROWS):
-            count = min(SLICE_ROWS, size - first)
-            rng = np.random.default_rng([seed, first])
-            lengths = rng.integers(CHUNK_TOKENS_MIN, CHUNK_TOKENS_MAX + 1, count)
-            ids = np.searchsorted(cdf, rng.random(int(lengths.sum())), side="right")
-            ends = np.cumsum(lengths)
-            texts = [
-                " ".join(vocabulary[ids[e - n : e]]) for e, n in zip(ends, lengths, strict=True)
-            ]
-            vectors_of_slice = unit_vectors(rng, count, dimension)
-            _write_slice(session, row, first, texts, lengths.tolist(), vectors_of_slice, now)
+        for first, texts, lengths, vectors_of_slice in _slices(size, dimension, seed):
+            _write_slice(session, row, first, texts, lengths, vectors_of_slice, now)
         repository.bump_revision(session, row, [(None, "reset")])
 
 
@@ -274,6 +284,82 @@ def run_restart(
         finally:
             runtime.close()
     return figures
+
+
+def run_read_back(
+    size: int, *, dimension: int, seed: int, progress: Callable[[str], None]
+) -> dict[str, Any]:
+    """The read-back alone, for sizes whose build from the store does not fit in memory: the
+    same rows indexed in this process a slice at a time (no store, no graph), saved, and read
+    back as a start reads them (manifest, identity, every checksum, the arrays)."""
+    analyzer = collection_analyzer()
+    index = CollectionIndex(metric="cosine", dimension=dimension, schema={})
+    started = time.perf_counter()
+    for first, texts, lengths, vectors in _slices(size, dimension, seed):
+        batch: dict[str, list[ChunkRecord]] = {}
+        offset = 0
+        for position, text in enumerate(texts):
+            row = first + position
+            document, ordinal = divmod(row, CHUNKS_PER_DOCUMENT)
+            offset = 0 if ordinal == 0 else offset
+            record = chunk_record(
+                analyzer,
+                document_id=document_id_of(document),
+                title=f"Document {document}",
+                attributes={},
+                access=(),
+                chunk=ChunkSpan(ordinal, offset, offset + len(text), text, lengths[position], ""),
+                vector=vectors[position],
+                gap_after=" " if ordinal < CHUNKS_PER_DOCUMENT - 1 else "",
+            )
+            record.lexical_tokens[:] = map(sys.intern, record.lexical_tokens)
+            batch.setdefault(record.document_id, []).append(record)
+            offset += len(text) + 1
+        index.replace_documents(batch, revision=1)
+    figures: dict[str, Any] = {"chunks": size, "build_seconds": time.perf_counter() - started}
+    identity = SavedIdentity(
+        store_id="bench",
+        collection_id=1,
+        generation=0,
+        embedder="bench",
+        dimension=dimension,
+        metric="cosine",
+        rows_made_by="bench",
+    )
+    progress(f"{size:,} chunks indexed in {figures['build_seconds']:.1f} s; saving")
+    with tempfile.TemporaryDirectory(prefix="excerpta-bench-read-back-") as scratch:
+        directory = IndexDirectory(Path(scratch))
+        started = time.perf_counter()
+        info = directory.save(COLLECTION, index.snapshot(), identity)
+        figures["save_seconds"] = time.perf_counter() - started
+        figures["saved_bytes"] = info.bytes
+        live = index.snapshot().live_rows
+        del index
+        started = time.perf_counter()
+        read = directory.load(
+            COLLECTION,
+            identity,
+            schema={},
+            vectors=VectorIndexSettings(index="exact"),
+            bm25_k1=1.2,
+            bm25_b=0.75,
+        )
+        figures["read_back_seconds"] = time.perf_counter() - started
+        figures["load_average"] = os.getloadavg()[0]
+        if read.index.snapshot().live_rows != live:
+            raise RuntimeError("the index read back does not hold the rows saved")
+    return figures
+
+
+def print_read_back(figures: dict[str, Any], emit: Callable[[str], None]) -> None:
+    emit("")
+    emit(
+        f"read-back at {figures['chunks']:,} chunks (indexed in this process, no store, no "
+        f"graph): saved {figures['saved_bytes'] / 2**20:.0f} MiB in {figures['save_seconds']:.1f} s"
+        f" (indexing took {figures['build_seconds']:.1f} s); read back in "
+        f"{figures['read_back_seconds']:.2f} s (load average {figures['load_average']:.2f}; "
+        "files in the page cache)"
+    )
 
 
 def print_restart(figures: dict[str, Any], emit: Callable[[str], None]) -> None:

@@ -1,5 +1,5 @@
 """The ``excerpta`` command: serve, worker, ingest, jobs, keys, search, ask, explain, traces,
-eval, bench.
+index-status, eval, bench.
 
 Also migrate, demo, backup and restore.
 
@@ -31,7 +31,7 @@ SERVER_JOB_DOCUMENTS = 100
 
 def _settings(args: argparse.Namespace, **fixed: Any) -> Settings:
     overrides: dict[str, Any] = dict(fixed)
-    for name in ("data_dir", "database_url", "host", "port"):
+    for name in ("data_dir", "database_url", "index_dir", "host", "port"):
         value = getattr(args, name, None)
         if value is not None:
             overrides[name] = value
@@ -981,6 +981,56 @@ def _infer_request(options: Any) -> dict[str, object] | None:
     return dict(request) if isinstance(request, dict) else {"mode": request}
 
 
+def cmd_index_status(args: argparse.Namespace) -> int:
+    """Each collection's saved index (``EXCERPTA_INDEX_DIR``): its revision against the store's,
+    its size, and whether the next start reads it back or rebuilds the index, and why."""
+    runtime = _runtime(args)
+    try:
+        if args.collection:
+            states = [runtime.indexes.saved_state(args.collection, verify=args.verify)]
+        else:
+            states = runtime.indexes.saved_states(verify=args.verify)
+        directory = runtime.settings.resolved_index_dir()
+    finally:
+        runtime.close()
+    shown = [
+        {
+            "collection": state.collection,
+            "store_revision": state.store_revision,
+            "saved_revision": None if state.info is None else state.info.revision,
+            "rows": None if state.info is None else state.info.rows,
+            "graph_rows": None if state.info is None else state.info.graph_rows,
+            "bytes": None if state.info is None else state.info.bytes,
+            "saved_at": None if state.info is None else state.info.saved_at,
+            "at_start": "read back" if state.usable else "rebuilt",
+            "reason": state.reason,
+            "checksums_verified": args.verify,
+        }
+        for state in states
+    ]
+    if args.json:
+        _print_json({"index_dir": str(directory), "collections": shown})
+        return 0
+    print(f"saved indexes under {directory}")
+    for item in shown:
+        if item["saved_revision"] is None:
+            print(f"  {item['collection']}: none usable; rebuilt at start because {item['reason']}")
+            continue
+        behind = item["store_revision"] - item["saved_revision"]
+        line = (
+            f"  {item['collection']}: revision {item['saved_revision']} of "
+            f"{item['store_revision']} ({behind} behind), {item['rows']:,} rows, "
+            f"graph {item['graph_rows'] if item['graph_rows'] is not None else 'none'}, "
+            f"{item['bytes'] / 2**20:.1f} MiB, saved {item['saved_at']}: "
+        )
+        if item["at_start"] == "read back":
+            line += "read back at start" + (" (checksums hold)" if args.verify else "")
+        else:
+            line += f"rebuilt at start because {item['reason']}"
+        print(line)
+    return 0
+
+
 def cmd_bench(args: argparse.Namespace) -> int:
     from service.bench.command import run_bench_command
 
@@ -1038,6 +1088,9 @@ def _copy_store(args: argparse.Namespace, copy: Callable[[Any, Path], Any], done
 def _common(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--data-dir", type=Path, help="data directory (EXCERPTA_DATA_DIR)")
     parser.add_argument("--database-url", help="database URL (EXCERPTA_DATABASE_URL)")
+    parser.add_argument(
+        "--index-dir", type=Path, help="saved indexes (EXCERPTA_INDEX_DIR, <data dir>/indexes)"
+    )
 
 
 def _infer_option(
@@ -1226,6 +1279,15 @@ def build_parser() -> argparse.ArgumentParser:
     _common(restore)
     restore.add_argument("path", help="a file written by excerpta backup")
     restore.set_defaults(handler=cmd_restore)
+
+    status = commands.add_parser(
+        "index-status", help="show each collection's saved index and whether a start reads it"
+    )
+    _common(status)
+    status.add_argument("collection", nargs="?")
+    status.add_argument("--verify", action="store_true", help="also check every file's checksum")
+    status.add_argument("--json", action="store_true")
+    status.set_defaults(handler=cmd_index_status)
 
     from service.bench.command import add_bench_arguments
 

@@ -27,6 +27,11 @@ class Settings(BaseSettings):
     # model's threads wait on each other whenever another query holds a core.
     serve_model_threads: int = Field(1, ge=0, description="0 keeps torch's own default")
     compact_after_deleted_rows: int = Field(1024, ge=1)
+    # Where each collection's index is saved, to be read back at the next start instead of
+    # being built from the store; each replica keeps its own. Default: <data dir>/indexes.
+    index_dir: Path | None = None
+    # An index that only took writes since its last save is saved again this often.
+    index_save_seconds: float = Field(300.0, gt=0)
 
     # A write that loses a race against another writer is tried this many times in all, after
     # random pauses of up to write_retry_pause_seconds, doubling; then it is answered ``busy``.
@@ -84,6 +89,9 @@ class Settings(BaseSettings):
     chat_token_margin: float = Field(1.25, ge=1.0, le=4.0)
     chat_timeout_seconds: float = Field(30.0, gt=0)
     chat_max_retries: int = Field(2, ge=0, le=10)
+
+    def resolved_index_dir(self) -> Path:
+        return self.index_dir if self.index_dir is not None else self.data_dir / "indexes"
 
     def resolved_database_url(self) -> str:
         if self.database_url:

@@ -41,6 +41,7 @@ from service.index.graph import (
     DEFAULT_MAX_SEARCH_BREADTH,
     DEFAULT_SEARCH_BREADTH,
     GraphSettings,
+    IndexMode,
     VectorIndexSettings,
 )
 
@@ -106,6 +107,17 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--graph-search-breadth", type=_positive, default=DEFAULT_SEARCH_BREADTH)
     parser.add_argument(
         "--graph-max-search-breadth", type=_positive, default=DEFAULT_MAX_SEARCH_BREADTH
+    )
+    parser.add_argument(
+        "--restart",
+        action="store_true",
+        help="time a start from a saved index against one that builds the index from the store",
+    )
+    parser.add_argument(
+        "--read-back-only",
+        action="store_true",
+        help="with --restart: index in this process instead (no store, no graph) and time only"
+        " the saved index's read-back, for sizes whose build from the store does not fit",
     )
     parser.add_argument(
         "--http",
@@ -184,7 +196,7 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
     """Run what ``args`` ask for, print it, and return every figure."""
     if args.with_ingest and not args.http:
         raise ValueError("--with-ingest goes with --http")
-    if not args.http and not args.answering and not args.ingest_throughput:
+    if not args.http and not args.answering and not args.ingest_throughput and not args.restart:
         require_reference_libraries()
     info = machine()
     print_machine(info, print)
@@ -212,6 +224,9 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
         results["answering"] = answering
     if args.vector_index:
         results["vector_index"] = _run_vector_index(args)
+        return results
+    if args.restart:
+        results["restart"] = _run_restart(args)
         return results
     sources = args.ingest_source or [Path("corpus_example/documents")]
     if args.ingest_throughput:
@@ -297,11 +312,9 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
     return results
 
 
-def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
-    from service.bench.vector_index import model_centres, print_vector_index, run_vector_index
-
-    settings = VectorIndexSettings(
-        index="auto",
+def _graph_settings(args: argparse.Namespace, index: IndexMode) -> VectorIndexSettings:
+    return VectorIndexSettings(
+        index=index,
         graph=GraphSettings(
             links=args.graph_links,
             build_breadth=args.graph_build_breadth,
@@ -309,6 +322,35 @@ def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
             max_search_breadth=args.graph_max_search_breadth,
         ),
     )
+
+
+def _run_restart(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.restart import print_read_back, print_restart, run_read_back, run_restart
+
+    figures = []
+    for size in args.chunks:
+        if args.read_back_only:
+            read_back = run_read_back(size, dimension=args.dims, seed=args.seed, progress=_progress)
+            print_read_back(read_back, print)
+            figures.append(read_back)
+            continue
+        result = run_restart(
+            size,
+            dimension=args.dims,
+            seed=args.seed,
+            vectors=_graph_settings(args, "graph"),
+            progress=_progress,
+        )
+        print_restart(result, print)
+        sys.stdout.flush()
+        figures.append(result)
+    return figures
+
+
+def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.vector_index import model_centres, print_vector_index, run_vector_index
+
+    settings = _graph_settings(args, "auto")
     _progress("embedding the corpus paragraphs (cluster centres)")
     centres = model_centres()
     figures = []

@@ -308,7 +308,7 @@ class _RowLists:
         return {name: RowPrefix(items, length) for name, items in self.lists.items()}
 
 
-_NUMERIC_FIELDS: tuple[tuple[str, str, type], ...] = (
+NUMERIC_FIELDS: tuple[tuple[str, str, type], ...] = (
     ("ordinals", "ordinal", np.int32),
     ("char_starts", "char_start", np.int64),
     ("char_ends", "char_end", np.int64),
@@ -359,7 +359,7 @@ class CollectionIndex:
             access=AccessGroups.empty(),
             documents={},
             sorted_chunk_ids=[],
-            numeric_buffers={name: np.zeros(0, dtype) for name, _, dtype in _NUMERIC_FIELDS},
+            numeric_buffers={name: np.zeros(0, dtype) for name, _, dtype in NUMERIC_FIELDS},
         )
 
     @classmethod
@@ -383,9 +383,35 @@ class CollectionIndex:
         index.replace_documents(by_document, revision=revision)
         return index
 
+    @classmethod
+    def restored(
+        cls,
+        snapshot: IndexSnapshot,
+        *,
+        schema: Schema | None,
+        bm25_k1: float = DEFAULT_K1,
+        bm25_b: float = DEFAULT_B,
+    ) -> CollectionIndex:
+        """An index whose current state is ``snapshot`` (one read back from files)."""
+        index = cls(
+            metric=snapshot.vectors.metric,
+            dimension=snapshot.vectors.dimension,
+            schema=schema,
+            bm25_k1=bm25_k1,
+            bm25_b=bm25_b,
+        )
+        snapshot.lexical.warm(k1=bm25_k1, b=bm25_b)
+        index._snapshot = snapshot
+        return index
+
     def snapshot(self) -> IndexSnapshot:
         """The current state; hold on to it for the whole query."""
         return self._snapshot
+
+    @property
+    def layout(self) -> int:
+        """Which numbering of the rows the current state has; a compaction changes it."""
+        return self._layout
 
     @property
     def revision(self) -> int:
@@ -465,7 +491,7 @@ class CollectionIndex:
         kept_keys = current.sort_keys[kept]
         key_order = np.sort(kept_keys)
         numeric: dict[str, Any] = {
-            name: getattr(current, name)[kept] for name, _, _ in _NUMERIC_FIELDS
+            name: getattr(current, name)[kept] for name, _, _ in NUMERIC_FIELDS
         }
         lists = {
             name: [items[row] for row in kept.tolist()]
@@ -488,7 +514,7 @@ class CollectionIndex:
                 for d, entry in current.documents.items()
             },
             sorted_chunk_ids=[current.sorted_chunk_ids[k] for k in key_order.tolist()],
-            numeric_buffers={name: numeric[name] for name, _, _ in _NUMERIC_FIELDS},
+            numeric_buffers={name: numeric[name] for name, _, _ in NUMERIC_FIELDS},
         )
         return remap
 
@@ -529,7 +555,7 @@ class CollectionIndex:
                 n_old,
                 np.array([getattr(r, attribute) for r in records], dtype=dtype),
             )
-            for name, attribute, dtype in _NUMERIC_FIELDS
+            for name, attribute, dtype in NUMERIC_FIELDS
         }
 
         return IndexSnapshot(

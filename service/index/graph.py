@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Literal
 
 import faiss
@@ -128,8 +129,11 @@ class VectorGraph:
         *,
         layout: int,
         always: bool,
+        storage: faiss.IndexFlat | None = None,
     ) -> None:
         self._index = index
+        # A storage given here is the graph's, kept alive by it (faiss does not own it).
+        self._storage = storage
         self._rows = rows
         self.settings = settings
         self.layout = layout
@@ -148,6 +152,50 @@ class VectorGraph:
             index.add(np.ascontiguousarray(rows))
         graph = cls(index, rows, settings.graph, layout=layout, always=settings.index == "graph")
         graph._view_rows(rows)
+        return graph
+
+    def write(self, path: Path) -> None:
+        """Write the graph's links to ``path`` without its rows (they are the matrix's)."""
+        faiss.write_index(self._index, str(path), faiss.IO_FLAG_SKIP_STORAGE)
+
+    @classmethod
+    def read(
+        cls,
+        path: Path,
+        matrix: VectorMatrix,
+        settings: VectorIndexSettings,
+        *,
+        rows: int,
+        layout: int,
+    ) -> VectorGraph:
+        """A graph ``write`` wrote, over the first ``rows`` rows of ``matrix``, read in place.
+
+        The file must be one this process can trust (its checksum checked): faiss reads it
+        without checking it. Raises ``ValueError`` when it is not a graph over those rows.
+        """
+        index = faiss.read_index(str(path), faiss.IO_FLAG_SKIP_STORAGE)
+        metric = faiss.METRIC_L2 if matrix.metric == "euclidean" else faiss.METRIC_INNER_PRODUCT
+        if (
+            not isinstance(index, faiss.IndexHNSWFlat)
+            or index.d != matrix.dimension
+            or index.metric_type != metric
+            or index.ntotal != rows
+            or rows > matrix.n_rows
+        ):
+            raise ValueError("the saved graph does not fit the saved vectors")
+        storage = faiss.IndexFlat(matrix.dimension, metric)
+        index.own_fields = False
+        index.storage = storage
+        graph = cls(
+            index,
+            matrix.rows[:rows],
+            settings.graph,
+            layout=layout,
+            always=settings.index == "graph",
+            storage=storage,
+        )
+        graph._view_rows(np.ascontiguousarray(matrix.rows[:rows]))
+        storage.ntotal = rows
         return graph
 
     def _view_rows(self, rows: np.ndarray) -> None:

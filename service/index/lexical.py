@@ -57,6 +57,27 @@ class LexicalScoring:
     epsilon: float = DEFAULT_EPSILON
 
 
+@dataclass(frozen=True)
+class LexicalParts:
+    """What a ``LexicalIndex`` is made of, as plain values and arrays, for saving it to files
+    and reading it back (``LexicalIndex.parts`` and ``LexicalIndex.from_parts``).
+
+    ``segments`` holds ``(first_row, rows, columns)`` per segment; ``segment_arrays`` each
+    segment's CSC ``(data, indices, indptr)``. ``live_length`` is kept as summed, so scores
+    read back are those of the saved index to the last bit.
+    """
+
+    terms: list[str]
+    segments: list[tuple[int, int, int]]
+    segment_arrays: list[tuple[np.ndarray, np.ndarray, np.ndarray]]
+    row_indptr: np.ndarray
+    row_terms: np.ndarray
+    lengths: np.ndarray
+    live: np.ndarray
+    document_frequency: np.ndarray
+    live_length: float
+
+
 # A new segment is merged into the one before it while that one holds fewer than this many times
 # its rows, which keeps about log_4(rows) segments.
 _SEGMENT_RATIO = 4
@@ -190,6 +211,64 @@ class LexicalIndex:
         if term_id is None or term_id >= self._vocabulary_size:
             return None
         return term_id
+
+    # -- saving ----------------------------------------------------------------------------
+
+    def parts(self) -> LexicalParts:
+        # ``terms`` may have grown past this version; its first ids are this version's.
+        terms = list(self._terms)[: self._vocabulary_size]
+        return LexicalParts(
+            terms=terms,
+            segments=[(s.first_row, s.rows, int(s.csc.shape[1])) for s in self._segments],
+            segment_arrays=[(s.csc.data, s.csc.indices, s.csc.indptr) for s in self._segments],
+            row_indptr=self._row_indptr[: self._n_rows + 1],
+            row_terms=self._row_terms[: self._nnz],
+            lengths=self.lengths,
+            live=self._live,
+            document_frequency=self._df[: self._vocabulary_size],
+            live_length=self._live_length,
+        )
+
+    @classmethod
+    def from_parts(cls, parts: LexicalParts) -> LexicalIndex:
+        """The index ``parts`` describe; raises ``ValueError`` when they do not fit together."""
+        n_rows = len(parts.lengths)
+        vocabulary_size = len(parts.terms)
+        terms = {term: term_id for term_id, term in enumerate(parts.terms)}
+        if len(terms) != vocabulary_size:
+            raise ValueError("a term appears twice")
+        if parts.row_indptr.shape != (n_rows + 1,) or parts.live.shape != (n_rows,):
+            raise ValueError("the per-row arrays disagree on the number of rows")
+        if parts.document_frequency.shape != (vocabulary_size,):
+            raise ValueError("the document frequencies do not cover the terms")
+        if int(parts.row_indptr[-1]) != len(parts.row_terms):
+            raise ValueError("the row-major term ids do not fit their offsets")
+        segments = []
+        expected_first = 0
+        for (first_row, rows, columns), (data, indices, indptr) in zip(
+            parts.segments, parts.segment_arrays, strict=True
+        ):
+            if first_row != expected_first or columns > vocabulary_size:
+                raise ValueError("the postings' segments do not follow each other")
+            csc = sp.csc_array((data, indices, indptr), shape=(rows, columns))
+            csc.check_format(full_check=True)
+            segments.append(_Segment(first_row, _as_csc(csc)))
+            expected_first += rows
+        if expected_first != n_rows:
+            raise ValueError("the postings' segments do not cover every row")
+        return cls(
+            terms=terms,
+            vocabulary_size=vocabulary_size,
+            segments=tuple(segments),
+            row_indptr=parts.row_indptr.astype(np.int64, copy=False),
+            row_terms=parts.row_terms.astype(np.int32, copy=False),
+            lengths=parts.lengths.astype(np.float32, copy=False),
+            n_rows=n_rows,
+            live=parts.live.astype(bool, copy=False),
+            document_frequency=parts.document_frequency.astype(np.int64, copy=False),
+            live_rows=int(np.count_nonzero(parts.live)),
+            live_length=float(parts.live_length),
+        )
 
     # -- writes ----------------------------------------------------------------------------
 

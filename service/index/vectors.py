@@ -119,6 +119,39 @@ class VectorMatrix:
     def nbytes(self) -> int:
         return int(self._buffer.nbytes + self._squared_norms.nbytes)
 
+    @property
+    def padded_rows(self) -> np.ndarray:
+        """The rows with the padding every product reads (to a multiple of ``ROW_BLOCK``)."""
+        view = self._buffer[: round_up(self._n_rows, ROW_BLOCK)].view()
+        view.flags.writeable = False
+        return view
+
+    @property
+    def squared_norms(self) -> np.ndarray:
+        return self._squared_norms[: self._n_rows]
+
+    @classmethod
+    def restored(
+        cls, padded_rows: np.ndarray, squared_norms: np.ndarray, *, metric: Metric, dimension: int
+    ) -> VectorMatrix:
+        """A matrix over rows saved from ``padded_rows`` and ``squared_norms`` (taken as they
+        are, so rows mapped from a file stay there); raises ``ValueError`` when they do not fit.
+        """
+        n_rows = len(squared_norms)
+        if metric not in METRICS:
+            raise ValueError(f"unknown metric {metric!r}")
+        if padded_rows.shape != (round_up(n_rows, ROW_BLOCK), dimension):
+            raise ValueError("the saved vectors do not have the index's shape")
+        if padded_rows.dtype != np.float32 or squared_norms.dtype != np.float32:
+            raise ValueError("the saved vectors are not float32")
+        return cls(
+            metric=metric,
+            dimension=dimension,
+            buffer=padded_rows,
+            squared_norms=squared_norms,
+            n_rows=n_rows,
+        )
+
     def append(self, vectors: np.ndarray) -> VectorMatrix:
         """A new version with ``vectors`` (one per row) after the existing rows."""
         vectors = np.asarray(vectors, dtype=np.float32).reshape(-1, self.dimension)

@@ -12,7 +12,8 @@ def readiness(runtime: Runtime) -> str | None:
     The store must be the one this server started with (its id, and for SQLite its file), and a
     SQLite store's disk must have room. After a storage failure (a full disk, a read-only store,
     failing I/O) the server stays unready until a write succeeds again; the probe tries one, a
-    single-row update.
+    single-row update. Then every collection's index must be loaded: read back from its saved
+    copy, or built from the store when that copy is missing, corrupt or foreign.
     """
     if runtime.embedder.dimensions <= 0:
         return "The embedder is not loaded."
@@ -31,4 +32,4 @@ def readiness(runtime: Runtime) -> str | None:
         return exc.message
     except Busy:
         return store.failure
-    return None
+    return runtime.indexes.not_ready()

@@ -70,6 +70,8 @@ class HeldState:
     traces_waiting: Callable[[], int]
     traces_dropped: Callable[[], int]
     store_errors: Callable[[], Mapping[str, int]]
+    index_starts: Callable[[], Mapping[tuple[str, str], int]]
+    index_saves: Callable[[], Mapping[str, int]]
 
 
 class ServiceMetrics:
@@ -254,3 +256,22 @@ class _HeldStateCollector(Collector):
         for kind, count in sorted(self._held.store_errors().items()):
             errors.add_metric([kind], count)
         yield errors
+        starts = CounterMetricFamily(
+            "excerpta_index_starts",
+            "Collection indexes made ready since the start: read back from a saved index "
+            "(loaded, or caught_up with the change log) or rebuilt from the store, with the "
+            "kind of reason the saved one was not used (missing, corrupt, format, foreign, "
+            "outdated).",
+            labels=["outcome", "reason"],
+        )
+        for (outcome, reason), count in sorted(self._held.index_starts().items()):
+            starts.add_metric([outcome, reason], count)
+        yield starts
+        saves = CounterMetricFamily(
+            "excerpta_index_saves",
+            "Collection indexes written to the index directory, by outcome (saved, failed).",
+            labels=["outcome"],
+        )
+        for outcome, count in sorted(self._held.index_saves().items()):
+            saves.add_metric([outcome], count)
+        yield saves

@@ -18,12 +18,13 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.config import Settings
 from service.embedding.base import Embedder
 from service.embedding.query_cache import CachedQueryEmbedder
+from service.index.saved import IndexDirectory
 from service.store.db import make_engine, migrate, session_factory
 from service.store.identity import StoreGuard
 from service.store.repository import KeyReader
 from service.store.transactions import Transactions
 from service.usecases.generators import GeneratorRegistry
-from service.usecases.indexes import IndexRegistry, StoreIndexSource
+from service.usecases.indexes import IndexRegistry, SavedIndexes, StoreIndexSource
 from service.usecases.job_queues import JobQueue, RunHere
 from service.usecases.metrics import HeldState, ServiceMetrics
 from service.usecases.rebuild import RebuildWorker, pending_rebuilds, rebuild_batch
@@ -61,6 +62,14 @@ class Runtime:
             dimensions=embedder.dimensions,
             poll_seconds=settings.index_poll_ms / 1000.0,
             compact_after=settings.compact_after_deleted_rows,
+            saved=None
+            if self.store.store_id is None
+            else SavedIndexes(
+                directory=IndexDirectory(settings.resolved_index_dir()),
+                store_id=self.store.store_id,
+                embedder=embedder.name,
+                every_seconds=settings.index_save_seconds,
+            ),
         )
         self.rebuilds = RebuildWorker(
             step=partial(rebuild_batch, self.transactions, self.retries, embedder),
@@ -83,6 +92,8 @@ class Runtime:
                 traces_waiting=self.traces.waiting,
                 traces_dropped=self.traces.dropped,
                 store_errors=self.store.errors,
+                index_starts=self.indexes.start_counts,
+                index_saves=self.indexes.save_counts,
             )
         )
 

@@ -88,6 +88,8 @@ def test_the_exposition_parses_and_names_every_family(stocked: Api) -> None:
         "excerpta_trace_writer_waiting": "gauge",
         "excerpta_trace_writer_dropped": "counter",
         "excerpta_store_errors": "counter",
+        "excerpta_index_starts": "counter",
+        "excerpta_index_saves": "counter",
     }
 
 

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import time
 from dataclasses import replace
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -19,9 +21,16 @@ from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord
 from service.index.graph import GraphSettings, VectorIndexSettings
 from service.index.lexical import LexicalScoring
+from service.index.saved import IndexDirectory
 from service.index.view import CollectionFacts, IndexView
 from service.usecases.drafts import ChunkDraft, MaterialisedDocument, PreparedDocument
-from service.usecases.indexes import CollectionUpdate, IndexRegistry, LoadedCollection
+from service.usecases.indexes import (
+    CollectionHeader,
+    CollectionUpdate,
+    IndexRegistry,
+    LoadedCollection,
+    SavedIndexes,
+)
 from tests.unit.test_index_collection import DIMENSION, chunk
 
 SCHEMA = {"model": AttributeType.KEYWORD}
@@ -58,6 +67,14 @@ class FakeSource:
             raise CollectionNotFound(f"Collection {name!r} does not exist.")
         return self.collections[name]
 
+    def describe(self, name: str) -> CollectionHeader:
+        if name not in self.collections:
+            raise CollectionNotFound(f"Collection {name!r} does not exist.")
+        return self.collections[name].header
+
+    def names(self) -> list[str]:
+        return sorted(self.collections)
+
     def update(
         self,
         collection_id: int,
@@ -84,7 +101,7 @@ def source() -> FakeSource:
     return source
 
 
-def registry(source: FakeSource, poll_seconds: float = 0.0, **options: float) -> IndexRegistry:
+def registry(source: FakeSource, poll_seconds: float = 0.0, **options: Any) -> IndexRegistry:
     return IndexRegistry(
         source,
         dimensions=DIMENSION,
@@ -288,3 +305,48 @@ def test_maintenance_drops_the_graph_of_a_collection_that_no_longer_wants_one(
     indexes.maintain()
     assert indexes.view("bikes").snapshot.graph is None
     assert live_chunks(view) == ["ridge#0000", "ridge#0001"]
+
+
+def saving(folder: Path, every_seconds: float = 300.0) -> SavedIndexes:
+    return SavedIndexes(
+        directory=IndexDirectory(folder),
+        store_id="store-a",
+        embedder="test",
+        every_seconds=every_seconds,
+    )
+
+
+def test_a_built_index_is_saved_once_and_again_when_writes_are_due(
+    source: FakeSource, tmp_path: Path
+) -> None:
+    indexes = registry(source, poll_seconds=3600, saved=saving(tmp_path, every_seconds=3600))
+    indexes.view("bikes")
+    assert indexes.start_counts() == {("rebuilt", "missing"): 1}
+    indexes.maintain()
+    indexes.maintain()
+    assert indexes.save_counts() == {"saved": 1}
+    indexes.after_write("bikes", 2, {"haul": material("haul", ["rack"])})
+    indexes.maintain()
+    # A write alone waits for every_seconds; a compaction is saved at once.
+    assert indexes.save_counts() == {"saved": 1}
+    compacting = registry(source, poll_seconds=3600, compact_after=1, saved=saving(tmp_path))
+    compacting.view("bikes")
+    assert compacting.start_counts() == {("loaded", ""): 1}
+    compacting.after_write("bikes", 2, {"ridge": None})
+    compacting.maintain()
+    assert compacting.view("bikes").snapshot.tombstoned_rows == 0
+    assert compacting.save_counts() == {"saved": 1}
+    assert IndexDirectory(tmp_path).describe("bikes").revision == 2
+
+
+def test_a_save_that_fails_is_counted_and_the_index_keeps_serving(
+    source: FakeSource, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    blocked = tmp_path / "not-a-directory"
+    blocked.write_text("a file where the index directory should be")
+    indexes = registry(source, poll_seconds=3600, saved=saving(blocked))
+    indexes.view("bikes")
+    indexes.maintain()
+    assert indexes.save_counts() == {"failed": 1}
+    assert "saving it failed" in caplog.text
+    assert live_chunks(indexes.view("bikes")) == ["ridge#0000", "ridge#0001"]

@@ -40,6 +40,7 @@ def record(chunk: int, document: str) -> ChunkRecord:
 def test_held_state_is_read_at_each_scrape_and_never_cached() -> None:
     waiting = [3]
     errors = {"lost_race": 2}
+    starts = {("loaded", ""): 1}
     metrics = ServiceMetrics()
     metrics.watch(
         HeldState(
@@ -47,17 +48,24 @@ def test_held_state_is_read_at_each_scrape_and_never_cached() -> None:
             traces_waiting=lambda: waiting[0],
             traces_dropped=lambda: 1,
             store_errors=lambda: errors,
+            index_starts=lambda: starts,
+            index_saves=lambda: {"saved": 2},
         )
     )
     first = samples(metrics)
     assert first[("excerpta_trace_writer_waiting", ())] == 3
     assert first[("excerpta_trace_writer_dropped_total", ())] == 1
     assert first[("excerpta_store_errors_total", (("kind", "lost_race"),))] == 2
+    assert first[("excerpta_index_starts_total", (("outcome", "loaded"), ("reason", "")))] == 1
+    assert first[("excerpta_index_saves_total", (("outcome", "saved"),))] == 2
     waiting[0] = 0
     errors["unavailable"] = 1
+    starts[("rebuilt", "corrupt")] = 1
     second = samples(metrics)
     assert second[("excerpta_trace_writer_waiting", ())] == 0
     assert second[("excerpta_store_errors_total", (("kind", "unavailable"),))] == 1
+    rebuilt = (("outcome", "rebuilt"), ("reason", "corrupt"))
+    assert second[("excerpta_index_starts_total", rebuilt)] == 1
 
 
 def test_index_rows_documents_and_bytes_are_those_of_each_collections_snapshot() -> None:
@@ -75,6 +83,8 @@ def test_index_rows_documents_and_bytes_are_those_of_each_collections_snapshot()
             traces_waiting=lambda: 0,
             traces_dropped=lambda: 0,
             store_errors=dict,
+            index_starts=dict,
+            index_saves=dict,
         )
     )
     found = samples(metrics)

@@ -24,11 +24,11 @@ import numpy as np
 from service.attributes import AttributeValue, Schema, normalize_value, parse_schema
 from service.errors import CollectionNotFound
 from service.filters.inference.hints import AttributeHints, stored_hints
-from service.index.analyzer import Analyzer, english_stopwords
+from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord, CollectionIndex, IndexSnapshot
 from service.index.document_text import gaps_between
 from service.index.graph import GraphSettings, VectorIndexSettings
-from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
+from service.index.lexical import LexicalScoring
 from service.index.records import chunk_record
 from service.index.vectors import Metric
 from service.index.view import CollectionFacts, IndexView
@@ -36,6 +36,7 @@ from service.store import repository
 from service.store.tables import ChunkRow, DocumentRow
 from service.store.transactions import Transactions
 from service.usecases.drafts import MaterialisedDocument
+from service.usecases.retrieval_settings import analyzer_for, lexical_scoring, ranking_settings
 
 log = logging.getLogger("excerpta.index")
 
@@ -44,13 +45,6 @@ def vector_settings(stored: Mapping[str, Any]) -> VectorIndexSettings:
     """A collection's stored ``vectors`` settings (checked when they were put)."""
     return VectorIndexSettings(
         index=stored.get("index", "auto"), graph=GraphSettings(**stored.get("graph", {}))
-    )
-
-
-def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
-    return Analyzer(
-        english_stopwords() if retrieval.get("stopwords", True) else None,
-        "english" if retrieval.get("stemming", True) else None,
     )
 
 
@@ -348,14 +342,11 @@ class StoreIndexSource:
                     cite_attributes=tuple(row.cite_attributes),
                     answer_caution=row.answer_caution,
                     inference_hints=stored_hints(schema, row.settings),
+                    ranking=ranking_settings(retrieval),
                 ),
                 generation=row.chunk_generation,
                 revision=row.revision,
-                scoring=LexicalScoring(
-                    k1=float(retrieval.get("k1", DEFAULT_K1)),
-                    b=float(retrieval.get("b", DEFAULT_B)),
-                    variant=cast(Bm25Variant, retrieval.get("bm25", "smoothed")),
-                ),
+                scoring=lexical_scoring(retrieval),
                 metric=cast(Metric, retrieval.get("metric", "cosine")),
                 analyzer=analyzer,
                 records=_stored_records(analyzer, schema, rows),

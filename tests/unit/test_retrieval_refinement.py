@@ -231,8 +231,9 @@ def test_every_hybrid_step_is_a_stage_of_the_trace_with_its_notes() -> None:
     ]
     feedback = result.stages[2].notes
     assert feedback["chunks"] == 2
-    assert [entry["term"] for entry in feedback["terms"]][0] == "wing"  # type: ignore[index]
-    assert "flutter" in [entry["term"] for entry in feedback["terms"]]  # type: ignore[union-attr]
+    terms = [entry["term"] for entry in feedback["terms"]]  # type: ignore[attr-defined]
+    assert terms[0] == "wing"
+    assert "flutter" in terms
     # The expanded query reaches the chunk without the query's own term.
     assert "d3#0000" in [entry.chunk_id for entry in result.stages[2].top]
     assert result.stages[4].notes == {"chunks": 2, "weight": 0.5}

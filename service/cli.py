@@ -1,5 +1,5 @@
 """The ``excerpta`` command: serve, worker, ingest, jobs, keys, search, ask, explain, traces,
-index-status, eval, bench.
+index-status, eval, tune, bench.
 
 Also migrate, demo, backup and restore.
 
@@ -877,7 +877,9 @@ def cmd_eval(args: argparse.Namespace) -> int:
         sources = ("labelled", "inferred", "none") if args.infer_filter.mode == "apply" else ()
         systems = systems_from_options(args.modes.split(","), set_options, sources or ("labelled",))
         if args.url and any(name in set_options for name in SERVER_ONLY_SETTINGS):
-            raise ValueError("--set k1 and b work only on the store directly, not with --url")
+            raise ValueError(
+                "--set of settings other than rrf_k works only on the store, not with --url"
+            )
     except ValueError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
@@ -970,6 +972,88 @@ def _evaluate_answers(args: argparse.Namespace) -> int:
             else f"{interval.mean:.4f} [{interval.low:.4f}, {interval.high:.4f}]"
         )
         print(f"  {name}: {shown}")
+    return 0
+
+
+DEFAULT_TUNING_GRID = "k1=0.9,1.2,1.5,b=0.5,0.75,semantic_weight=0.4,0.5,0.6"
+
+
+def _grid_options(values: list[str]) -> dict[str, list[str]]:
+    """``--grid k1=0.9,1.2,b=0.5,0.75`` (or one ``--grid`` per setting): a word with ``=``
+    names a setting and its first value, a word without one is another value of it."""
+    options: dict[str, list[str]] = {}
+    for value in values:
+        name = None
+        for word in (w.strip() for w in value.split(",")):
+            if "=" in word:
+                name, _, first = word.partition("=")
+                name = name.strip()
+                if not name or name in options:
+                    raise ValueError(f"--grid names {name or 'no setting'!r} twice or not at all")
+                options[name] = [first.strip()] if first.strip() else []
+            elif name is None:
+                raise ValueError(f"--grid takes NAME=V1,V2,NAME=V1,..., not {value!r}")
+            elif word:
+                options[name].append(word)
+    return options
+
+
+def cmd_tune(args: argparse.Namespace) -> int:
+    """Choose ranking settings by cross-validation on labelled queries; apply them only with
+    --apply and only when the held-out gain is significant."""
+    from service.evaluation.inputs import read_qrels, read_queries
+    from service.evaluation.tuning import candidates_from_grid
+    from service.evaluation.tuning_report import write_tuning_report
+    from service.usecases.evaluate import MAX_CHUNKS
+    from service.usecases.tune import tune_collection
+
+    try:
+        queries = read_queries(args.queries)
+        qrels = read_qrels(args.qrels)
+        candidates = candidates_from_grid(_grid_options(args.grid or [DEFAULT_TUNING_GRID]))
+        if args.folds < 2:
+            raise ValueError("--folds must be at least 2")
+    except ValueError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    runtime = _runtime(args, max_top_k=MAX_CHUNKS, max_depth=MAX_CHUNKS)
+    try:
+        outcome = tune_collection(
+            runtime,
+            args.collection,
+            queries,
+            qrels,
+            candidates,
+            folds=args.folds,
+            apply=args.apply,
+            progress=not args.no_progress,
+        )
+    except ValueError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    finally:
+        runtime.close()
+    result = outcome.result
+    files = write_tuning_report(
+        result,
+        Path(args.out),
+        collection=args.collection,
+        settings_before=outcome.settings_before,
+        applied=outcome.applied,
+    )
+    gain = result.difference_interval
+    print(f"report written to {files.report}")
+    print(
+        f"  current {result.current_interval.mean:.4f}, tuned (held out)"
+        f" {result.tuned_interval.mean:.4f}, difference {gain.mean:+.4f}"
+        f" [{gain.low:+.4f}, {gain.high:+.4f}], p = {result.p_value:.4f}"
+    )
+    print(f"  best over every query: {result.chosen.label}")
+    print(f"  {result.verdict()}")
+    if outcome.applied:
+        print(f"  applied to {args.collection}")
+    elif args.apply:
+        print("  nothing applied")
     return 0
 
 
@@ -1262,13 +1346,40 @@ def build_parser() -> argparse.ArgumentParser:
         " apply also ranks with the inferred filters and with none",
     )
     evaluate.add_argument(
-        "--set", action="append", default=[], metavar="NAME=V1,V2", help="vary rrf_k, k1 or b"
+        "--set",
+        action="append",
+        default=[],
+        metavar="NAME=V1,V2",
+        help="vary rrf_k, k1, b or a hybrid step's setting",
     )
     evaluate.add_argument("--out", default="eval-report", help="directory for the report")
     evaluate.add_argument("--url", help="evaluate through a running server instead of the store")
     evaluate.add_argument("--key", help="API key for --url (or EXCERPTA_KEY)")
     evaluate.add_argument("--no-progress", action="store_true")
     evaluate.set_defaults(handler=cmd_eval)
+
+    tune = commands.add_parser(
+        "tune", help="choose ranking settings by cross-validation on labelled queries"
+    )
+    _common(tune)
+    tune.add_argument("collection")
+    tune.add_argument("--queries", required=True, help="TSV (qid<TAB>text) or JSONL")
+    tune.add_argument("--qrels", required=True, help="TREC qrels: qid 0 docid grade")
+    tune.add_argument(
+        "--grid",
+        action="append",
+        metavar="NAME=V1,V2,NAME=V1,...",
+        help=f"settings to try (default {DEFAULT_TUNING_GRID})",
+    )
+    tune.add_argument("--folds", type=int, default=5)
+    tune.add_argument(
+        "--apply",
+        action="store_true",
+        help="apply the best settings when the held-out gain is significant at 0.05",
+    )
+    tune.add_argument("--out", default="tune-report", help="directory for the report")
+    tune.add_argument("--no-progress", action="store_true")
+    tune.set_defaults(handler=cmd_tune)
 
     backup = commands.add_parser("backup", help="copy the store to a new file, even while serving")
     _common(backup)

@@ -23,6 +23,7 @@ from tests.hashing_embedder import HashingTestEmbedder
 
 REPO = Path(__file__).resolve().parents[1]
 CRANFIELD_DIR = REPO.parent / "shared" / "data" / "cranfield"
+MED_DIR = REPO.parent / "shared" / "data" / "med"
 IN_CI = os.environ.get("CI") == "true"
 
 
@@ -128,3 +129,9 @@ def minilm() -> Any:
 def cranfield_dir() -> Path:
     need(CRANFIELD_DIR.is_dir(), f"no Cranfield data at {CRANFIELD_DIR}")
     return CRANFIELD_DIR
+
+
+@pytest.fixture(scope="session")
+def med_dir() -> Path:
+    need(MED_DIR.is_dir(), f"no MED data at {MED_DIR}")
+    return MED_DIR

@@ -65,6 +65,37 @@ class RetrievalSettingsIn(Strict):
     metric: Literal["cosine", "dot", "euclidean"] | None = None
     stemming: bool | None = None
     stopwords: bool | None = None
+    title_weight: int | None = Field(
+        None, description="How many times a title's terms count in BM25 (BM25F); 1 to 5"
+    )
+    section_weight: int | None = Field(
+        None, description="How many times a section path's terms count in BM25 (BM25F); 1 to 5"
+    )
+    lexical_feedback_chunks: int | None = Field(
+        None, description="Hybrid: top lexical chunks the query is expanded from (RM3); 0: off"
+    )
+    lexical_feedback_terms: int | None = Field(None, description="Expansion terms kept (RM3)")
+    lexical_feedback_query_weight: float | None = Field(
+        None, description="The original query's share of the expanded query (RM3), 0 to 1"
+    )
+    semantic_feedback_chunks: int | None = Field(
+        None, description="Hybrid: top semantic chunks added to the query vector (Rocchio); 0: off"
+    )
+    semantic_feedback_weight: float | None = Field(
+        None, description="Weight of their mean vector (Rocchio), 0 to 4"
+    )
+    fusion: Literal["rrf", "min_max", "z_score"] | None = Field(
+        None, description="Hybrid fusion: reciprocal rank fusion or normalised score fusion"
+    )
+    rrf_k: int | None = Field(
+        None, description="Reciprocal rank fusion's k for requests without one"
+    )
+    semantic_weight: float | None = Field(
+        None, description="The semantic ranking's share of the fusion, 0 to 1 (0.5: even)"
+    )
+    second_chunk_weight: float | None = Field(
+        None, description="Share of a document's second chunk added to its best, 0 to 1; 0: off"
+    )
 
 
 class GraphSettingsIn(Strict):
@@ -303,7 +334,12 @@ class SearchIn(Strict):
     time_window: TimeWindowIn | None = None
     top_k: Count = Field(10, ge=1)
     mode: Literal["hybrid", "lexical", "semantic"] = "hybrid"
-    rrf_k: Count = Field(60, ge=1, le=10_000)
+    rrf_k: Count | None = Field(
+        None,
+        ge=1,
+        le=10_000,
+        description="Reciprocal rank fusion's k; the collection's (60 unless set)",
+    )
     depth: Count = Field(100, ge=1)
     query_vector: list[float] | None = None
     infer_filter: InferMode | InferFilterIn = Field(

@@ -19,6 +19,7 @@ import gc
 import os
 import time
 from collections.abc import Callable, Sequence
+from dataclasses import asdict
 from functools import partial
 from typing import Any
 
@@ -55,8 +56,24 @@ from service.index.collection_index import CollectionIndex, IndexSnapshot
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalScoring
 from service.packing.packer import PackCandidate, PackedContext, pack_context
 from service.retrieval.query import Hit, RetrievalQuery, RetrievalResult, retrieve
-from service.retrieval.ranking import Ranking, fuse_rrf, lexical_ranking, semantic_ranking
+from service.retrieval.ranking import (
+    Ranking,
+    fuse_rrf,
+    fuse_scores,
+    lexical_ranking,
+    ranked_rows,
+    semantic_ranking,
+    with_document_support,
+)
+from service.retrieval.ranking_settings import (
+    PLAIN_FUSION,
+    LexicalFeedback,
+    RankingSettings,
+    SemanticFeedback,
+)
+from service.retrieval.refinement import rm3_expansion, rocchio_vector
 from service.usecases.answering import pack_candidates
+from service.usecases.retrieval_settings import DEFAULT_RETRIEVAL, ranking_settings
 
 RRF_K = 60
 SERVICE_BLAS_THREADS = Settings().blas_threads or None
@@ -103,9 +120,11 @@ def hybrid_query(
     top_k: int,
     depth: int,
     keep: int | None = None,
+    ranking: RankingSettings = PLAIN_FUSION,
 ) -> RetrievalResult:
     """The whole in-process hybrid query over every live row, as the search route runs it
-    (``keep=depth`` returns the whole fused ranking, as the context route asks)."""
+    (``keep=depth`` returns the whole fused ranking, as the context route asks), with plain
+    fusion unless ``ranking`` names further steps."""
     query = RetrievalQuery(
         mode="hybrid",
         tokens=tuple(tokens),
@@ -117,8 +136,59 @@ def hybrid_query(
         rrf_k=RRF_K,
         keep=top_k if keep is None else keep,
         scoring=LexicalScoring(),
+        ranking=ranking,
     )
     return retrieve(snapshot, query)
+
+
+def _time_hybrid_steps(
+    snapshot: IndexSnapshot,
+    tokens: list[list[str]],
+    vectors: list[np.ndarray],
+    pairs: list[tuple[Ranking, Ranking]],
+    fused: list[Ranking],
+    depth: int,
+    stages: dict[str, Summary],
+) -> None:
+    """Each hybrid step beyond plain fusion alone, on the rankings at depth: the default's
+    parameters where the default takes the step, the classes' own defaults otherwise."""
+    steps = ranking_settings(DEFAULT_RETRIEVAL)
+    lexical_feedback = steps.lexical_feedback or LexicalFeedback()
+    semantic_feedback = steps.semantic_feedback or SemanticFeedback()
+    live = snapshot.live
+    count = len(pairs)
+
+    def rm3(i: int) -> Ranking:
+        first = pairs[i][0]
+        expansion = rm3_expansion(
+            snapshot, tuple(tokens[i]), first.rows, first.scores, lexical_feedback
+        )
+        match = snapshot.lexical.match_weighted(expansion.term_ids, expansion.weights)
+        rows = np.flatnonzero(match.present & live)
+        return ranked_rows("lexical", snapshot, rows, match.scores[rows], depth)
+
+    def rocchio(i: int) -> Ranking:
+        query = snapshot.vectors.prepare_query(vectors[i])
+        refined = rocchio_vector(snapshot, query, pairs[i][1].rows, semantic_feedback)
+        return semantic_ranking(snapshot, refined, live, depth)
+
+    stages["lexical feedback"], _ = time_each(range(count), rm3)
+    stages["semantic feedback"], _ = time_each(range(count), rocchio)
+    weights = steps.fusion_weights()
+    stages["fusion weighted"], _ = time_each(
+        pairs, lambda pair: fuse_rrf(list(pair), RRF_K, depth, weights)
+    )
+    stages["fusion min-max"], _ = time_each(
+        pairs, lambda pair: fuse_scores(list(pair), depth, weights, "min_max")
+    )
+    stages["document support"], _ = time_each(
+        fused,
+        lambda ranking: with_document_support(
+            ranking,
+            [snapshot.document_ids[row] for row in ranking.rows.tolist()],
+            steps.second_chunk_weight or 0.1,
+        ),
+    )
 
 
 def _memory(snapshot: IndexSnapshot, size: int, dimension: int, rss_delta: int) -> dict[str, Any]:
@@ -214,7 +284,8 @@ def run_size(
         vectors, lambda v: semantic_ranking(snapshot, v, live, depth)
     )
     pairs = list(zip(lexical_deep, semantic_deep, strict=True))
-    stages["fusion"], _ = time_each(pairs, lambda pair: fuse_rrf(list(pair), RRF_K, depth))
+    stages["fusion"], fused = time_each(pairs, lambda pair: fuse_rrf(list(pair), RRF_K, depth))
+    _time_hybrid_steps(snapshot, tokens, vectors, pairs, fused, depth, stages)
     for candidates, budget, _ in PACKING_TARGETS:
         key = packing_key(candidates, budget)
         found = [
@@ -232,6 +303,14 @@ def run_size(
         range(count),
         lambda i: hybrid_query(snapshot, tokens[i], vectors[i], top_k=top_k, depth=depth),
     )
+    default_steps = ranking_settings(DEFAULT_RETRIEVAL)
+    stages["hybrid default steps"], _ = time_each(
+        range(count),
+        lambda i: hybrid_query(
+            snapshot, tokens[i], vectors[i], top_k=top_k, depth=depth, ranking=default_steps
+        ),
+    )
+    notes["hybrid default steps"] = asdict(default_steps)
     progress(f"{size:,} chunks: stages timed; timing the references")
 
     rankings: dict[str, Any] = {}

@@ -25,7 +25,13 @@ _STAGE_LABELS = {
     "packing 100 into 1,000": "packing 100 candidates, 1,000 tokens",
     "reading 1,000 candidates": "reading 1,000 candidates",
     "packing 1,000 into 32,768": "packing 1,000 candidates, 32,768 tokens",
+    "lexical feedback": "lexical feedback (RM3) at depth",
+    "semantic feedback": "semantic feedback (Rocchio) at depth",
+    "fusion weighted": "fusion (weighted RRF) at depth",
+    "fusion min-max": "fusion (min-max scores) at depth",
+    "document support": "document support (second chunk)",
     "hybrid": "hybrid query, whole, in process",
+    "hybrid default steps": "hybrid, the default's steps, in process",
 }
 
 

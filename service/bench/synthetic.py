@@ -39,8 +39,7 @@ from service.index.collection_index import ChunkRecord
 from service.index.records import chunk_id, chunk_record
 from service.ingest.chunking import ChunkSpan
 from service.ingest.tokenizer import ModelTokenCounter
-from service.usecases.collections import DEFAULT_RETRIEVAL
-from service.usecases.indexes import analyzer_for
+from service.usecases.retrieval_settings import DEFAULT_RETRIEVAL, analyzer_for
 
 VOCABULARY_SIZE = 50_000
 ZIPF_EXPONENT = 1.0

@@ -81,6 +81,14 @@ def ratios(figures: dict[str, Any]) -> list[dict[str, Any]]:
             ["stages/lexical depth", "stages/semantic depth"],
         )
     )
+    found.append(
+        ratio(
+            figures,
+            "hybrid default steps / hybrid",
+            ["stages/hybrid default steps"],
+            ["stages/hybrid"],
+        )
+    )
     return found
 
 
@@ -189,6 +197,18 @@ def targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
             f"(lexical + semantic {hybrid['denominator_ms']:.3f} ms)",
             value=hybrid["numerator_ms"],
             limit=hybrid_limit,
+        )
+    )
+    steps = by_name["hybrid default steps / hybrid"]
+    found.append(
+        _target(
+            "hybrid with the default's steps at most 2x plain hybrid",
+            at_target,
+            steps["value"] <= 2.0,
+            f"{steps['value']:.2f}x ({steps['numerator_ms']:.3f} ms vs "
+            f"{steps['denominator_ms']:.3f} ms)",
+            value=steps["value"],
+            limit=2.0,
         )
     )
     for candidates, budget, limit in PACKING_TARGETS:

@@ -48,13 +48,10 @@ def settings_in_effect(
 ) -> dict[str, object]:
     """A system's settings: its own ``--set`` values over the collection's (as the API shows
     a collection)."""
-    retrieval = dict(collection["retrieval"])
+    retrieval = {**collection["retrieval"], **settings}
     return {
-        "bm25": retrieval.get("bm25"),
-        "k1": settings.get("k1", retrieval.get("k1")),
-        "b": settings.get("b", retrieval.get("b")),
-        "rrf_k": settings.get("rrf_k", 60),
-        "metric": retrieval.get("metric"),
+        **retrieval,
+        "rrf_k": settings.get("rrf_k", collection["retrieval"].get("rrf_k", 60)),
         "chunking": collection["chunking"],
         "embedder": collection["embedder"],
         "tokenizer": collection["tokenizer"],

@@ -1,8 +1,8 @@
 """The evaluation backend that asks a running server, through its HTTP API.
 
 It answers the same three questions as the store backend (``service.usecases.evaluate``), so the
-numbers of the two agree for the same collection; per-query BM25 settings are not part of the
-API, so only ``rrf_k`` may vary here.
+numbers of the two agree for the same collection; per-query BM25 and ranking settings are not
+part of the API, so only ``rrf_k`` may vary here.
 """
 
 from __future__ import annotations
@@ -16,12 +16,12 @@ import httpx
 from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
-from service.evaluation.runner import InferRequest
+from service.evaluation.runner import SETTING_MODES, InferRequest
 
 # The server's own limit on top_k and depth, by default.
 CHUNK_LIMIT = 1000
 PAGE = 1000
-SERVER_ONLY_SETTINGS = ("k1", "b")
+SERVER_ONLY_SETTINGS = tuple(name for name in SETTING_MODES if name != "rrf_k")
 
 
 class ServerRefused(Exception):
@@ -78,8 +78,9 @@ class HttpBackend:
                 "mode": mode,
                 "top_k": chunks,
                 "depth": chunks,
-                "rrf_k": settings.get("rrf_k", 60),
             }
+            if "rrf_k" in settings:
+                request["rrf_k"] = settings["rrf_k"]
             if filter is not None:
                 request["filter"] = filter
             if infer is not None:

@@ -25,6 +25,7 @@ from service.evaluation.filter_agreement import (
 from service.evaluation.inputs import FilterSpec, LabeledQuery
 from service.evaluation.measures import measure_names, query_measures, relevant_count
 from service.evaluation.significance import bootstrap_interval, paired_randomization_test
+from service.retrieval.ranking_settings import FUSION_METHODS
 
 MODES = ("lexical", "semantic", "hybrid")
 
@@ -32,8 +33,23 @@ SETTING_MODES: Mapping[str, tuple[str, ...]] = {
     "k1": ("lexical", "hybrid"),
     "b": ("lexical", "hybrid"),
     "rrf_k": ("hybrid",),
+    "lexical_feedback_chunks": ("hybrid",),
+    "lexical_feedback_terms": ("hybrid",),
+    "lexical_feedback_query_weight": ("hybrid",),
+    "semantic_feedback_chunks": ("hybrid",),
+    "semantic_feedback_weight": ("hybrid",),
+    "fusion": ("hybrid",),
+    "semantic_weight": ("hybrid",),
+    "second_chunk_weight": ("hybrid",),
 }
-"""Per-query settings that ``--set`` may vary, and the modes whose ranking they change."""
+"""Per-query settings that ``--set`` may vary, and the modes whose ranking they change (the
+collection's own settings of the same names; field weights change the index and are not here)."""
+
+CHOICE_SETTINGS: Mapping[str, tuple[str, ...]] = {"fusion": FUSION_METHODS}
+UNIT_SETTINGS = ("b", "lexical_feedback_query_weight", "semantic_weight", "second_chunk_weight")
+"""Settings whose values lie between 0 and 1."""
+
+SettingValue = int | float | str
 
 FILTER_SOURCES = ("labelled", "inferred", "none")
 """Which filter a system's queries carry: their own (and the global one), the one inferred from
@@ -159,9 +175,7 @@ def systems_from_options(
     unknown_modes = [mode for mode in chosen if mode not in MODES]
     if unknown_modes:
         raise ValueError(f"unknown mode {unknown_modes[0]!r}; choose from {', '.join(MODES)}")
-    values_by_name = {
-        name: _parse_setting_values(name, raw_values) for name, raw_values in set_options.items()
-    }
+    values_by_name = parse_settings(set_options)
     for name in values_by_name:
         if not any(mode in SETTING_MODES[name] for mode in chosen):
             raise ValueError(
@@ -394,12 +408,19 @@ def _checked_ranking(
     return [(doc_id, float(score)) for doc_id, score in ranked]
 
 
-def _parse_setting_values(name: str, raw_values: Sequence[str]) -> list[int | float]:
+def _parse_setting_values(name: str, raw_values: Sequence[str]) -> list[SettingValue]:
+    """The values ``--set`` (or a tuning grid) gives a setting, checked."""
     if name not in SETTING_MODES:
-        raise ValueError(f"unknown setting {name!r}; --set takes {', '.join(SETTING_MODES)}")
-    values: list[int | float] = []
+        raise ValueError(f"unknown setting {name!r}; choose from {', '.join(SETTING_MODES)}")
+    values: list[SettingValue] = []
     for raw in raw_values:
         text = raw.strip()
+        if name in CHOICE_SETTINGS:
+            if text not in CHOICE_SETTINGS[name]:
+                choices = ", ".join(CHOICE_SETTINGS[name])
+                raise ValueError(f"setting {name}={raw!r} must be one of {choices}")
+            values.append(text)
+            continue
         try:
             value: int | float = int(text)
         except ValueError:
@@ -407,8 +428,8 @@ def _parse_setting_values(name: str, raw_values: Sequence[str]) -> list[int | fl
                 value = float(text)
             except ValueError:
                 raise ValueError(f"setting {name}={raw!r} is not a number") from None
-        if not math.isfinite(value) or value < 0 or (name == "b" and value > 1):
-            allowed = "between 0 and 1" if name == "b" else "a number of at least 0"
+        if not math.isfinite(value) or value < 0 or (name in UNIT_SETTINGS and value > 1):
+            allowed = "between 0 and 1" if name in UNIT_SETTINGS else "a number of at least 0"
             raise ValueError(f"setting {name}={raw!r} must be {allowed}")
         values.append(value)
     if not values:
@@ -416,3 +437,8 @@ def _parse_setting_values(name: str, raw_values: Sequence[str]) -> list[int | fl
     if len(set(values)) != len(values):
         raise ValueError(f"setting {name!r} repeats a value")
     return values
+
+
+def parse_settings(set_options: Mapping[str, Sequence[str]]) -> dict[str, list[SettingValue]]:
+    """Every named setting's checked values (see ``_parse_setting_values``)."""
+    return {name: _parse_setting_values(name, raw) for name, raw in set_options.items()}

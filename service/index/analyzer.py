@@ -33,9 +33,20 @@ def english_stopwords() -> frozenset[str]:
 class Analyzer:
     """Word tokens, lower case, optional stop-word removal, optional Snowball stemming."""
 
-    def __init__(self, stopwords: frozenset[str] | None, stem_language: str | None) -> None:
+    def __init__(
+        self,
+        stopwords: frozenset[str] | None,
+        stem_language: str | None,
+        *,
+        title_weight: int = 1,
+        section_weight: int = 1,
+    ) -> None:
+        if title_weight < 1 or section_weight < 1:
+            raise ValueError("field weights must be at least 1")
         self.stopwords = stopwords or frozenset()
         self.stem_language = stem_language
+        self.title_weight = title_weight
+        self.section_weight = section_weight
         if stem_language is not None:
             # Fails early, with PyStemmer's own message, on a language it does not know.
             Stemmer.Stemmer(stem_language)
@@ -55,6 +66,21 @@ class Analyzer:
         stems: list[str] = self._stemmer().stemWords(words)
         return stems
 
+    def indexed_tokens(self, title: str, section: str, text: str) -> list[str]:
+        """A chunk's indexed tokens: its title, section path and text, the title counted
+        ``title_weight`` times and the section ``section_weight`` times.
+
+        Counting a field's terms w times is how BM25F weights a field (Robertson, Zaragoza and
+        Taylor, "Simple BM25 extension to multiple weighted fields", CIKM 2004: the weighted
+        term frequencies and the weighted length are those of the field repeated w times), so
+        BM25 over these tokens is BM25F with one k1 and b for every field.
+        """
+        return (
+            self.tokens(title) * self.title_weight
+            + self.tokens(section) * self.section_weight
+            + self.tokens(text)
+        )
+
     def _stemmer(self) -> Stemmer.Stemmer:
         stemmer = getattr(self._local, "stemmer", None)
         if stemmer is None:
@@ -64,5 +90,6 @@ class Analyzer:
 
     def __repr__(self) -> str:
         return (
-            f"Analyzer(stopwords={len(self.stopwords)} words, stem_language={self.stem_language!r})"
+            f"Analyzer(stopwords={len(self.stopwords)} words, stem_language={self.stem_language!r},"
+            f" title_weight={self.title_weight}, section_weight={self.section_weight})"
         )

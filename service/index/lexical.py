@@ -72,6 +72,7 @@ class LexicalParts:
     segment_arrays: list[tuple[np.ndarray, np.ndarray, np.ndarray]]
     row_indptr: np.ndarray
     row_terms: np.ndarray
+    row_counts: np.ndarray
     lengths: np.ndarray
     live: np.ndarray
     document_frequency: np.ndarray
@@ -114,6 +115,7 @@ class LexicalIndex:
         segments: tuple[_Segment, ...],
         row_indptr: np.ndarray,
         row_terms: np.ndarray,
+        row_counts: np.ndarray,
         lengths: np.ndarray,
         n_rows: int,
         live: np.ndarray,
@@ -128,6 +130,7 @@ class LexicalIndex:
         self._segments = segments
         self._row_indptr = row_indptr
         self._row_terms = row_terms
+        self._row_counts = row_counts
         self._lengths = lengths
         self._n_rows = n_rows
         self._live = live
@@ -136,6 +139,7 @@ class LexicalIndex:
         self._live_length = live_length
         self._saturated: dict[tuple[float, float], tuple[np.ndarray, ...]] = {}
         self._okapi_mean_idf: float | None = None
+        self._term_names: list[str] | None = None
 
     @classmethod
     def empty(cls) -> LexicalIndex:
@@ -145,6 +149,7 @@ class LexicalIndex:
             segments=(),
             row_indptr=np.zeros(16, dtype=np.int64),
             row_terms=np.zeros(16, dtype=np.int32),
+            row_counts=np.zeros(16, dtype=np.float32),
             lengths=np.zeros(16, dtype=np.float32),
             n_rows=0,
             live=np.zeros(0, dtype=bool),
@@ -198,7 +203,11 @@ class LexicalIndex:
             s.csc.data.nbytes + s.csc.indices.nbytes + s.csc.indptr.nbytes for s in self._segments
         )
         weights = sum(w.nbytes for parts in self._saturated.values() for w in parts)
-        rows = self._row_indptr[: self._n_rows + 1].nbytes + self._row_terms[: self._nnz].nbytes
+        rows = (
+            self._row_indptr[: self._n_rows + 1].nbytes
+            + self._row_terms[: self._nnz].nbytes
+            + self._row_counts[: self._nnz].nbytes
+        )
         per_row = self.lengths.nbytes + self._live.nbytes + self._df.nbytes
         return postings + weights + rows + per_row
 
@@ -223,6 +232,7 @@ class LexicalIndex:
             segment_arrays=[(s.csc.data, s.csc.indices, s.csc.indptr) for s in self._segments],
             row_indptr=self._row_indptr[: self._n_rows + 1],
             row_terms=self._row_terms[: self._nnz],
+            row_counts=self._row_counts[: self._nnz],
             lengths=self.lengths,
             live=self._live,
             document_frequency=self._df[: self._vocabulary_size],
@@ -241,7 +251,9 @@ class LexicalIndex:
             raise ValueError("the per-row arrays disagree on the number of rows")
         if parts.document_frequency.shape != (vocabulary_size,):
             raise ValueError("the document frequencies do not cover the terms")
-        if int(parts.row_indptr[-1]) != len(parts.row_terms):
+        if int(parts.row_indptr[-1]) != len(parts.row_terms) or len(parts.row_counts) != len(
+            parts.row_terms
+        ):
             raise ValueError("the row-major term ids do not fit their offsets")
         segments = []
         expected_first = 0
@@ -262,6 +274,7 @@ class LexicalIndex:
             segments=tuple(segments),
             row_indptr=parts.row_indptr.astype(np.int64, copy=False),
             row_terms=parts.row_terms.astype(np.int32, copy=False),
+            row_counts=parts.row_counts.astype(np.float32, copy=False),
             lengths=parts.lengths.astype(np.float32, copy=False),
             n_rows=n_rows,
             live=parts.live.astype(bool, copy=False),
@@ -298,6 +311,7 @@ class LexicalIndex:
             self._row_indptr, self._n_rows + 1, nnz + counts.indptr[1:].astype(np.int64)
         )
         row_terms = write_rows(self._row_terms, nnz, counts.indices.astype(np.int32))
+        row_counts = write_rows(self._row_counts, nnz, counts.data.astype(np.float32))
         lengths = write_rows(self._lengths, self._n_rows, row_lengths.astype(np.float32))
         df = np.zeros(vocabulary_size, dtype=np.int64)
         df[: len(self._df)] = self._df
@@ -316,6 +330,7 @@ class LexicalIndex:
             segments=tuple(segments),
             row_indptr=row_indptr,
             row_terms=row_terms,
+            row_counts=row_counts,
             lengths=lengths,
             n_rows=self._n_rows + added,
             live=live,
@@ -340,6 +355,7 @@ class LexicalIndex:
             segments=self._segments,
             row_indptr=self._row_indptr,
             row_terms=self._row_terms,
+            row_counts=self._row_counts,
             lengths=self._lengths,
             n_rows=self._n_rows,
             live=live,
@@ -360,14 +376,15 @@ class LexicalIndex:
                 merged = _merge(merged, segment)
             segments = (_Segment(0, _keep_rows(merged.csc, self._live[: merged.rows], remap)),)
         positions = concatenated_ranges(self._row_indptr[keep], self._row_indptr[keep + 1])
-        row_counts = self._row_indptr[keep + 1] - self._row_indptr[keep]
-        row_indptr = np.concatenate([[0], np.cumsum(row_counts)]).astype(np.int64)
+        terms_per_row = self._row_indptr[keep + 1] - self._row_indptr[keep]
+        row_indptr = np.concatenate([[0], np.cumsum(terms_per_row)]).astype(np.int64)
         compacted = LexicalIndex(
             terms=self._terms,
             vocabulary_size=self._vocabulary_size,
             segments=segments,
             row_indptr=row_indptr,
             row_terms=self._row_terms[positions],
+            row_counts=self._row_counts[positions],
             lengths=self._lengths[keep],
             n_rows=len(keep),
             live=np.ones(len(keep), dtype=bool),
@@ -440,21 +457,30 @@ class LexicalIndex:
 
         Tombstoned rows are never present. Scores are only meaningful where ``present``.
         """
+        term_ids, repeats = self.term_ids_of(query_tokens)
+        return self.match_weighted(term_ids, repeats, k1=k1, b=b, variant=variant, epsilon=epsilon)
+
+    def match_weighted(
+        self,
+        term_ids: np.ndarray,
+        query_weights: np.ndarray,
+        *,
+        k1: float = DEFAULT_K1,
+        b: float = DEFAULT_B,
+        variant: Bm25Variant = "smoothed",
+        epsilon: float = DEFAULT_EPSILON,
+    ) -> LexicalMatch:
+        """BM25 with a weight per query term (a repeated term is one of weight 2; an expanded
+        query's terms carry their relevance-model weights). ``term_ids`` are distinct ids of
+        this version (``term_ids_of``)."""
         if variant not in BM25_VARIANTS:
             raise ValueError(f"unknown BM25 variant {variant!r}")
         if not (k1 >= 0 and 0 <= b <= 1):
             raise ValueError("BM25 needs k1 >= 0 and 0 <= b <= 1")
         scores = np.zeros(self._n_rows, dtype=np.float32)
-        occurrences: Counter[int] = Counter()
-        for token in query_tokens:
-            term_id = self._term_id(token)
-            if term_id is not None and self._df[term_id] > 0:
-                occurrences[term_id] += 1
-        if not occurrences:
+        if len(term_ids) == 0:
             return LexicalMatch(scores, np.zeros(self._n_rows, dtype=bool))
-        term_ids = np.fromiter(occurrences.keys(), dtype=np.int64, count=len(occurrences))
-        repeats = np.fromiter(occurrences.values(), dtype=np.float64, count=len(occurrences))
-        weights = (self._idf(term_ids, variant, epsilon) * repeats).astype(np.float32)
+        weights = (self._idf(term_ids, variant, epsilon) * query_weights).astype(np.float32)
         # With every weight positive a row is present exactly when its score is positive;
         # otherwise presence is recorded per posting.
         present: np.ndarray | None = None if bool((weights > 0).all()) else scores.astype(bool)
@@ -477,6 +503,46 @@ class LexicalIndex:
             present = scores > 0
         present &= self._live
         return LexicalMatch(scores, present)
+
+    def term_ids_of(self, query_tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """Distinct ids of the query's terms found in live rows, and how often each occurs."""
+        occurrences: Counter[int] = Counter()
+        for token in query_tokens:
+            term_id = self._term_id(token)
+            if term_id is not None and self._df[term_id] > 0:
+                occurrences[term_id] += 1
+        term_ids = np.fromiter(occurrences.keys(), dtype=np.int64, count=len(occurrences))
+        counts = np.fromiter(occurrences.values(), dtype=np.float64, count=len(occurrences))
+        return term_ids, counts
+
+    def relevance_model(
+        self, rows: np.ndarray, row_weights: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``sum over rows of row_weight * tf(t, row) / len(row)`` for every term of ``rows``:
+        the relevance model of Lavrenko and Croft (2001) over feedback rows, as term ids and
+        their weights, in term id order."""
+        rows = np.asarray(rows, dtype=np.int64)
+        if len(rows) == 0:
+            return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.float64)
+        starts, ends = self._row_indptr[rows], self._row_indptr[rows + 1]
+        positions = concatenated_ranges(starts, ends)
+        per_row = (ends - starts).astype(np.int64)
+        lengths = np.maximum(self._lengths[rows].astype(np.float64), 1.0)
+        share = np.repeat(np.asarray(row_weights, dtype=np.float64) / lengths, per_row)
+        term_ids, inverse = np.unique(self._row_terms[positions], return_inverse=True)
+        weights = np.zeros(len(term_ids), dtype=np.float64)
+        np.add.at(weights, inverse, share * self._row_counts[positions])
+        return term_ids.astype(np.int64), weights
+
+    def term_names(self, term_ids: Sequence[int]) -> list[str]:
+        """The terms of ``term_ids`` as text (for traces)."""
+        if self._term_names is None or len(self._term_names) < self._vocabulary_size:
+            names = [""] * len(self._terms)
+            for term, term_id in list(self._terms.items()):
+                if term_id < len(names):
+                    names[term_id] = term
+            self._term_names = names
+        return [self._term_names[term_id] for term_id in term_ids]
 
 
 def _as_csc(matrix: sp.csc_array) -> sp.csc_array:

@@ -38,11 +38,6 @@ def chunk_id(document_id: str, ordinal: int) -> str:
     return f"{document_id}#{ordinal:04d}"
 
 
-def indexed_text(title: str, section: str, text: str) -> str:
-    """What both retrievers index for a chunk: its title, its section path and its text."""
-    return "\n".join(part for part in (title, section, text) if part)
-
-
 def chunk_record(
     analyzer: Analyzer,
     *,
@@ -65,7 +60,7 @@ def chunk_record(
         char_start=chunk.char_start,
         char_end=chunk.char_end,
         tokens=chunk.tokens,
-        lexical_tokens=analyzer.tokens(indexed_text(title, chunk.section, chunk.text)),
+        lexical_tokens=analyzer.indexed_tokens(title, chunk.section, chunk.text),
         vector=vector,
         attributes=attributes,
         access=access,

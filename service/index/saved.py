@@ -254,6 +254,7 @@ def _write_files(folder: Path, snapshot: IndexSnapshot) -> dict[str, Any]:
         {
             "lexical.row_indptr": lexical.row_indptr,
             "lexical.row_terms": lexical.row_terms,
+            "lexical.row_counts": lexical.row_counts,
             "lexical.lengths": lexical.lengths,
             "lexical.live": lexical.live,
             "lexical.df": lexical.document_frequency,
@@ -516,6 +517,7 @@ def _read_snapshot(
             ],
             row_indptr=array("lexical.row_indptr"),
             row_terms=array("lexical.row_terms"),
+            row_counts=array("lexical.row_counts"),
             lengths=array("lexical.lengths"),
             live=array("lexical.live"),
             document_frequency=array("lexical.df"),

@@ -11,6 +11,7 @@ from service.filters.inference.hints import AttributeHints
 from service.index.analyzer import Analyzer
 from service.index.collection_index import IndexSnapshot
 from service.index.lexical import LexicalScoring
+from service.retrieval.ranking_settings import PLAIN_FUSION, RankingSettings
 
 
 @dataclass(frozen=True)
@@ -20,6 +21,7 @@ class CollectionFacts:
     cite_attributes: tuple[str, ...]
     answer_caution: str | None
     inference_hints: Mapping[str, AttributeHints] = field(default_factory=dict)
+    ranking: RankingSettings = PLAIN_FUSION
 
 
 @dataclass(frozen=True)

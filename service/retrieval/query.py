@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Literal
 
 import numpy as np
@@ -24,8 +24,14 @@ from service.retrieval.ranking import (
     begin_semantic_ranking,
     finish_semantic_ranking,
     fuse_rrf,
+    fuse_scores,
     lexical_ranking,
+    ranked_rows,
+    semantic_ranking,
+    with_document_support,
 )
+from service.retrieval.ranking_settings import PLAIN_FUSION, LexicalFeedback, RankingSettings
+from service.retrieval.refinement import rm3_expansion, rocchio_vector
 
 Mode = Literal["hybrid", "lexical", "semantic"]
 MODES: tuple[Mode, ...] = ("hybrid", "lexical", "semantic")
@@ -39,7 +45,8 @@ class RetrievalQuery:
     vector (used by the semantic one), ``filter`` the checked filter tree with any time window
     already joined in, ``groups`` the caller's access groups (None sees every row). Each ranking
     is cut at ``depth``; ``keep`` fused hits are returned (``top_k`` for a search, the whole
-    ranking for packing).
+    ranking for packing). ``ranking`` holds the hybrid mode's steps beyond plain fusion
+    (feedback, fusion method and weights, document support); the other modes ignore it.
     """
 
     mode: Mode
@@ -52,6 +59,7 @@ class RetrievalQuery:
     rrf_k: int
     keep: int
     scoring: LexicalScoring
+    ranking: RankingSettings = PLAIN_FUSION
     trace_top: int = 20
 
     def __post_init__(self) -> None:
@@ -89,6 +97,7 @@ class StageTrace:
     counts: Mapping[str, int]
     top: tuple[TraceEntry, ...] = ()
     plan: PlanTrace | None = None
+    notes: Mapping[str, object] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -144,6 +153,7 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
     if query.vector is not None and query.mode != "lexical":
         scan = begin_semantic_ranking(snapshot, query.vector, mask, candidates, query.depth)
     rankings: dict[str, Ranking] = {}
+    steps = query.ranking if query.mode == "hybrid" else PLAIN_FUSION
     if query.mode != "semantic":
         started = time.perf_counter()
         lexical = lexical_ranking(
@@ -155,15 +165,54 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         )
         rankings["lexical"] = lexical
         stages.append(_stage(snapshot, lexical, started, candidates, query.trace_top))
+        if steps.lexical_feedback is not None:
+            started = time.perf_counter()
+            rankings["lexical"], notes = _lexical_feedback(
+                snapshot, query, mask, lexical, steps.lexical_feedback
+            )
+            stages.append(
+                _stage(
+                    snapshot,
+                    rankings["lexical"],
+                    started,
+                    candidates,
+                    query.trace_top,
+                    name="lexical_feedback",
+                    notes=notes,
+                )
+            )
     if scan is not None:
         semantic, plan = finish_semantic_ranking(snapshot, scan, mask, query.depth)
         rankings["semantic"] = semantic
         stage = _stage(snapshot, semantic, scan.started, candidates, query.trace_top)
         stages.append(replace(stage, plan=plan))
+        if steps.semantic_feedback is not None:
+            started = time.perf_counter()
+            feedback = steps.semantic_feedback
+            refined = rocchio_vector(snapshot, scan.query, semantic.rows, feedback)
+            rankings["semantic"] = semantic_ranking(snapshot, refined, mask, query.depth)
+            notes = {"chunks": min(feedback.chunks, len(semantic)), "weight": feedback.weight}
+            stages.append(
+                _stage(
+                    snapshot,
+                    rankings["semantic"],
+                    started,
+                    candidates,
+                    query.trace_top,
+                    name="semantic_feedback",
+                    notes=notes,
+                )
+            )
 
     started = time.perf_counter()
+    fusion_notes: dict[str, object] = {}
     if query.mode == "hybrid":
-        final = fuse_rrf([rankings["lexical"], rankings["semantic"]], query.rrf_k, query.depth)
+        final, fusion_notes = _fuse(rankings, query, steps)
+        if steps.second_chunk_weight > 0:
+            documents = [snapshot.document_ids[row] for row in final.rows.tolist()]
+            final, raised = with_document_support(final, documents, steps.second_chunk_weight)
+            fusion_notes["second_chunk_weight"] = steps.second_chunk_weight
+            fusion_notes["documents_supported"] = raised
     else:
         final = rankings[query.mode]
     rank_maps = {name: ranking.rank_of() for name, ranking in rankings.items()}
@@ -181,7 +230,7 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
     if query.mode == "hybrid":
         top = _entries(snapshot, final, query.trace_top, ranks_of)
         counts = {"fused": len(final), "returned": len(hits)}
-        stages.append(StageTrace("fusion", _since(started), counts, top))
+        stages.append(StageTrace("fusion", _since(started), counts, top, notes=fusion_notes))
     return RetrievalResult(hits, candidates, visible, tuple(stages), rankings)
 
 
@@ -190,11 +239,65 @@ def _since(started: float) -> float:
 
 
 def _stage(
-    snapshot: IndexSnapshot, ranking: Ranking, started: float, candidates: int, trace_top: int
+    snapshot: IndexSnapshot,
+    ranking: Ranking,
+    started: float,
+    candidates: int,
+    trace_top: int,
+    *,
+    name: str | None = None,
+    notes: Mapping[str, object] | None = None,
 ) -> StageTrace:
     top = _entries(snapshot, ranking, trace_top, None)
     counts = {"candidates": candidates, "matched": ranking.matched, "ranked": len(ranking)}
-    return StageTrace(ranking.name, _since(started), counts, top)
+    return StageTrace(name or ranking.name, _since(started), counts, top, notes=notes or {})
+
+
+def _lexical_feedback(
+    snapshot: IndexSnapshot,
+    query: RetrievalQuery,
+    mask: np.ndarray,
+    first: Ranking,
+    feedback: LexicalFeedback,
+) -> tuple[Ranking, dict[str, object]]:
+    """The lexical ranking of the RM3 query built from ``first`` (see ``refinement``)."""
+    expansion = rm3_expansion(snapshot, query.tokens, first.rows, first.scores, feedback)
+    scoring = query.scoring
+    match = snapshot.lexical.match_weighted(
+        expansion.term_ids,
+        expansion.weights,
+        k1=scoring.k1,
+        b=scoring.b,
+        variant=scoring.variant,
+        epsilon=scoring.epsilon,
+    )
+    rows = np.flatnonzero(match.present & mask)
+    ranking = ranked_rows("lexical", snapshot, rows, match.scores[rows], query.depth)
+    order = np.lexsort((expansion.term_ids, -expansion.weights))
+    names = snapshot.lexical.term_names(expansion.term_ids[order].tolist())
+    weights = expansion.weights[order].tolist()
+    notes: dict[str, object] = {
+        "chunks": expansion.feedback_rows,
+        "query_weight": feedback.query_weight,
+        "terms": [
+            {"term": name, "weight": round(weight, 6)}
+            for name, weight in zip(names, weights, strict=True)
+        ],
+    }
+    return ranking, notes
+
+
+def _fuse(
+    rankings: Mapping[str, Ranking], query: RetrievalQuery, steps: RankingSettings
+) -> tuple[Ranking, dict[str, object]]:
+    pair = [rankings["lexical"], rankings["semantic"]]
+    weights = steps.fusion_weights()
+    notes: dict[str, object] = {"method": steps.fusion, "semantic_weight": steps.semantic_weight}
+    if steps.fusion == "rrf":
+        notes["rrf_k"] = query.rrf_k
+        plain = weights == (1.0, 1.0)
+        return fuse_rrf(pair, query.rrf_k, query.depth, None if plain else weights), notes
+    return fuse_scores(pair, query.depth, weights, steps.fusion), notes
 
 
 def _entries(

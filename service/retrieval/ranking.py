@@ -9,7 +9,7 @@ mask only decides which rows compete, so filtering never changes a row's score.
 from __future__ import annotations
 
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import Future
 from dataclasses import dataclass, replace
 
@@ -64,7 +64,7 @@ def top_positions(scores: np.ndarray, keys_of: np.ndarray, depth: int) -> np.nda
     return chosen[order]
 
 
-def _ranking(
+def ranked_rows(
     name: str, snapshot: IndexSnapshot, rows: np.ndarray, scores: np.ndarray, depth: int
 ) -> Ranking:
     matched = len(rows)
@@ -94,7 +94,7 @@ def lexical_ranking(
         epsilon=scoring.epsilon,
     )
     rows = np.flatnonzero(match.present & candidate_mask)
-    return _ranking("lexical", snapshot, rows, match.scores[rows], depth)
+    return ranked_rows("lexical", snapshot, rows, match.scores[rows], depth)
 
 
 @dataclass(frozen=True)
@@ -166,7 +166,7 @@ def exact_semantic_ranking(
     """Exact similarity ranking of all candidates, cut at ``depth`` (the graph's reference)."""
     query = snapshot.vectors.prepare_query(np.asarray(query_vector))
     rows, scores = snapshot.vectors.score(query, candidate_mask)
-    return _ranking("semantic", snapshot, rows, scores, depth)
+    return ranked_rows("semantic", snapshot, rows, scores, depth)
 
 
 def finish_semantic_ranking(
@@ -188,7 +188,7 @@ def finish_semantic_ranking(
             chosen[hits.rows] = True
             chosen[covered:] = candidate_mask[covered:]
             rows, scores = snapshot.vectors.score(scan.query, chosen)
-            ranking = _ranking("semantic", snapshot, rows, scores, depth)
+            ranking = ranked_rows("semantic", snapshot, rows, scores, depth)
             ranking = replace(ranking, matched=candidates)
             work = hits.work + plan.tail_candidates
             trace = PlanTrace("graph", "graph", plan.estimated_work, work, plan.breadth, None)
@@ -203,24 +203,98 @@ def finish_semantic_ranking(
             plan.breadth,
             fallback,
         )
-        return _ranking("semantic", snapshot, rows, scores, depth), trace
+        return ranked_rows("semantic", snapshot, rows, scores, depth), trace
     rows, scores = snapshot.vectors.score(scan.query, candidate_mask, scan.full_scan)
     method: PlanMethod = "scan" if plan.method == "scan" else "gather"
     work = snapshot.vectors.n_rows if method == "scan" else len(rows)
     trace = PlanTrace(method, method, plan.estimated_work, work, 0, None)
-    return _ranking("semantic", snapshot, rows, scores, depth), trace
+    return ranked_rows("semantic", snapshot, rows, scores, depth), trace
 
 
-def fuse_rrf(rankings: Sequence[Ranking], rrf_k: float, depth: int) -> Ranking:
-    """Reciprocal rank fusion (Cormack, Clarke and Büttcher, SIGIR 2009).
+def fuse_rrf(
+    rankings: Sequence[Ranking],
+    rrf_k: float,
+    depth: int,
+    weights: Sequence[float] | None = None,
+) -> Ranking:
+    """Reciprocal rank fusion (Cormack, Clarke and Büttcher, SIGIR 2009), optionally weighted.
 
     Each ranking is cut at ``depth``; a row scores the sum over rankings of
-    ``1 / (rrf_k + rank)`` with ranks from 1, a ranking that lacks the row adding nothing.
-    Contributions are added ranking by ranking, in the order given, so two rows with the same
-    ranks in swapped rankings get bit-identical sums and fall to the chunk_id tie-break.
+    ``weight / (rrf_k + rank)`` with ranks from 1 (every weight 1 unless given), a ranking that
+    lacks the row adding nothing. Contributions are added ranking by ranking, in the order
+    given, so two rows with the same ranks in swapped rankings get bit-identical sums and fall
+    to the chunk_id tie-break.
     """
     if rrf_k < 0:
         raise ValueError("rrf_k must not be negative")
+    return _fuse(
+        rankings,
+        depth,
+        weights,
+        lambda ranking, cut: 1.0 / (rrf_k + np.arange(1, cut + 1, dtype=np.float64)),
+        absent=lambda ranking, cut: 0.0,
+    )
+
+
+def fuse_scores(
+    rankings: Sequence[Ranking],
+    depth: int,
+    weights: Sequence[float],
+    method: str,
+) -> Ranking:
+    """Convex combination of normalised scores (Fox and Shaw, TREC-2 1994, CombSUM; Bruch,
+    Gai and Ingber, ACM TOIS 2023, for min-max and z-score in hybrid retrieval).
+
+    Each ranking's scores, cut at ``depth``, are normalised over that cut: ``min_max`` maps
+    them to [0, 1], ``z_score`` to their standard scores. A row a ranking lacks gets that
+    ranking's lowest normalised score, since it ranked below every row the ranking kept.
+    """
+    if method not in ("min_max", "z_score"):
+        raise ValueError(f"unknown score normalisation {method!r}")
+    normalise = _min_max if method == "min_max" else _z_score
+
+    def lowest(ranking: Ranking, cut: int) -> float:
+        values = normalise(ranking.scores[:cut])
+        return float(values.min()) if len(values) else 0.0
+
+    return _fuse(
+        rankings,
+        depth,
+        weights,
+        lambda ranking, cut: normalise(ranking.scores[:cut]),
+        absent=lowest,
+    )
+
+
+def _min_max(scores: np.ndarray) -> np.ndarray:
+    values = np.asarray(scores, dtype=np.float64)
+    if len(values) == 0:
+        return values
+    low, high = values.min(), values.max()
+    return (values - low) / (high - low) if high > low else np.ones_like(values)
+
+
+def _z_score(scores: np.ndarray) -> np.ndarray:
+    values = np.asarray(scores, dtype=np.float64)
+    if len(values) == 0:
+        return values
+    spread = values.std()
+    return (values - values.mean()) / spread if spread > 0 else np.zeros_like(values)
+
+
+def _fuse(
+    rankings: Sequence[Ranking],
+    depth: int,
+    weights: Sequence[float] | None,
+    contribution: Callable[[Ranking, int], np.ndarray],
+    absent: Callable[[Ranking, int], float],
+) -> Ranking:
+    """Sum over rankings of ``weight * contribution`` per row, ``weight * absent`` where a
+    ranking lacks the row; ties by chunk_id."""
+    if weights is None:
+        weights = [1.0] * len(rankings)
+    if len(weights) != len(rankings) or any(not w >= 0 for w in weights):
+        raise ValueError("fusion needs one weight of at least 0 per ranking")
     cut = [(r.rows[:depth], r.sort_keys[:depth]) for r in rankings]
     if not cut or sum(len(rows) for rows, _ in cut) == 0:
         empty = np.zeros(0, dtype=np.int64)
@@ -230,10 +304,49 @@ def fuse_rrf(rankings: Sequence[Ranking], rrf_k: float, depth: int) -> Ranking:
     unique_rows, first, inverse = np.unique(all_rows, return_index=True, return_inverse=True)
     scores = np.zeros(len(unique_rows), dtype=np.float64)
     start = 0
-    for rows, _ in cut:
-        ranks = np.arange(1, len(rows) + 1, dtype=np.float64)
-        np.add.at(scores, inverse[start : start + len(rows)], 1.0 / (rrf_k + ranks))
+    for ranking, (rows, _), weight in zip(rankings, cut, weights, strict=True):
+        floor = absent(ranking, len(rows))
+        scores += weight * floor
+        part = weight * (contribution(ranking, len(rows)) - floor)
+        np.add.at(scores, inverse[start : start + len(rows)], part)
         start += len(rows)
     keys = all_keys[first]
     order = np.lexsort((keys, -scores))
     return Ranking("fused", unique_rows[order], scores[order], keys[order], len(unique_rows))
+
+
+def with_document_support(
+    ranking: Ranking, document_ids: Sequence[str], weight: float
+) -> tuple[Ranking, int]:
+    """The ranking with each document's best chunk raised by ``weight`` times the positive
+    score of the document's second best chunk in it; how many chunks were raised.
+
+    ``document_ids[i]`` is the document of ``ranking.rows[i]``. Ranks and ties are decided
+    again afterwards, by score and then chunk_id.
+    """
+    if weight <= 0 or len(ranking) < 2:
+        return ranking, 0
+    _, codes = np.unique(np.asarray(document_ids, dtype=object), return_inverse=True)
+    order = np.arange(len(codes))
+    _, best = np.unique(codes, return_index=True)
+    rest = np.ones(len(codes), dtype=bool)
+    rest[best] = False
+    rest_positions = order[rest]
+    rest_codes, second = np.unique(codes[rest], return_index=True)
+    second_score = np.zeros(int(codes.max()) + 1, dtype=np.float64)
+    second_score[rest_codes] = np.maximum(ranking.scores[rest_positions[second]], 0.0)
+    bonus = np.zeros(len(codes), dtype=np.float64)
+    bonus[best] = weight * second_score[codes[best]]
+    scores = ranking.scores + bonus
+    resorted = np.lexsort((ranking.sort_keys, -scores))
+    raised = int(np.count_nonzero(bonus > 0))
+    return (
+        Ranking(
+            ranking.name,
+            ranking.rows[resorted],
+            scores[resorted],
+            ranking.sort_keys[resorted],
+            ranking.matched,
+        ),
+        raised,
+    )

@@ -24,19 +24,12 @@ from service.store import job_rows, repository
 from service.store.tables import CollectionRow, JobRow
 from service.usecases.callers import Caller, Role
 from service.usecases.drafts import content_hash
+from service.usecases.retrieval_settings import DEFAULT_RETRIEVAL, checked_retrieval
 from service.usecases.runtime import Runtime
 
 COLLECTION_NAME = re.compile(r"[a-z][a-z0-9_-]{0,62}")
 SPECIAL_TOKEN_ALLOWANCE = 32
 DEFAULT_CHUNKING = {"max_tokens": 200, "overlap_tokens": 40}
-DEFAULT_RETRIEVAL: dict[str, Any] = {
-    "bm25": "smoothed",
-    "k1": 1.2,
-    "b": 0.75,
-    "metric": "cosine",
-    "stemming": True,
-    "stopwords": True,
-}
 
 
 @dataclass(frozen=True)
@@ -108,38 +101,6 @@ def _checked_chunking(raw: dict[str, Any], window: int) -> dict[str, int]:
             field="chunking.overlap_tokens",
         )
     return {"max_tokens": max_tokens, "overlap_tokens": overlap}
-
-
-def _checked_retrieval(raw: dict[str, Any], current: dict[str, Any]) -> dict[str, Any]:
-    merged = {**DEFAULT_RETRIEVAL, **current, **raw}
-    unknown = set(raw) - set(DEFAULT_RETRIEVAL)
-    if unknown:
-        name = sorted(unknown)[0]
-        raise InvalidRequest(f"retrieval has no setting {name!r}.", field=f"retrieval.{name}")
-    if merged["bm25"] not in ("smoothed", "okapi"):
-        raise InvalidRequest("retrieval.bm25 must be smoothed or okapi.", field="retrieval.bm25")
-    if merged["metric"] not in ("cosine", "dot", "euclidean"):
-        raise InvalidRequest(
-            "retrieval.metric must be cosine, dot or euclidean.", field="retrieval.metric"
-        )
-    for name, low, high in (("k1", 0.0, 10.0), ("b", 0.0, 1.0)):
-        value = merged[name]
-        if (
-            isinstance(value, bool)
-            or not isinstance(value, int | float)
-            or not low <= value <= high
-        ):
-            raise InvalidRequest(
-                f"retrieval.{name} must be a number from {low} to {high}.",
-                field=f"retrieval.{name}",
-            )
-        merged[name] = float(value)
-    for name in ("stemming", "stopwords"):
-        if not isinstance(merged[name], bool):
-            raise InvalidRequest(
-                f"retrieval.{name} must be true or false.", field=f"retrieval.{name}"
-            )
-    return merged
 
 
 def default_vectors() -> dict[str, Any]:
@@ -265,7 +226,7 @@ def _put_collection(
             spec.chunking if spec.chunking is not None else (row.chunking if row else {}), window
         )
         current_settings = dict(row.settings) if row else {}
-        retrieval = _checked_retrieval(spec.retrieval or {}, current_settings.get("retrieval", {}))
+        retrieval = checked_retrieval(spec.retrieval or {}, current_settings.get("retrieval", {}))
         vectors = _checked_vectors(spec.vectors or {}, current_settings.get("vectors", {}))
         hints = _checked_hints(
             spec.attributes or {}, schema, current_settings.get("inference_hints", {})
@@ -439,7 +400,7 @@ def collection_view(
         "chunking": pending or row.chunking,
         "cite_attributes": row.cite_attributes,
         "answer_caution": row.answer_caution,
-        "retrieval": row.settings.get("retrieval", DEFAULT_RETRIEVAL),
+        "retrieval": {**DEFAULT_RETRIEVAL, **row.settings.get("retrieval", {})},
         "vectors": row.settings.get("vectors", default_vectors()),
         "tokenizer": tokenizer,
         "embedder": row.embedder,

@@ -8,9 +8,9 @@ decides the numbers is shared.
 from __future__ import annotations
 
 from collections.abc import Collection, Mapping
-from dataclasses import replace
 from typing import cast
 
+from service.errors import InvalidRequest
 from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
@@ -19,12 +19,18 @@ from service.filters.check import check_filter
 from service.filters.parse import parse_filter
 from service.index.lexical import LexicalScoring
 from service.retrieval.query import Mode
+from service.retrieval.ranking_settings import RankingSettings
 from service.store import repository
 from service.store.filter_sql import compile_filter
 from service.usecases import answering
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.collections import attribute_schema, get_collection, load_collection
 from service.usecases.inference import OFF, infer_options
+from service.usecases.retrieval_settings import (
+    checked_retrieval,
+    lexical_scoring,
+    ranking_settings,
+)
 from service.usecases.runtime import Runtime
 from service.usecases.search import SearchOptions
 
@@ -41,6 +47,9 @@ class StoreBackend:
         self.runtime = runtime
         self.collection = collection
         self._vectors: dict[str, list[float]] = {}
+        self._settings: dict[
+            tuple[tuple[str, str], ...], tuple[LexicalScoring | None, RankingSettings | None]
+        ] = {}
 
     def _query_vector(self, text: str, mode: str) -> list[float] | None:
         """The text's query vector, embedded once for all the searches and systems that ask."""
@@ -62,6 +71,8 @@ class StoreBackend:
     ) -> list[tuple[str, float]]:
         infer_filter = OFF if infer is None else infer_options(infer)
         vector = self._query_vector(text, mode)
+        scoring, ranking = self._overrides(settings)
+        rrf_k = settings.get("rrf_k")
 
         def run(chunks: int) -> ChunkHits:
             options = SearchOptions(
@@ -70,10 +81,11 @@ class StoreBackend:
                 mode=cast(Mode, mode),
                 top_k=chunks,
                 depth=chunks,
-                rrf_k=int(settings.get("rrf_k", 60)),  # type: ignore[call-overload]
+                rrf_k=None if rrf_k is None else int(rrf_k),  # type: ignore[call-overload]
                 query_vector=vector,
                 infer_filter=infer_filter,
-                scoring=self._scoring(settings),
+                scoring=scoring,
+                ranking=ranking,
             )
             result = answering.search(
                 self.runtime, LOCAL_ADMIN, self.collection, options, keep_trace=False
@@ -84,16 +96,24 @@ class StoreBackend:
         chunk_limit = min(MAX_CHUNKS, limits.max_top_k, limits.max_depth)
         return DocumentRanking(run, chunk_limit).rank(depth)
 
-    def _scoring(self, settings: Mapping[str, object]) -> LexicalScoring | None:
-        """BM25 settings varied by the evaluation, over the collection's own for the rest."""
-        if "k1" not in settings and "b" not in settings:
-            return None
-        scoring = self.runtime.indexes.view(self.collection).scoring
-        return replace(
-            scoring,
-            k1=float(settings.get("k1", scoring.k1)),  # type: ignore[arg-type]
-            b=float(settings.get("b", scoring.b)),  # type: ignore[arg-type]
-        )
+    def _overrides(
+        self, settings: Mapping[str, object]
+    ) -> tuple[LexicalScoring | None, RankingSettings | None]:
+        """BM25 settings and hybrid steps varied by the evaluation, over the collection's own
+        for the rest (None where the system varies none of them)."""
+        key = tuple(sorted((name, repr(value)) for name, value in settings.items()))
+        if key not in self._settings:
+            varied = {name: value for name, value in settings.items() if name != "rrf_k"}
+            if not varied:
+                self._settings[key] = (None, None)
+            else:
+                stored = get_collection(self.runtime, LOCAL_ADMIN, self.collection)["retrieval"]
+                try:
+                    merged = checked_retrieval(varied, stored)
+                except InvalidRequest as exc:
+                    raise ValueError(exc.message) from exc
+                self._settings[key] = (lexical_scoring(merged), ranking_settings(merged))
+        return self._settings[key]
 
     def documents_failing_filter(self, filter: FilterSpec, doc_ids: Collection[str]) -> set[str]:
         passing = self.documents_passing(filter)

@@ -37,11 +37,11 @@ import numpy as np
 from service.attributes import AttributeValue, Schema, normalize_value, parse_schema
 from service.errors import CollectionNotFound
 from service.filters.inference.hints import AttributeHints, stored_hints
-from service.index.analyzer import Analyzer, english_stopwords
+from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord, CollectionIndex, IndexSnapshot
 from service.index.document_text import gaps_between
 from service.index.graph import GraphSettings, VectorIndexSettings
-from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
+from service.index.lexical import LexicalScoring
 from service.index.records import chunk_record
 from service.index.saved import IndexDirectory, SavedIdentity, SavedIndexInfo, SavedIndexRejected
 from service.index.vectors import Metric
@@ -50,6 +50,7 @@ from service.store import repository
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow
 from service.store.transactions import Transactions
 from service.usecases.drafts import MaterialisedDocument
+from service.usecases.retrieval_settings import analyzer_for, lexical_scoring, ranking_settings
 
 log = logging.getLogger("excerpta.index")
 
@@ -58,13 +59,6 @@ def vector_settings(stored: Mapping[str, Any]) -> VectorIndexSettings:
     """A collection's stored ``vectors`` settings (checked when they were put)."""
     return VectorIndexSettings(
         index=stored.get("index", "auto"), graph=GraphSettings(**stored.get("graph", {}))
-    )
-
-
-def analyzer_for(retrieval: Mapping[str, Any]) -> Analyzer:
-    return Analyzer(
-        english_stopwords() if retrieval.get("stopwords", True) else None,
-        "english" if retrieval.get("stemming", True) else None,
     )
 
 
@@ -737,14 +731,11 @@ def _header(row: CollectionRow) -> CollectionHeader:
             cite_attributes=tuple(row.cite_attributes),
             answer_caution=row.answer_caution,
             inference_hints=stored_hints(schema, row.settings),
+            ranking=ranking_settings(retrieval),
         ),
         generation=row.chunk_generation,
         revision=row.revision,
-        scoring=LexicalScoring(
-            k1=float(retrieval.get("k1", DEFAULT_K1)),
-            b=float(retrieval.get("b", DEFAULT_B)),
-            variant=cast(Bm25Variant, retrieval.get("bm25", "smoothed")),
-        ),
+        scoring=lexical_scoring(retrieval),
         metric=cast(Metric, retrieval.get("metric", "cosine")),
         analyzer=analyzer_for(retrieval),
         vectors=vector_settings(row.settings.get("vectors", {})),
@@ -767,6 +758,8 @@ def _rows_made_by(schema: Schema, analyzer: Analyzer) -> str:
         "schema": {name: type_.value for name, type_ in sorted(schema.items())},
         "stopwords": sorted(analyzer.stopwords),
         "stemming": analyzer.stem_language,
+        "title_weight": analyzer.title_weight,
+        "section_weight": analyzer.section_weight,
     }
     return hashlib.sha256(json.dumps(described).encode("utf-8")).hexdigest()[:16]
 

@@ -28,6 +28,7 @@ from service.generation.filter_proposal import ChatFilterProposer
 from service.index.lexical import LexicalScoring
 from service.index.view import IndexView
 from service.retrieval.query import Mode, RetrievalQuery
+from service.retrieval.ranking_settings import RankingSettings
 from service.usecases.inference import OFF, InferOptions, InferredFilter, infer_for_request
 
 FilterSpec = str | dict[str, Any] | None
@@ -47,8 +48,8 @@ class TimeWindow:
 class SearchOptions:
     """One request's retrieval options as the caller sent them.
 
-    ``scoring`` replaces the collection's BM25 settings; evaluation sets it to compare
-    parameters, the HTTP API never does.
+    ``scoring`` and ``ranking`` replace the collection's BM25 settings and hybrid steps;
+    evaluation and tuning set them to compare settings, the HTTP API never does.
     """
 
     query: str
@@ -56,11 +57,12 @@ class SearchOptions:
     time_window: TimeWindow | None = None
     top_k: int = 10
     mode: Mode = "hybrid"
-    rrf_k: int = 60
+    rrf_k: int | None = None
     depth: int = 100
     query_vector: Sequence[float] | None = None
     infer_filter: InferOptions = OFF
     scoring: LexicalScoring | None = None
+    ranking: RankingSettings | None = None
 
     def as_request(self) -> dict[str, Any]:
         """What the trace records of the request; ``depth_used`` is the depth after raising it
@@ -72,6 +74,7 @@ class SearchOptions:
             "top_k": self.top_k,
             "mode": self.mode,
             "rrf_k": self.rrf_k,
+            "ranking": None if self.ranking is None else "evaluation's own",
             "depth": self.depth,
             "depth_used": max(self.depth, self.top_k),
             "query_vector": None
@@ -123,7 +126,7 @@ def check_limits(options: SearchOptions, limits: Settings, dimensions: int) -> N
         raise LimitExceeded(f"top_k may be at most {limits.max_top_k}.", limit="top_k")
     if options.depth > limits.max_depth:
         raise LimitExceeded(f"depth may be at most {limits.max_depth}.", limit="depth")
-    if options.rrf_k < 1:
+    if options.rrf_k is not None and options.rrf_k < 1:
         raise InvalidRequest("rrf_k must be at least 1.", field="rrf_k")
     if options.query_vector is not None:
         _check_query_vector(options.query_vector, dimensions)
@@ -232,6 +235,7 @@ def prepare_query(
             vector = embedder.embed_query(options.query)
         milliseconds = (time.perf_counter() - started) * 1000.0
     tokens = () if options.mode == "semantic" else tuple(view.analyzer.tokens(options.query))
+    ranking = options.ranking or view.facts.ranking
     query = RetrievalQuery(
         mode=options.mode,
         tokens=tokens,
@@ -240,9 +244,10 @@ def prepare_query(
         groups=groups,
         top_k=options.top_k,
         depth=depth,
-        rrf_k=options.rrf_k,
+        rrf_k=options.rrf_k if options.rrf_k is not None else ranking.rrf_k,
         keep=depth if whole_ranking else options.top_k,
         scoring=options.scoring or view.scoring,
+        ranking=ranking,
         trace_top=TRACE_TOP_ENTRIES,
     )
     return PreparedQuery(query, notes, milliseconds, source, inferred, parts)

@@ -110,6 +110,7 @@ class TraceRecorder:
                 for entry in stage.top
             ],
             **({} if stage.plan is None else {"plan": asdict(stage.plan)}),
+            **({"notes": dict(stage.notes)} if stage.notes else {}),
             **details,
         )
 

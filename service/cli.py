@@ -19,10 +19,13 @@ import time
 from collections.abc import Callable, Sequence
 from importlib.metadata import version
 from pathlib import Path
-from typing import Any, NoReturn
+from typing import TYPE_CHECKING, Any, NoReturn
 
 from service.config import Settings
 from service.errors import ServiceError
+
+if TYPE_CHECKING:
+    from service.ingest.remote_jobs import RemoteJobs
 
 DEMO_COLLECTION = "bikes"
 DEFAULT_INGEST_BATCH = 4
@@ -329,7 +332,8 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 
 def _ingest_to_server(args: argparse.Namespace) -> int:
-    from service.ingest.remote_jobs import RemoteJobs, ServerRefused
+    from service.ingest.remote_jobs import RemoteJobs
+    from service.server_client import ServerRefused
 
     if args.batch_size is not None:
         print(
@@ -358,7 +362,7 @@ def _ingest_to_server(args: argparse.Namespace) -> int:
 
 
 def ingest_to_server(
-    remote: Any,
+    remote: RemoteJobs,
     collection: str,
     path: Path,
     *,
@@ -402,7 +406,7 @@ def ingest_to_server(
 
 
 def _send_batch(
-    remote: Any,
+    remote: RemoteJobs,
     collection: str,
     batch: list[tuple[str, dict[str, Any]]],
     shown: JobProgress,
@@ -436,7 +440,7 @@ def _send_batch(
 
 
 def _follow_remote_jobs(
-    remote: Any, sent: Sequence[tuple[str, list[str]]], shown: JobProgress, pause: float
+    remote: RemoteJobs, sent: Sequence[tuple[str, list[str]]], shown: JobProgress, pause: float
 ) -> int:
     """Read each job until it finishes, moving the bar by each document it wrote."""
     seen = {job_id: (0, 0) for job_id, _ in sent}  # results, errors already shown
@@ -857,10 +861,11 @@ def _set_options(values: list[str]) -> dict[str, list[str]]:
 
 
 def cmd_eval(args: argparse.Namespace) -> int:
-    from service.evaluation.http_backend import SERVER_ONLY_SETTINGS, HttpBackend, ServerRefused
+    from service.evaluation.http_backend import SERVER_ONLY_SETTINGS, HttpBackend
     from service.evaluation.inputs import inline_qrels, read_qrels, read_queries
     from service.evaluation.report import write_report
     from service.evaluation.runner import EvaluationBackend, evaluate, systems_from_options
+    from service.server_client import ServerRefused
     from service.usecases.evaluate import MAX_CHUNKS, StoreBackend
 
     if (args.queries is None) == (args.answers is None):
@@ -932,8 +937,9 @@ def _evaluate_answers(args: argparse.Namespace) -> int:
         read_answer_questions,
         write_answer_report,
     )
-    from service.evaluation.http_backend import HttpAnswers, HttpBackend, ServerRefused
+    from service.evaluation.http_backend import HttpAnswers, HttpBackend
     from service.evaluation.inputs import LabelFileError
+    from service.server_client import ServerRefused
     from service.usecases.evaluate import StoreAnswers
 
     try:

@@ -17,15 +17,12 @@ from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import ChunkHits, DocumentRanking, settings_in_effect
 from service.evaluation.inputs import FilterSpec
 from service.evaluation.runner import SETTING_MODES, InferRequest
+from service.server_client import ServerClient
 
 # The server's own limit on top_k and depth, by default.
 CHUNK_LIMIT = 1000
 PAGE = 1000
 SERVER_ONLY_SETTINGS = tuple(name for name in SETTING_MODES if name != "rrf_k")
-
-
-class ServerRefused(Exception):
-    """The server could not be reached or refused a request; the message says which and why."""
 
 
 class HttpBackend:
@@ -37,24 +34,14 @@ class HttpBackend:
         *,
         transport: httpx.BaseTransport | None = None,
     ) -> None:
-        headers = {"Authorization": f"Bearer {key}"} if key else {}
-        self.client = httpx.Client(
-            base_url=url.rstrip("/"), headers=headers, timeout=60.0, transport=transport
-        )
+        self.client = ServerClient(url, key, transport=transport)
         self.collection = collection
 
     def close(self) -> None:
         self.client.close()
 
     def send(self, method: str, path: str, **options: Any) -> dict[str, Any]:
-        try:
-            response = self.client.request(method, path, **options)
-        except httpx.TransportError as exc:
-            raise ServerRefused(f"cannot reach {self.client.base_url}: {exc}") from exc
-        if response.is_error:
-            raise ServerRefused(_refusal(response))
-        body: dict[str, Any] = response.json()
-        return body
+        return self.client.send(method, path, **options)
 
     def rank_documents(
         self,
@@ -167,17 +154,5 @@ class HttpAnswers:
             "generator": self.generator or "server default",
             "token_budget": self.token_budget,
             "mode": "hybrid",
-            "url": str(self.backend.client.base_url),
+            "url": self.backend.client.base_url,
         }
-
-
-def _refusal(response: httpx.Response) -> str:
-    """The server's own error message where it sent one in the service's error shape."""
-    request = response.request
-    where = f"{request.method} {request.url.path}"
-    try:
-        error = response.json()["error"]
-        detail = f"{error['code']}: {error['message']}"
-    except (ValueError, KeyError, TypeError):
-        detail = response.reason_phrase or "no reason given"
-    return f"the server answered {response.status_code} to {where} ({detail})"

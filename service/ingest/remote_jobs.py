@@ -13,12 +13,9 @@ from typing import Any
 
 import httpx
 
-TIMEOUT_SECONDS = 60.0
+from service.server_client import ServerClient, ServerRefused, refusal
+
 FINISHED = ("done", "failed", "cancelled")
-
-
-class ServerRefused(Exception):
-    """The server could not be reached or refused a request; the message says which and why."""
 
 
 @dataclass(frozen=True)
@@ -65,22 +62,19 @@ class RemoteJobs:
     def __init__(
         self, url: str, key: str | None, *, transport: httpx.BaseTransport | None = None
     ) -> None:
-        headers = {"Authorization": f"Bearer {key}"} if key else {}
-        self._client = httpx.Client(
-            base_url=url.rstrip("/"), headers=headers, timeout=TIMEOUT_SECONDS, transport=transport
-        )
+        self._server = ServerClient(url, key, transport=transport)
 
     def close(self) -> None:
-        self._client.close()
+        self._server.close()
 
     def put_collection(self, name: str, schema: Mapping[str, Any]) -> None:
-        self._send("PUT", f"/v1/collections/{name}", json=dict(schema))
+        self._server.send("PUT", f"/v1/collections/{name}", json=dict(schema))
 
     def submit(self, collection: str, documents: Sequence[Mapping[str, Any]]) -> str:
         """Record a job writing ``documents``; its id. A batch with an invalid document is
         refused whole (``DocumentsRefused`` names each), as is one past a limit
         (``BatchTooLarge``)."""
-        response = self._request(
+        response = self._server.request(
             "POST",
             f"/v1/collections/{collection}/documents",
             json={"documents": list(documents), "wait": False},
@@ -92,11 +86,11 @@ class RemoteJobs:
             if error.get("code") in ("payload_too_large", "limit_exceeded"):
                 raise BatchTooLarge(str(error.get("message")))
         if response.status_code != 202:
-            raise ServerRefused(_refusal(response))
+            raise ServerRefused(refusal(response))
         return str(response.json()["job_id"])
 
     def job(self, job_id: str) -> RemoteJob:
-        body = self._send("GET", f"/v1/jobs/{job_id}")
+        body = self._server.send("GET", f"/v1/jobs/{job_id}")
         counts = body["counts"]
         failure = body.get("error")
         return RemoteJob(
@@ -113,22 +107,9 @@ class RemoteJobs:
     def cancel(self, job_id: str) -> None:
         """Ask the server to stop the job at its next batch; one that finished meanwhile is
         left as it is."""
-        response = self._request("DELETE", f"/v1/jobs/{job_id}")
+        response = self._server.request("DELETE", f"/v1/jobs/{job_id}")
         if response.is_error and response.status_code != 409:
-            raise ServerRefused(_refusal(response))
-
-    def _send(self, method: str, path: str, **options: Any) -> dict[str, Any]:
-        response = self._request(method, path, **options)
-        if response.is_error:
-            raise ServerRefused(_refusal(response))
-        body: dict[str, Any] = response.json()
-        return body
-
-    def _request(self, method: str, path: str, **options: Any) -> httpx.Response:
-        try:
-            return self._client.request(method, path, **options)
-        except httpx.TransportError as exc:
-            raise ServerRefused(f"cannot reach {self._client.base_url}: {exc}") from exc
+            raise ServerRefused(refusal(response))
 
 
 def _refused(problem: Mapping[str, Any]) -> RefusedDocument:
@@ -137,11 +118,3 @@ def _refused(problem: Mapping[str, Any]) -> RefusedDocument:
         id=None if problem.get("id") is None else str(problem["id"]),
         message=str(problem.get("message") or problem.get("reason")),
     )
-
-
-def _refusal(response: httpx.Response) -> str:
-    try:
-        message = response.json()["error"]["message"]
-    except (ValueError, KeyError, TypeError):
-        message = response.text[:200]
-    return f"the server answered {response.status_code}: {message}"

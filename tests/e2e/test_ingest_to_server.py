@@ -15,7 +15,8 @@ import httpx
 import pytest
 
 from service.cli import ingest_to_server, main
-from service.ingest.remote_jobs import RemoteJobs, ServerRefused
+from service.ingest.remote_jobs import RemoteJobs
+from service.server_client import ServerRefused
 from service.usecases.job_queues import StoreQueue
 from service.usecases.runtime import Runtime
 from service.usecases.workers import work_from_store

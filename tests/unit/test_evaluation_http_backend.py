@@ -11,7 +11,8 @@ import pytest
 
 from service.evaluation.answers import CitedPlace, ObservedAnswer
 from service.evaluation.backends import DocumentRanking, documents_from_hits
-from service.evaluation.http_backend import HttpAnswers, HttpBackend, ServerRefused
+from service.evaluation.http_backend import HttpAnswers, HttpBackend
+from service.server_client import ServerRefused
 
 COLLECTION_VIEW = {
     "retrieval": {"bm25": "smoothed", "k1": 1.2, "b": 0.75, "metric": "cosine"},

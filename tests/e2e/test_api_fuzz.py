@@ -7,6 +7,7 @@ in-process over ASGI with an admin key, against a collection that holds document
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
@@ -82,11 +83,22 @@ def fuzz_target(make_runtime: Callable[..., Runtime]) -> Iterator[FuzzTarget]:
     collections.put_collection(runtime, LOCAL_ADMIN, "bikes", spec)
     documents.upsert_documents(runtime, LOCAL_ADMIN, "bikes", SEED_DOCUMENTS)
     key = make_key(runtime, "admin", name="fuzz-admin")
+    # Loaded before the first request, so /readyz answers for a ready server: its 503 while the
+    # index is built is the server's state, not something a request caused.
+    runtime.indexes.start_background()
+    _wait_until_ready(runtime)
     try:
         yield FuzzTarget(create_app(runtime), key)
     finally:
         # The ASGI transport keeps each app's lifespan running until told otherwise.
         shutdown_lifespans()
+
+
+def _wait_until_ready(runtime: Runtime, timeout: float = 30.0) -> None:
+    deadline = time.monotonic() + timeout
+    while (reason := runtime.indexes.not_ready()) is not None:
+        assert time.monotonic() < deadline, reason
+        time.sleep(0.02)
 
 
 def _openapi_document() -> dict[str, Any]:

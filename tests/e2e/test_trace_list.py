@@ -184,3 +184,24 @@ def test_the_access_log_names_the_trace_each_response_carries(
     records = [r for r in caplog.records if r.name == "excerpta.access"]
     assert [getattr(r, "trace_id", "absent") for r in records] == [returned, failed, None]
     assert [r.getMessage().rsplit(" ", 1)[-1] for r in records] == [returned, failed, "-"]
+
+
+@pytest.mark.parametrize(
+    "filter_value",
+    [
+        "model_year = 100000000000000000000000",
+        {"op": "=", "args": [{"property": "model_year"}, 2**70]},
+    ],
+)
+def test_a_query_holding_an_integer_beyond_64_bits_keeps_its_trace(
+    keys: Keys, filter_value: Any
+) -> None:
+    response = keys.reader.post(
+        "/v1/collections/bikes/search", json={"query": "brakes", "filter": filter_value}
+    )
+    body = response.json()
+    trace_id = body["trace_id"] if response.status_code == 200 else body["error"]["trace_id"]
+    keys.runtime.traces.stop()  # writes every held trace
+    assert keys.runtime.traces.waiting() == 0
+    trace = keys.reader.get(f"/v1/traces/{trace_id}").json()
+    assert trace["request"]["filter"] == filter_value

@@ -55,3 +55,12 @@ def test_floats_keep_every_bit_and_text_stays_unescaped() -> None:
     encoded = json_bytes(value)
     assert json.loads(encoded) == value
     assert "Größe ✓".encode() in encoded
+
+
+def test_an_integer_beyond_64_bits_is_written_exactly_as_the_standard_library_writes_it() -> None:
+    # A caller may send one (a fuzzed top_k did); its trace records the body it sent.
+    value = {"top_k": 10**30, "nested": [-(2**70), {"k": 2**64}], "text": "Größe"}
+    assert json.loads(json_text(value)) == value
+    assert (
+        json_bytes(value) == json.dumps(value, ensure_ascii=False, separators=(",", ":")).encode()
+    )

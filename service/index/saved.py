@@ -88,7 +88,9 @@ class SavedIdentity:
     """What an index was built from; a saved index is used only where all of it matches.
 
     ``rows_made_by`` names how the rows were made from the store (the schema and the text
-    analysis), as a fingerprint the registry computes.
+    analysis), as a fingerprint the registry computes. ``collection_created`` (ISO 8601) tells a
+    collection from one made again under its name, which SQLite may give the same id; a
+    manifest written before it was recorded has none, so its index is built afresh once.
     """
 
     store_id: str
@@ -98,6 +100,7 @@ class SavedIdentity:
     dimension: int
     metric: str
     rows_made_by: str
+    collection_created: str = ""
 
 
 @dataclass(frozen=True)
@@ -169,6 +172,13 @@ class IndexDirectory:
         _flush(folder)
         _remove_old_versions(folder, keep=version)
         return _info(manifest)
+
+    def remove(self, name: str) -> None:
+        """Remove the collection's saved index (it was deleted): the manifest first, so a
+        removal cut short leaves nothing that reads as an index."""
+        folder = self.folder(name)
+        (folder / MANIFEST).unlink(missing_ok=True)
+        shutil.rmtree(folder, ignore_errors=True)
 
     # reading -------------------------------------------------------------------------------
 
@@ -455,7 +465,10 @@ def _check_identity(saved: SavedIdentity, wanted: SavedIdentity) -> None:
             f"it was saved with the embedder {saved.embedder} ({saved.dimension} dimensions), "
             f"not {wanted.embedder} ({wanted.dimension}).",
         )
-    if saved.collection_id != wanted.collection_id:
+    if (saved.collection_id, saved.collection_created) != (
+        wanted.collection_id,
+        wanted.collection_created,
+    ):
         raise SavedIndexRejected("foreign", "it was saved from an earlier collection of the name.")
     if saved.generation != wanted.generation:
         raise SavedIndexRejected("outdated", "the collection was chunked again since it was saved.")

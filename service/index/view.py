@@ -3,6 +3,7 @@ the facts it needs beside the index, so that a query reads nothing from the stor
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
@@ -16,7 +17,12 @@ from service.retrieval.ranking_settings import PLAIN_FUSION, RankingSettings
 
 @dataclass(frozen=True)
 class CollectionFacts:
+    """What a query needs of a collection beside its index. ``collection_id`` and
+    ``created_at`` name the collection itself: a collection made again under a deleted one's
+    name may get its id back (SQLite reuses the largest), never its creation time."""
+
     collection_id: int
+    created_at: dt.datetime
     schema: Schema
     cite_attributes: tuple[str, ...]
     answer_caution: str | None

@@ -114,10 +114,12 @@ def bump_revision(
 
 def collection_state(
     session: Session, collection_id: int
-) -> Row[int, list[str], str | None, dict[str, Any]] | None:
-    """The parts of a collection a query reads that can change without a new revision."""
+) -> Row[dt.datetime, int, list[str], str | None, dict[str, Any]] | None:
+    """The parts of a collection a query reads that can change without a new revision, and
+    when it was made (another collection may have taken a deleted one's id)."""
     return session.execute(
         select(
+            CollectionRow.created_at,
             CollectionRow.revision,
             CollectionRow.cite_attributes,
             CollectionRow.answer_caution,

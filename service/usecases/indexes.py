@@ -20,6 +20,7 @@ collection at start (``_warm``); until that is done ``not_ready`` says why, for 
 from __future__ import annotations
 
 import contextlib
+import datetime as dt
 import hashlib
 import itertools
 import json
@@ -137,12 +138,14 @@ class IndexSource(Protocol):
         self,
         collection_id: int,
         *,
+        created_at: dt.datetime,
         revision: int,
         generation: int,
         analyzer: Analyzer,
         schema: Schema,
     ) -> CollectionUpdate | None:
-        """What changed since ``revision``, or None when the collection is gone."""
+        """What changed since ``revision``, or None when the collection is gone (another
+        made since under its name and id is not it: its ``created_at`` differs)."""
         ...
 
 
@@ -390,6 +393,7 @@ class IndexRegistry:
         return SavedIdentity(
             store_id=saved.store_id,
             collection_id=facts.collection_id,
+            collection_created=facts.created_at.isoformat(),
             generation=generation,
             embedder=saved.embedder,
             dimension=self._dimensions,
@@ -401,6 +405,7 @@ class IndexRegistry:
         """What the store changed since the entry's revision; None when the collection is gone."""
         return self._source.update(
             entry.facts.collection_id,
+            created_at=entry.facts.created_at,
             revision=entry.revision,
             generation=entry.generation,
             analyzer=entry.analyzer,
@@ -463,8 +468,12 @@ class IndexRegistry:
             entry.revision = revision
 
     def forget(self, name: str) -> None:
+        """Drop a deleted collection's index, and its saved copy, which no later collection of
+        the name may read back."""
         with self._lock:
             self._entries.pop(name, None)
+        if self._saved is not None:
+            self._saved.directory.remove(name)
 
     # background compaction ------------------------------------------------------------------
 
@@ -602,6 +611,11 @@ class IndexRegistry:
         entry.saved, entry.saved_at = shape, time.monotonic()
         with self._lock:
             self._saves["saved"] += 1
+            forgotten = name not in self._entries
+        if forgotten:
+            # Deleted while it was being saved: ``forget`` may have removed the folder first.
+            saved.directory.remove(name)
+            return
         log.info(
             "index of collection %r: saved at revision %d (%d rows, %.1f MiB) in %.2f s",
             name,
@@ -687,6 +701,7 @@ class StoreIndexSource:
         self,
         collection_id: int,
         *,
+        created_at: dt.datetime,
         revision: int,
         generation: int,
         analyzer: Analyzer,
@@ -694,7 +709,7 @@ class StoreIndexSource:
     ) -> CollectionUpdate | None:
         with self._transactions.read() as session:
             state = repository.collection_state(session, collection_id)
-            if state is None:
+            if state is None or state.created_at != created_at:
                 return None
             unchanged = CollectionUpdate(
                 cite_attributes=tuple(state.cite_attributes),
@@ -725,6 +740,7 @@ def _header(row: CollectionRow) -> CollectionHeader:
     return CollectionHeader(
         facts=CollectionFacts(
             collection_id=row.id,
+            created_at=row.created_at,
             schema=schema,
             cite_attributes=tuple(row.cite_attributes),
             answer_caution=row.answer_caution,

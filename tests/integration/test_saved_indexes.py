@@ -18,6 +18,7 @@ from pathlib import Path
 import pytest
 
 from service.index.saved import IndexDirectory
+from service.store import repository
 from service.usecases import answering, collections, documents
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.indexes import (
@@ -262,3 +263,74 @@ def test_a_query_during_a_rebuild_waits_for_it_instead_of_building_a_second_inde
     held.registry.stop()
     assert held.source.loads == 1
     assert held.registry.not_ready() is None
+
+
+def test_deleting_a_collection_removes_its_saved_index(store: Runtime) -> None:
+    store.indexes.view("notes")
+    store.indexes.maintain()
+    folder = store.settings.resolved_index_dir() / "notes"
+    assert (folder / "manifest.json").is_file()
+
+    collections.delete_collection(store, LOCAL_ADMIN, "notes")
+
+    assert not folder.exists()
+
+
+def test_a_collection_made_again_under_a_deleted_ones_name_never_reads_its_saved_index(
+    store: Runtime, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """A replica's folder outlives the collection when another process deletes it. SQLite
+    gives the new row the deleted one's id ("one larger than the largest ROWID in the table",
+    sqlite.org/autoinc.html), so the id alone cannot tell the two collections apart."""
+    folder = tmp_path / "replica"
+    saved_once(store, folder)
+    with store.transaction() as session:
+        old = repository.collection_by_name(session, "notes")
+        assert old is not None
+        old_id = old.id
+    collections.delete_collection(store, LOCAL_ADMIN, "notes")
+    collections.put_collection(
+        store,
+        LOCAL_ADMIN,
+        "notes",
+        collections.CollectionSpec(
+            attributes={"model": {"type": "keyword"}, "year": {"type": "integer"}},
+        ),
+    )
+    write(store, range(5), version=1)
+    with store.transaction() as session:
+        again = repository.collection_by_name(session, "notes")
+        assert again is not None and again.id == old_id
+
+    caplog.set_level(logging.INFO, logger="excerpta.index")
+    restarted = start(store, folder)
+    found = results(store, restarted.registry)
+    assert restarted.source.loads == 1
+    assert restarted.registry.start_counts() == {("rebuilt", "foreign"): 1}
+    assert "saved from an earlier collection of the name" in caplog.text
+    assert found == results(store, start(store, None).registry)
+
+
+def test_an_index_in_memory_follows_a_collection_made_again_under_the_same_id(
+    store: Runtime,
+) -> None:
+    """Another process deleted the collection and made it again, and SQLite gave the new one
+    the old id: the replica's index of the old one is dropped, not caught up."""
+    own = store.indexes
+    replica = start(store, None)
+    results(store, replica.registry)
+    store.indexes = own
+    collections.delete_collection(store, LOCAL_ADMIN, "notes")
+    collections.put_collection(
+        store,
+        LOCAL_ADMIN,
+        "notes",
+        collections.CollectionSpec(
+            attributes={"model": {"type": "keyword"}, "year": {"type": "integer"}},
+        ),
+    )
+    write(store, range(5), version=1)
+
+    found = results(store, replica.registry)
+    assert replica.source.loads == 2
+    assert found == results(store, start(store, None).registry)

@@ -7,6 +7,7 @@ forgetting deleted collections and compacting in the background.
 
 from __future__ import annotations
 
+import datetime as dt
 import time
 from dataclasses import replace
 from pathlib import Path
@@ -34,6 +35,7 @@ from service.usecases.indexes import (
 from tests.unit.test_index_collection import DIMENSION, chunk
 
 SCHEMA = {"model": AttributeType.KEYWORD}
+CREATED = dt.datetime(2026, 3, 1, 9, 30, tzinfo=dt.UTC)
 
 
 class FakeSource:
@@ -49,6 +51,7 @@ class FakeSource:
         self.collections[name] = LoadedCollection(
             facts=CollectionFacts(
                 collection_id=collection_id,
+                created_at=CREATED,
                 schema=SCHEMA,
                 cite_attributes=(),
                 answer_caution=None,
@@ -79,6 +82,7 @@ class FakeSource:
         self,
         collection_id: int,
         *,
+        created_at: dt.datetime,
         revision: int,
         generation: int,
         analyzer: Analyzer,

@@ -39,6 +39,7 @@ IDENTITY = SavedIdentity(
     dimension=DIMENSION,
     metric="cosine",
     rows_made_by="schema-and-analysis",
+    collection_created="2026-03-01T09:30:00+00:00",
 )
 WORDS = ["brake", "chain", "saddle", "tyre", "gear", "frame", "light", "pedal", "hub", "spoke"]
 
@@ -183,6 +184,7 @@ def test_an_index_read_back_takes_writes_and_compacts_like_any_other(tmp_path: P
         ({"store_id": "store-b"}, "foreign"),
         ({"embedder": "minilm", "dimension": 384}, "foreign"),
         ({"collection_id": 4}, "foreign"),
+        ({"collection_created": "2026-03-02T10:00:00+00:00"}, "foreign"),
         ({"generation": 1}, "outdated"),
         ({"rows_made_by": "other"}, "outdated"),
     ],
@@ -195,6 +197,17 @@ def test_an_index_of_another_store_embedder_or_collection_is_refused(
     with pytest.raises(SavedIndexRejected) as refused:
         load(directory, dataclasses.replace(IDENTITY, **changed))  # type: ignore[arg-type]
     assert refused.value.kind == kind
+
+
+def test_a_removed_index_is_missing_and_removing_none_is_no_error(tmp_path: Path) -> None:
+    directory = IndexDirectory(tmp_path)
+    directory.save("notes", built_index().snapshot(), IDENTITY)
+    directory.remove("notes")
+    directory.remove("notes")
+    assert not directory.folder("notes").exists()
+    with pytest.raises(SavedIndexRejected) as refused:
+        load(directory)
+    assert refused.value.kind == "missing"
 
 
 def test_a_flipped_byte_in_any_file_is_found_before_the_file_is_parsed(tmp_path: Path) -> None:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import datetime as dt
+
 import numpy as np
 import pytest
 
@@ -17,12 +19,13 @@ from tests.hashing_embedder import HashingTestEmbedder
 
 EMBEDDER = HashingTestEmbedder()
 SCHEMA = {"published": AttributeType.DATETIME, "model": AttributeType.KEYWORD}
+CREATED = dt.datetime(2026, 3, 1, 9, 30, tzinfo=dt.UTC)
 
 
 def view() -> IndexView:
     index = CollectionIndex.build([], metric="cosine", dimension=EMBEDDER.dimensions, schema=SCHEMA)
     return IndexView(
-        facts=CollectionFacts(1, SCHEMA, (), None),
+        facts=CollectionFacts(1, CREATED, SCHEMA, (), None),
         snapshot=index.snapshot(),
         analyzer=Analyzer.english(),
         scoring=LexicalScoring(k1=0.9, b=0.4),

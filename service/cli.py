@@ -15,22 +15,16 @@ import json
 import os
 import signal
 import sys
-import time
 from collections.abc import Callable, Sequence
 from importlib.metadata import version
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, NoReturn
+from typing import Any, NoReturn, TextIO
 
 from service.config import Settings
 from service.errors import ServiceError
 
-if TYPE_CHECKING:
-    from service.ingest.remote_jobs import RemoteJobs
-
 DEMO_COLLECTION = "bikes"
 DEFAULT_INGEST_BATCH = 4
-# Documents per job sent to a server: well under its batch and body limits for ordinary files.
-SERVER_JOB_DOCUMENTS = 100
 
 
 def _settings(args: argparse.Namespace, **fixed: Any) -> Settings:
@@ -122,198 +116,56 @@ def cmd_migrate(args: argparse.Namespace) -> int:
 # ingest ------------------------------------------------------------------------------------------
 
 
-def ingest_path(
-    runtime: Any,
-    collection: str,
-    path: Path,
-    *,
-    schema_file: Path | None,
-    batch_size: int,
-    progress: bool = True,
-    report: Callable[[str], None] = print,
-    bar_output: Any = None,
-) -> tuple[int, int]:
-    """Ingest a folder or a .jsonl file as one job, following it document by document.
+class ProgressBar:
+    """An ingest's documents on a bar with its rate and time left, and each line it reports
+    printed beside the bar; on stderr, or ``output`` (where every update is drawn, since
+    something other than a terminal reads it)."""
 
-    The job is recorded in the store and run by this process (unless a worker on the same
-    store takes it first); it writes ``batch_size`` documents per transaction, skips each
-    invalid document with its reason, and leaves what it wrote in place when interrupted, so a
-    second run embeds only what the first did not store. Returns (documents written, failed).
-    """
-    from service.ingest.source_files import read_source
-    from service.usecases import collections as collections_usecase
-    from service.usecases import jobs
-    from service.usecases.callers import LOCAL_ADMIN
+    def __init__(self, output: TextIO | None = None) -> None:
+        self._output = output or sys.stderr
+        self._every_update = output is not None
+        self._bar: Any = None
 
-    if schema_file is not None:
-        raw = json.loads(schema_file.read_text(encoding="utf-8"))
-        spec = collections_usecase.CollectionSpec(
-            description=raw.get("description"),
-            attributes=raw.get("attributes"),
-            remove_attributes=raw.get("remove_attributes"),
-            chunking=raw.get("chunking"),
-            cite_attributes=raw.get("cite_attributes"),
-            answer_caution=raw.get("answer_caution"),
-            retrieval=raw.get("retrieval"),
-            vectors=raw.get("vectors"),
+    def begin(self, documents: int) -> None:
+        from tqdm import tqdm
+
+        self._bar = tqdm(
+            total=documents,
+            unit="doc",
+            file=self._output,
+            mininterval=0 if self._every_update else 0.1,
+            miniters=1 if self._every_update else None,
         )
-        collections_usecase.put_collection(runtime, LOCAL_ADMIN, collection, spec)
-        _run_rechunking(runtime, collection, report)
 
-    items = list(read_source(path))
-    bar, emit = _progress_bar(len(items), progress, report, bar_output)
-    shown = JobProgress(bar, emit)
-    documents: list[dict[str, Any]] = []
-    origins: list[str] = []
-    for item in items:
-        if item.error is not None or item.document is None:
-            shown.rejected_file(item.origin, str(item.error))
-            continue
-        documents.append(item.document)
-        origins.append(item.origin)
-    try:
-        if not documents:
-            return 0, shown.failures
-        job = jobs.submit_upsert(
-            runtime,
-            LOCAL_ADMIN,
-            collection,
-            documents,
-            origins=origins,
-            skip_invalid=True,
-            batch_documents=batch_size,
-        )
-        finished = follow_job(runtime, job.id, shown)
-    finally:
-        bar.close()
-    if finished.state == "failed" and finished.failure is not None:
-        from service.errors import error_from_body
-
-        raise error_from_body(finished.failure)
-    written = sum(1 for r in finished.results if r["status"] != "unchanged")
-    return written, shown.failures
-
-
-def _progress_bar(
-    total: int, progress: bool, report: Callable[[str], None], bar_output: Any
-) -> tuple[Any, Callable[[str], None]]:
-    """A bar of ``total`` documents (with its rate and time left), and how to print a line
-    beside it."""
-    from tqdm import tqdm
-
-    output = bar_output or sys.stderr
-    bar = tqdm(
-        total=total,
-        unit="doc",
-        disable=not progress,
-        file=output,
-        # Every update drawn when the bar goes somewhere other than a terminal (a test reads it).
-        mininterval=0 if bar_output is not None else 0.1,
-        miniters=1 if bar_output is not None else None,
-    )
-
-    def emit(line: str) -> None:
-        # Through the bar when it is shown, so a report never lands inside its line.
-        if progress:
-            bar.write(line, file=output)
-        else:
-            report(line)
-
-    return bar, emit
-
-
-def _run_rechunking(runtime: Any, collection: str, report: Callable[[str], None]) -> None:
-    """A changed chunking's job, run here before the documents are written (so they are chunked
-    once, the new way), unless a worker on the same store has taken it already."""
-    from service.store.job_rows import RECHUNK
-    from service.usecases import jobs
-    from service.usecases.callers import LOCAL_ADMIN
-
-    for job in jobs.list_jobs(runtime, LOCAL_ADMIN, collection=collection, state="queued"):
-        if job.kind == RECHUNK:
-            report(f"re-chunking the {job.counts.documents} documents of {collection!r} first")
-            jobs.run_job(runtime, job.id, worker=jobs.worker_name())
-
-
-class JobProgress:
-    """A job's documents on a progress bar as they are written, with chunks per second; each
-    rejected file or document is printed with its reason."""
-
-    def __init__(self, bar: Any, report: Callable[[str], None]) -> None:
-        self.bar = bar
-        self.report = report
-        self.failures = 0
-        self._results = 0
-        self._errors = 0
-        self._started = time.perf_counter()
-
-    def rejected_file(self, origin: str, reason: str) -> None:
-        self.report(f"{origin}: {reason}")
-        self.failures += 1
-        self.bar.update(1)
-
-    def rejected_document(self, origin: str, document_id: str | None, reason: str) -> None:
-        named = f"document {document_id!r}: " if document_id else ""
-        self.rejected_file(origin, named + reason)
-
-    def documents_done(self, count: int) -> None:
+    def advance(self, documents: int) -> None:
         # One step per document, so every count is drawn even when a read finds several.
-        for _ in range(count):
-            self.bar.update(1)
+        for _ in range(documents):
+            self._bar.update(1)
 
-    def chunks_done(self, chunks: int) -> None:
-        elapsed = max(time.perf_counter() - self._started, 1e-9)
-        self.bar.set_postfix(chunks=chunks, chunks_per_s=f"{chunks / elapsed:.1f}")
+    def report(self, line: str) -> None:
+        # Through the bar once it is drawn, so a line never lands inside it.
+        if self._bar is None:
+            print(line, file=self._output)
+        else:
+            self._bar.write(line, file=self._output)
 
-    def show(self, job: Any) -> None:
-        self.documents_done(len(job.results) - self._results)
-        self._results = len(job.results)
-        for problem in job.errors[self._errors :]:
-            self.rejected_document(
-                problem.get("origin", f"#{problem['index']}"), problem.get("id"), problem["message"]
-            )
-        self._errors = len(job.errors)
-        self.chunks_done(job.counts.chunks)
+    def rate(self, chunks: int, per_second: float) -> None:
+        self._bar.set_postfix(chunks=chunks, chunks_per_s=f"{per_second:.1f}")
 
-
-def follow_job(runtime: Any, job_id: str, shown: JobProgress, *, pause: float = 0.2) -> Any:
-    """Run the job on a thread of this process (a worker may have taken it already) and show
-    its progress from the store until it finishes. Ctrl-C cancels it at the next batch."""
-    import threading
-
-    from service.usecases import jobs
-    from service.usecases.callers import LOCAL_ADMIN
-
-    runner = threading.Thread(
-        target=jobs.run_job,
-        args=(runtime, job_id),
-        kwargs={"worker": jobs.worker_name()},
-        name="excerpta-ingest",
-        daemon=True,
-    )
-    runner.start()
-    try:
-        while True:
-            job = jobs.get_job(runtime, LOCAL_ADMIN, job_id)
-            shown.show(job)
-            if job.finished:
-                runner.join()
-                return job
-            runner.join(pause)
-    except KeyboardInterrupt:
-        jobs.cancel_job(runtime, LOCAL_ADMIN, job_id)
-        shown.report("interrupted: the job stops after its current batch; run again to go on")
-        runner.join()
-        raise
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.close()
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
     if args.url:
         return _ingest_to_server(args)
+    from service.usecases.ingest_files import ingest_path
     from service.usecases.job_queues import StoreQueue
 
-    # The job goes to the store; this process runs it (see ``follow_job``).
+    # The job goes to the store; this process runs it (see ``ingest_files.follow_job``).
     runtime = _runtime(args, jobs=StoreQueue())
+    bar = ProgressBar()
     try:
         written, failures = ingest_path(
             runtime,
@@ -321,11 +173,12 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             Path(args.path),
             schema_file=Path(args.schema) if args.schema else None,
             batch_size=args.batch_size or DEFAULT_INGEST_BATCH,
-            report=lambda line: print(line, file=sys.stderr),
+            view=bar,
         )
     except KeyboardInterrupt:
         return 130
     finally:
+        bar.close()
         runtime.close()
     print(f"{written} documents written, {failures} failed")
     return 1 if failures else 0
@@ -333,6 +186,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 def _ingest_to_server(args: argparse.Namespace) -> int:
     from service.ingest.remote_jobs import RemoteJobs
+    from service.ingest.to_server import ingest_to_server
     from service.server_client import ServerRefused
 
     if args.batch_size is not None:
@@ -342,13 +196,14 @@ def _ingest_to_server(args: argparse.Namespace) -> int:
         )
         return 2
     remote = RemoteJobs(args.url, args.key or os.environ.get("EXCERPTA_KEY"))
+    bar = ProgressBar()
     try:
         written, failures = ingest_to_server(
             remote,
             args.collection,
             Path(args.path),
             schema_file=Path(args.schema) if args.schema else None,
-            report=lambda line: print(line, file=sys.stderr),
+            view=bar,
         )
     except ServerRefused as exc:
         print(f"error: {exc}", file=sys.stderr)
@@ -356,116 +211,10 @@ def _ingest_to_server(args: argparse.Namespace) -> int:
     except KeyboardInterrupt:
         return 130
     finally:
+        bar.close()
         remote.close()
     print(f"{written} documents written, {failures} failed")
     return 1 if failures else 0
-
-
-def ingest_to_server(
-    remote: RemoteJobs,
-    collection: str,
-    path: Path,
-    *,
-    schema_file: Path | None,
-    job_documents: int = SERVER_JOB_DOCUMENTS,
-    progress: bool = True,
-    report: Callable[[str], None] = print,
-    bar_output: Any = None,
-    pause: float = 0.2,
-) -> tuple[int, int]:
-    """Send a folder or a .jsonl file to a server as jobs of ``job_documents`` and follow them
-    document by document. A batch the server refuses for some of its documents is sent again
-    without them, each printed with its reason; Ctrl-C cancels the jobs not yet done.
-    Returns (documents written, failed)."""
-    from service.ingest.source_files import read_source
-
-    if schema_file is not None:
-        remote.put_collection(collection, json.loads(schema_file.read_text(encoding="utf-8")))
-    items = list(read_source(path))
-    bar, emit = _progress_bar(len(items), progress, report, bar_output)
-    shown = JobProgress(bar, emit)
-    documents: list[tuple[str, dict[str, Any]]] = []
-    for item in items:
-        if item.error is not None or item.document is None:
-            shown.rejected_file(item.origin, str(item.error))
-        else:
-            documents.append((item.origin, item.document))
-    sent: list[tuple[str, list[str]]] = []  # job id, the origin of each of its documents
-    try:
-        for start in range(0, len(documents), job_documents):
-            _send_batch(remote, collection, documents[start : start + job_documents], shown, sent)
-        written = _follow_remote_jobs(remote, sent, shown, pause)
-    except KeyboardInterrupt:
-        for job_id, _ in sent:
-            remote.cancel(job_id)
-        shown.report("interrupted: the jobs stop after their current batch; run again to go on")
-        raise
-    finally:
-        bar.close()
-    return written, shown.failures
-
-
-def _send_batch(
-    remote: RemoteJobs,
-    collection: str,
-    batch: list[tuple[str, dict[str, Any]]],
-    shown: JobProgress,
-    sent: list[tuple[str, list[str]]],
-) -> None:
-    """Send (origin, document) pairs as one job; the documents the server refuses are shown
-    and the rest sent again, and a batch past one of its limits is sent in halves, so only a
-    document that is itself too large is refused."""
-    from service.ingest.remote_jobs import BatchTooLarge, DocumentsRefused
-
-    while batch:
-        try:
-            job_id = remote.submit(collection, [document for _, document in batch])
-        except DocumentsRefused as refused:
-            for problem in refused.documents:
-                shown.rejected_document(batch[problem.index][0], problem.id, problem.message)
-            bad = {problem.index for problem in refused.documents}
-            batch = [entry for place, entry in enumerate(batch) if place not in bad]
-            continue
-        except BatchTooLarge as too_large:
-            if len(batch) == 1:
-                origin, document = batch[0]
-                shown.rejected_document(origin, document.get("id"), str(too_large))
-                return
-            middle = len(batch) // 2
-            _send_batch(remote, collection, batch[:middle], shown, sent)
-            _send_batch(remote, collection, batch[middle:], shown, sent)
-            return
-        sent.append((job_id, [origin for origin, _ in batch]))
-        return
-
-
-def _follow_remote_jobs(
-    remote: RemoteJobs, sent: Sequence[tuple[str, list[str]]], shown: JobProgress, pause: float
-) -> int:
-    """Read each job until it finishes, moving the bar by each document it wrote."""
-    seen = {job_id: (0, 0) for job_id, _ in sent}  # results, errors already shown
-    chunks = {job_id: 0 for job_id, _ in sent}
-    written = 0
-    for job_id, origins in sent:
-        while True:
-            job = remote.job(job_id)
-            results, errors = seen[job_id]
-            shown.documents_done(len(job.statuses) - results)
-            for problem in job.refused[errors:]:
-                shown.rejected_document(origins[problem.index], problem.id, problem.message)
-            seen[job_id] = (len(job.statuses), len(job.refused))
-            chunks[job_id] = job.chunks
-            shown.chunks_done(sum(chunks.values()))
-            if job.finished:
-                break
-            time.sleep(pause)
-        if job.state != "done":
-            # Refused documents were counted as they were shown; the rest were not written.
-            if job.state == "failed":
-                shown.report(f"job {job_id} failed: {job.failure}")
-            shown.failures += job.documents - len(job.statuses) - len(job.refused)
-        written += sum(1 for status in job.statuses if status != "unchanged")
-    return written
 
 
 # jobs --------------------------------------------------------------------------------------------
@@ -812,6 +561,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from service.store.db import unit_of_work
     from service.store.repository import collection_by_name
     from service.usecases import keys
+    from service.usecases.ingest_files import ingest_path
     from service.usecases.job_queues import StoreQueue
 
     runtime = _runtime(args, jobs=StoreQueue())
@@ -822,14 +572,18 @@ def cmd_demo(args: argparse.Namespace) -> int:
         if exists:
             print(f"demo collection {DEMO_COLLECTION!r} already in the store; not re-ingesting")
         else:
-            written, failures = ingest_path(
-                runtime,
-                DEMO_COLLECTION,
-                corpus / "documents",
-                schema_file=corpus / "schema.json",
-                batch_size=64,
-                report=lambda line: print(line, file=sys.stderr),
-            )
+            bar = ProgressBar()
+            try:
+                written, failures = ingest_path(
+                    runtime,
+                    DEMO_COLLECTION,
+                    corpus / "documents",
+                    schema_file=corpus / "schema.json",
+                    batch_size=64,
+                    view=bar,
+                )
+            finally:
+                bar.close()
             print(f"ingested {written} demo documents ({failures} failed)")
         key_file = runtime.settings.data_dir / "demo-key"
         if not key_file.exists():

@@ -24,7 +24,9 @@ from urllib.parse import urlsplit
 import httpx
 import pytest
 
-from service.cli import DEMO_COLLECTION, ingest_path
+from service.cli import DEMO_COLLECTION
+from service.ingest.progress import ReportedLines
+from service.usecases.ingest_files import ingest_path
 from service.usecases.runtime import Runtime
 from tests.api_helpers import make_key
 from tests.conftest import REPO, need
@@ -71,8 +73,7 @@ def demo_server(make_runtime: Callable[..., Runtime]) -> Iterator[DemoServer]:
         CORPUS / "documents",
         schema_file=CORPUS / "schema.json",
         batch_size=64,
-        progress=False,
-        report=lambda _: None,
+        view=ReportedLines(lambda _: None),
     )
     assert written > 0 and failures == 0
     key = make_key(runtime, "admin", name="console-admin")

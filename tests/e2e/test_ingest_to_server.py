@@ -14,8 +14,10 @@ from pathlib import Path
 import httpx
 import pytest
 
-from service.cli import ingest_to_server, main
+from service.cli import ProgressBar, main
+from service.ingest.progress import ReportedLines
 from service.ingest.remote_jobs import RemoteJobs
+from service.ingest.to_server import ingest_to_server
 from service.server_client import ServerRefused
 from service.usecases.job_queues import StoreQueue
 from service.usecases.runtime import Runtime
@@ -77,11 +79,13 @@ def test_ingest_to_a_server_sends_jobs_moves_per_document_and_names_each_rejecte
     source, schema = write_source(tmp_path / "source")
     remote = RemoteJobs(url, key)
     bar = io.StringIO()
+    shown = ProgressBar(bar)
     try:
         written, failed = ingest_to_server(
-            remote, "notes", source, schema_file=schema, job_documents=3, bar_output=bar, pause=0.01
+            remote, "notes", source, schema_file=schema, job_documents=3, view=shown, pause=0.01
         )
     finally:
+        shown.close()
         remote.close()
 
     assert (written, failed) == (5, 2)
@@ -141,7 +145,7 @@ def test_a_batch_past_a_server_limit_is_sent_in_halves_until_only_the_large_docu
         try:
             remote.put_collection("notes", {})
             written, failed = ingest_to_server(
-                remote, "notes", source, schema_file=None, progress=False, report=shown.append
+                remote, "notes", source, schema_file=None, view=ReportedLines(shown.append)
             )
         finally:
             remote.close()

@@ -23,9 +23,11 @@ from fastapi.testclient import TestClient
 from sqlalchemy import select
 
 from service.api.app import create_app
-from service.cli import ingest_path, main
+from service.cli import main
 from service.config import Settings
+from service.ingest.progress import ReportedLines
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
+from service.usecases.ingest_files import ingest_path
 from service.usecases.runtime import Runtime
 from tests.api_helpers import Api, make_key
 from tests.chat_endpoint import FakeEndpoint
@@ -144,8 +146,7 @@ def demo(minilm: Any, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Inge
         DEMO_CORPUS / "documents",
         schema_file=DEMO_CORPUS / "schema.json",
         batch_size=64,
-        progress=False,
-        report=collection.report.append,
+        view=ReportedLines(collection.report.append),
     )
     yield collection
     runtime.close()

@@ -12,10 +12,12 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import ingest_path, main
+from service.cli import ProgressBar, main
+from service.ingest.progress import ReportedLines
 from service.store import repository
 from service.usecases import jobs
 from service.usecases.callers import LOCAL_ADMIN
+from service.usecases.ingest_files import ingest_path
 from service.usecases.job_queues import StoreQueue
 from service.usecases.runtime import Runtime
 from tests.conftest import REPO
@@ -48,10 +50,14 @@ def test_ingest_moves_its_bar_once_per_document_and_names_each_rejected_one(
     runtime = make_runtime(embedder=embedder, jobs=StoreQueue())
     source, schema = write_source(tmp_path / "source")
     bar = io.StringIO()
+    shown = ProgressBar(bar)
 
-    written, failed = ingest_path(
-        runtime, "notes", source, schema_file=schema, batch_size=1, bar_output=bar
-    )
+    try:
+        written, failed = ingest_path(
+            runtime, "notes", source, schema_file=schema, batch_size=1, view=shown
+        )
+    finally:
+        shown.close()
 
     assert (written, failed) == (4, 1)
     drawn = bar.getvalue()
@@ -67,7 +73,9 @@ def test_ingest_moves_its_bar_once_per_document_and_names_each_rejected_one(
     assert [e["index"] for e in job.errors] == [2]
 
     embedded = embedder.embedded_texts
-    again = ingest_path(runtime, "notes", source, schema_file=None, batch_size=2, progress=False)
+    again = ingest_path(
+        runtime, "notes", source, schema_file=None, batch_size=2, view=ReportedLines(print)
+    )
     assert again == (0, 1)
     assert embedder.embedded_texts == embedded
     latest = jobs.list_jobs(runtime, LOCAL_ADMIN, collection="notes")[0]
@@ -81,7 +89,9 @@ def test_jobs_command_lists_shows_and_refuses_to_cancel_a_finished_job(
     data = tmp_path / "data"
     runtime = make_runtime(data_dir=data, jobs=StoreQueue())
     source, schema = write_source(tmp_path / "source")
-    ingest_path(runtime, "notes", source, schema_file=schema, batch_size=2, progress=False)
+    ingest_path(
+        runtime, "notes", source, schema_file=schema, batch_size=2, view=ReportedLines(print)
+    )
     [job] = jobs.list_jobs(runtime, LOCAL_ADMIN)
     capsys.readouterr()
 
@@ -119,7 +129,9 @@ def test_ingest_with_a_changed_chunking_runs_the_rechunk_job_first(
 ) -> None:
     runtime = make_runtime(jobs=StoreQueue())
     source, schema = write_source(tmp_path / "source")
-    ingest_path(runtime, "notes", source, schema_file=schema, batch_size=2, progress=False)
+    ingest_path(
+        runtime, "notes", source, schema_file=schema, batch_size=2, view=ReportedLines(print)
+    )
     finer = tmp_path / "finer.json"
     finer.write_text(
         json.dumps({**SCHEMA, "chunking": {"max_tokens": 16, "overlap_tokens": 0}}),
@@ -133,8 +145,7 @@ def test_ingest_with_a_changed_chunking_runs_the_rechunk_job_first(
         source,
         schema_file=finer,
         batch_size=2,
-        progress=False,
-        report=lines.append,
+        view=ReportedLines(lines.append),
     )
 
     assert again == (0, 1)

@@ -38,11 +38,9 @@ def _settings(args: argparse.Namespace, **fixed: Any) -> Settings:
 
 def _runtime(args: argparse.Namespace, *, jobs: Any = None, **fixed: Any) -> Any:
     """A runtime on the store directly; the model loads only if something embeds."""
-    from service.usecases.runtime import Runtime, embedder_on_first_use
+    from service.usecases.runtime import embedder_on_first_use, open_runtime
 
-    settings = _settings(args, **fixed)
-    engine = _migrated_engine(args)
-    return Runtime(settings, embedder_on_first_use(settings), engine=engine, jobs=jobs)
+    return open_runtime(_settings(args, **fixed), embedder_on_first_use, jobs=jobs)
 
 
 def _print_json(value: Any) -> None:
@@ -59,15 +57,13 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     from service.api.server import serve
     from service.logging_setup import configure_logging
-    from service.usecases.runtime import Runtime, load_embedder
+    from service.usecases.runtime import load_embedder, open_runtime
     from service.usecases.workers import serving_queue
 
     settings = _settings(args)
     configure_logging(log_format=settings.log_format)
-    # The store first: an unusable one is reported before the model takes seconds to load.
-    engine = _migrated_engine(args)
     jobs = serving_queue(settings, partial(load_embedder, settings))
-    runtime = Runtime(settings, load_embedder(settings), engine=engine, jobs=jobs)
+    runtime = open_runtime(settings, load_embedder, jobs=jobs)
     if settings.blas_threads:
         from threadpoolctl import threadpool_limits
 
@@ -84,13 +80,12 @@ def cmd_worker(args: argparse.Namespace) -> int:
     """Run jobs: from the broker when ``EXCERPTA_BROKER_URL`` is set, else from the store."""
     from service.embedding.threads import limit_torch_threads, worker_threads
     from service.logging_setup import configure_logging
-    from service.usecases.runtime import Runtime, load_embedder
+    from service.usecases.runtime import load_embedder, open_runtime
     from service.usecases.workers import run_worker_process
 
     settings = _settings(args)
     configure_logging(log_format=settings.log_format)
-    engine = _migrated_engine(args)
-    runtime = Runtime(settings, load_embedder(settings), engine=engine)
+    runtime = open_runtime(settings, load_embedder)
     limit_torch_threads(worker_threads(settings.worker_torch_threads))
     try:
         run_worker_process(runtime)

@@ -8,7 +8,7 @@ bound to this store) and none of them knows the runtime.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from functools import partial
 
@@ -21,6 +21,7 @@ from service.embedding.query_cache import CachedQueryEmbedder
 from service.index.saved import IndexDirectory
 from service.store.db import make_engine, migrate, session_factory
 from service.store.identity import StoreGuard
+from service.store.opening import open_store
 from service.store.repository import KeyReader
 from service.store.transactions import Transactions
 from service.usecases.generators import GeneratorRegistry
@@ -115,6 +116,23 @@ class Runtime:
         self.indexes.stop()
         self.traces.stop()
         self.engine.dispose()
+
+
+def open_runtime(
+    settings: Settings,
+    make_embedder: Callable[[Settings], Embedder],
+    *,
+    jobs: JobQueue | None = None,
+) -> Runtime:
+    """The runtime a command runs on. The store is opened first (``store/opening.py``), so an
+    unusable one is told in one sentence before a model takes seconds to load; then the
+    embedder is made. Migrating the store again in ``Runtime`` finds nothing to do."""
+    engine = open_store(settings.resolved_database_url(), settings.data_dir)
+    try:
+        return Runtime(settings, make_embedder(settings), engine=engine, jobs=jobs)
+    except BaseException:
+        engine.dispose()
+        raise
 
 
 def load_embedder(settings: Settings) -> Embedder:

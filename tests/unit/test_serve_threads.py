@@ -24,12 +24,10 @@ def _serve_with(monkeypatch: pytest.MonkeyPatch, settings: Settings) -> list[obj
     """``cmd_serve`` with the store, the model and the job queue stood in for."""
     served: list[object] = []
     monkeypatch.setattr(cli, "_settings", lambda args: settings)
-    monkeypatch.setattr(cli, "_migrated_engine", lambda args: None)
     monkeypatch.setattr("service.usecases.workers.serving_queue", lambda *args: None)
-    monkeypatch.setattr("service.usecases.runtime.load_embedder", lambda settings: None)
     monkeypatch.setattr(
-        "service.usecases.runtime.Runtime",
-        lambda settings, embedder, **parts: SimpleNamespace(settings=settings),
+        "service.usecases.runtime.open_runtime",
+        lambda settings, make_embedder, **parts: SimpleNamespace(settings=settings),
     )
     monkeypatch.setattr("service.api.server.serve", served.append)
     monkeypatch.setattr("service.logging_setup.configure_logging", lambda **kwargs: None)

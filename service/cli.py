@@ -556,7 +556,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from service.store.db import unit_of_work
     from service.store.repository import collection_by_name
     from service.usecases import keys
-    from service.usecases.ingest_files import ingest_path
+    from service.usecases.ingest_files import ingest_demo
     from service.usecases.job_queues import StoreQueue
 
     runtime = _runtime(args, jobs=StoreQueue())
@@ -569,14 +569,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         else:
             bar = ProgressBar()
             try:
-                written, failures = ingest_path(
-                    runtime,
-                    DEMO_COLLECTION,
-                    corpus / "documents",
-                    schema_file=corpus / "schema.json",
-                    batch_size=64,
-                    view=bar,
-                )
+                written, failures = ingest_demo(runtime, DEMO_COLLECTION, corpus, bar)
             finally:
                 bar.close()
             print(f"ingested {written} demo documents ({failures} failed)")

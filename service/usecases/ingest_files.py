@@ -16,6 +16,9 @@ from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.collections import CollectionSpec, put_collection
 from service.usecases.runtime import Runtime
 
+# Documents per transaction for the demo corpus: its documents are short.
+DEMO_BATCH = 64
+
 
 def ingest_path(
     runtime: Runtime,
@@ -66,6 +69,21 @@ def ingest_path(
         raise error_from_body(finished.failure)
     written = sum(1 for result in finished.results if result["status"] != "unchanged")
     return IngestCounts(written, tally.failures)
+
+
+def ingest_demo(
+    runtime: Runtime, collection: str, corpus: Path, view: ProgressView
+) -> IngestCounts:
+    """A demo corpus as ``excerpta demo`` ingests it: its ``documents`` folder, with its
+    ``schema.json``."""
+    return ingest_path(
+        runtime,
+        collection,
+        corpus / "documents",
+        schema_file=corpus / "schema.json",
+        batch_size=DEMO_BATCH,
+        view=view,
+    )
 
 
 def run_pending_rechunk(runtime: Runtime, collection: str, view: ProgressView) -> None:

@@ -26,7 +26,7 @@ import pytest
 
 from service.cli import DEMO_COLLECTION
 from service.ingest.progress import ReportedLines
-from service.usecases.ingest_files import ingest_path
+from service.usecases.ingest_files import ingest_demo
 from service.usecases.runtime import Runtime
 from tests.api_helpers import make_key
 from tests.conftest import REPO, need
@@ -67,14 +67,7 @@ class DemoServer:
 @pytest.fixture
 def demo_server(make_runtime: Callable[..., Runtime]) -> Iterator[DemoServer]:
     runtime = make_runtime()
-    written, failures = ingest_path(
-        runtime,
-        DEMO_COLLECTION,
-        CORPUS / "documents",
-        schema_file=CORPUS / "schema.json",
-        batch_size=64,
-        view=ReportedLines(lambda _: None),
-    )
+    written, failures = ingest_demo(runtime, DEMO_COLLECTION, CORPUS, ReportedLines(lambda _: None))
     assert written > 0 and failures == 0
     key = make_key(runtime, "admin", name="console-admin")
     with server_in_thread(runtime) as base_url:

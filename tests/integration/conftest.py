@@ -27,7 +27,7 @@ from service.cli import main
 from service.config import Settings
 from service.ingest.progress import ReportedLines
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
-from service.usecases.ingest_files import ingest_path
+from service.usecases.ingest_files import ingest_demo
 from service.usecases.runtime import Runtime
 from tests.api_helpers import Api, make_key
 from tests.chat_endpoint import FakeEndpoint
@@ -140,13 +140,8 @@ def demo(minilm: Any, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Inge
     settings = Settings(data_dir=tmp_path_factory.mktemp("demo-data"), index_poll_ms=0)
     runtime = Runtime(settings, embedder)
     collection = IngestedCollection(runtime, DEMO_COLLECTION, embedder)
-    collection.written, collection.failures = ingest_path(
-        runtime,
-        DEMO_COLLECTION,
-        DEMO_CORPUS / "documents",
-        schema_file=DEMO_CORPUS / "schema.json",
-        batch_size=64,
-        view=ReportedLines(collection.report.append),
+    collection.written, collection.failures = ingest_demo(
+        runtime, DEMO_COLLECTION, DEMO_CORPUS, ReportedLines(collection.report.append)
     )
     yield collection
     runtime.close()

@@ -34,6 +34,10 @@ from service.usecases.search import SearchOptions
 
 WORDS = ["brake", "chain", "saddle", "tyre", "gear", "frame", "light", "pedal", "hub", "spoke"]
 MODELS = ["Ridge", "Delta", "Comet"]
+SPEC = collections.CollectionSpec(
+    attributes={"model": {"type": "keyword"}, "year": {"type": "integer"}},
+    vectors={"index": "graph", "graph": {"links": 8, "build_breadth": 32, "search_breadth": 32}},
+)
 QUERIES = [
     ("brake chain", None, "hybrid"),
     ("saddle light", "model = 'Ridge'", "semantic"),
@@ -77,14 +81,7 @@ class Start:
 @pytest.fixture
 def store(make_runtime: object, tmp_path: Path) -> Iterator[Runtime]:
     runtime: Runtime = make_runtime()  # type: ignore[operator]
-    spec = collections.CollectionSpec(
-        attributes={"model": {"type": "keyword"}, "year": {"type": "integer"}},
-        vectors={
-            "index": "graph",
-            "graph": {"links": 8, "build_breadth": 32, "search_breadth": 32},
-        },
-    )
-    collections.put_collection(runtime, LOCAL_ADMIN, "notes", spec)
+    collections.put_collection(runtime, LOCAL_ADMIN, "notes", SPEC)
     write(runtime, range(30))
     yield runtime
 
@@ -140,6 +137,21 @@ def results(runtime: Runtime, registry: IndexRegistry) -> list[list[tuple[str, f
     return found
 
 
+def collection_id(runtime: Runtime) -> int:
+    with runtime.transaction() as session:
+        row = repository.collection_by_name(session, "notes")
+        assert row is not None
+        return row.id
+
+
+def made_again(runtime: Runtime) -> None:
+    """The collection deleted and made again under its name with other documents, through the
+    runtime's own registry (another process, to a registry under test)."""
+    collections.delete_collection(runtime, LOCAL_ADMIN, "notes")
+    collections.put_collection(runtime, LOCAL_ADMIN, "notes", SPEC)
+    write(runtime, range(5), version=1)
+
+
 def saved_once(runtime: Runtime, folder: Path) -> Start:
     """A first start: built from the store (nothing saved yet), its graph built and saved."""
     first = start(runtime, folder)
@@ -148,6 +160,26 @@ def saved_once(runtime: Runtime, folder: Path) -> Start:
     assert first.registry.view("notes").snapshot.graph is not None
     assert first.registry.save_counts() == {"saved": 1}
     return first
+
+
+def rebuilt(
+    runtime: Runtime,
+    folder: Path,
+    caplog: pytest.LogCaptureFixture,
+    kind: str,
+    said: str,
+    **other: str,
+) -> tuple[Start, list[list[tuple[str, float]]]]:
+    """A start that finds the saved index unusable (``kind``, its log saying ``said``), builds
+    from the store and answers as an index built afresh does."""
+    caplog.set_level(logging.INFO, logger="excerpta.index")
+    restarted = start(runtime, folder, **other)  # type: ignore[arg-type]
+    found = results(runtime, restarted.registry)
+    assert restarted.source.loads == 1
+    assert restarted.registry.start_counts() == {("rebuilt", kind): 1}
+    assert said in caplog.text
+    assert found == results(runtime, start(runtime, None).registry)
+    return restarted, found
 
 
 def test_a_start_from_a_valid_saved_index_reads_no_chunk_from_the_store(
@@ -183,14 +215,9 @@ def test_a_corrupt_saved_index_is_rebuilt_and_answers_as_a_fresh_build(
     data[-9] ^= 0xFF
     vectors.write_bytes(bytes(data))
 
-    caplog.set_level(logging.INFO, logger="excerpta.index")
-    restarted = start(store, folder)
-    found = results(store, restarted.registry)
-    assert restarted.source.loads == 1
-    assert restarted.registry.start_counts() == {("rebuilt", "corrupt"): 1}
-    assert "vectors.npy does not match its checksum" in caplog.text
-    fresh = start(store, None)
-    assert found == results(store, fresh.registry)
+    restarted, found = rebuilt(
+        store, folder, caplog, "corrupt", "vectors.npy does not match its checksum"
+    )
     # The rebuilt index is saved again, and the next start reads it back.
     restarted.registry.maintain()
     again = start(store, folder)
@@ -236,13 +263,7 @@ def test_a_saved_index_of_another_store_or_embedder_is_rebuilt(
 ) -> None:
     folder = tmp_path / "saved"
     saved_once(store, folder)
-    caplog.set_level(logging.INFO, logger="excerpta.index")
-    restarted = start(store, folder, **other)  # type: ignore[arg-type]
-    found = results(store, restarted.registry)
-    assert restarted.source.loads == 1
-    assert restarted.registry.start_counts() == {("rebuilt", "foreign"): 1}
-    assert said in caplog.text
-    assert found == results(store, start(store, None).registry)
+    rebuilt(store, folder, caplog, "foreign", said, **other)
 
 
 def test_a_query_during_a_rebuild_waits_for_it_instead_of_building_a_second_index(
@@ -284,31 +305,11 @@ def test_a_collection_made_again_under_a_deleted_ones_name_never_reads_its_saved
     sqlite.org/autoinc.html), so the id alone cannot tell the two collections apart."""
     folder = tmp_path / "replica"
     saved_once(store, folder)
-    with store.transaction() as session:
-        old = repository.collection_by_name(session, "notes")
-        assert old is not None
-        old_id = old.id
-    collections.delete_collection(store, LOCAL_ADMIN, "notes")
-    collections.put_collection(
-        store,
-        LOCAL_ADMIN,
-        "notes",
-        collections.CollectionSpec(
-            attributes={"model": {"type": "keyword"}, "year": {"type": "integer"}},
-        ),
-    )
-    write(store, range(5), version=1)
-    with store.transaction() as session:
-        again = repository.collection_by_name(session, "notes")
-        assert again is not None and again.id == old_id
+    old_id = collection_id(store)
+    made_again(store)
+    assert collection_id(store) == old_id
 
-    caplog.set_level(logging.INFO, logger="excerpta.index")
-    restarted = start(store, folder)
-    found = results(store, restarted.registry)
-    assert restarted.source.loads == 1
-    assert restarted.registry.start_counts() == {("rebuilt", "foreign"): 1}
-    assert "saved from an earlier collection of the name" in caplog.text
-    assert found == results(store, start(store, None).registry)
+    rebuilt(store, folder, caplog, "foreign", "saved from an earlier collection of the name")
 
 
 def test_an_index_in_memory_follows_a_collection_made_again_under_the_same_id(
@@ -320,16 +321,7 @@ def test_an_index_in_memory_follows_a_collection_made_again_under_the_same_id(
     replica = start(store, None)
     results(store, replica.registry)
     store.indexes = own
-    collections.delete_collection(store, LOCAL_ADMIN, "notes")
-    collections.put_collection(
-        store,
-        LOCAL_ADMIN,
-        "notes",
-        collections.CollectionSpec(
-            attributes={"model": {"type": "keyword"}, "year": {"type": "integer"}},
-        ),
-    )
-    write(store, range(5), version=1)
+    made_again(store)
 
     found = results(store, replica.registry)
     assert replica.source.loads == 2

@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 
-from service.ingest.progress import IngestTally, Refusal, read_documents
+from service.ingest.progress import IngestCounts, IngestTally, Refusal, read_documents
 from service.ingest.remote_jobs import BatchTooLarge, DocumentsRefused, RefusedDocument, RemoteJob
 from service.ingest.to_server import ingest_to_server
 
@@ -115,13 +115,24 @@ class ScriptedServer:
         self.cancelled.append(job_id)
 
 
-def notes_file(folder: Path) -> Path:
+def send_notes(
+    server: ScriptedServer, folder: Path, view: RecordedView, *, job_documents: int
+) -> IngestCounts:
+    """Six notes, the second too long for one limit of the server and the fifth without text."""
     notes = [{"id": f"note-{n}", "text": f"brake note {n}"} for n in range(6)]
     notes[1]["text"] = "bleed the brake " * 10
     notes[4]["text"] = ""
     source = folder / "notes.jsonl"
     source.write_text("\n".join(json.dumps(note) for note in notes) + "\n", encoding="utf-8")
-    return source
+    return ingest_to_server(
+        server,  # type: ignore[arg-type]
+        "notes",
+        source,
+        schema_file=None,
+        view=view,
+        job_documents=job_documents,
+        pause=0,
+    )
 
 
 def test_refused_documents_are_left_out_and_a_batch_too_large_is_sent_in_halves(
@@ -130,15 +141,7 @@ def test_refused_documents_are_left_out_and_a_batch_too_large_is_sent_in_halves(
     server = ScriptedServer(longest=40)
     view = RecordedView()
 
-    counts = ingest_to_server(
-        server,  # type: ignore[arg-type]
-        "notes",
-        notes_file(tmp_path),
-        schema_file=None,
-        view=view,
-        job_documents=6,
-        pause=0,
-    )
+    counts = send_notes(server, tmp_path, view, job_documents=6)
 
     assert counts == (4, 2)
     assert server.submitted == [
@@ -162,15 +165,7 @@ def test_an_interrupted_ingest_cancels_every_job_it_sent(tmp_path: Path) -> None
     view = RecordedView()
 
     with pytest.raises(KeyboardInterrupt):
-        ingest_to_server(
-            server,  # type: ignore[arg-type]
-            "notes",
-            notes_file(tmp_path),
-            schema_file=None,
-            view=view,
-            job_documents=2,
-            pause=0,
-        )
+        send_notes(server, tmp_path, view, job_documents=2)
 
     assert server.cancelled == ["job-0", "job-1", "job-2"]
     assert view.lines[-1].startswith("interrupted: the jobs stop")

@@ -74,7 +74,7 @@ class SavedIndexRejected(Exception):
     ``kind``: ``missing`` (none saved), ``corrupt`` (a file or the manifest does not match its
     checksum, or is unreadable), ``format`` (written by another format), ``foreign`` (another
     store, embedder or collection), ``outdated`` (the collection was chunked or analysed
-    differently since).
+    differently since, or the manifest does not say when its collection was made).
     """
 
     def __init__(self, kind: RejectionKind, reason: str) -> None:
@@ -465,11 +465,14 @@ def _check_identity(saved: SavedIdentity, wanted: SavedIdentity) -> None:
             f"it was saved with the embedder {saved.embedder} ({saved.dimension} dimensions), "
             f"not {wanted.embedder} ({wanted.dimension}).",
         )
-    if (saved.collection_id, saved.collection_created) != (
-        wanted.collection_id,
-        wanted.collection_created,
+    if saved.collection_id != wanted.collection_id or (
+        saved.collection_created and saved.collection_created != wanted.collection_created
     ):
         raise SavedIndexRejected("foreign", "it was saved from an earlier collection of the name.")
+    if saved.collection_created != wanted.collection_created:
+        raise SavedIndexRejected(
+            "outdated", "it was saved before saved indexes recorded when their collection was made."
+        )
     if saved.generation != wanted.generation:
         raise SavedIndexRejected("outdated", "the collection was chunked again since it was saved.")
     if (saved.metric, saved.rows_made_by) != (wanted.metric, wanted.rows_made_by):

@@ -199,6 +199,19 @@ def test_an_index_of_another_store_embedder_or_collection_is_refused(
     assert refused.value.kind == kind
 
 
+def test_an_index_saved_without_its_collections_creation_time_is_outdated(
+    tmp_path: Path,
+) -> None:
+    directory = IndexDirectory(tmp_path)
+    directory.save(
+        "notes", built_index().snapshot(), dataclasses.replace(IDENTITY, collection_created="")
+    )
+    with pytest.raises(SavedIndexRejected) as refused:
+        load(directory)
+    assert refused.value.kind == "outdated"
+    assert "recorded when their collection was made" in refused.value.reason
+
+
 def test_a_removed_index_is_missing_and_removing_none_is_no_error(tmp_path: Path) -> None:
     directory = IndexDirectory(tmp_path)
     directory.save("notes", built_index().snapshot(), IDENTITY)

@@ -2,14 +2,14 @@
 
 An ingest (into the store, or to a server) reads its source, sends the documents as jobs and
 reads the jobs until they finish. ``IngestTally`` keeps what it has shown of each job and counts
-what failed; a ``ProgressView`` shows it (the command line's bar, or nothing but the lines), so
-the work knows nothing of how it is drawn.
+what failed; a ``ProgressView`` shows it (the command line's bar), so the work knows nothing of
+how it is drawn.
 """
 
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NamedTuple, Protocol
@@ -35,25 +35,6 @@ class ProgressView(Protocol):
     def rate(self, chunks: int, per_second: float) -> None:
         """Chunks written so far, and how many a second since the ingest began."""
         ...
-
-
-class ReportedLines:
-    """A view that shows the lines only, each handed to ``report``."""
-
-    def __init__(self, report: Callable[[str], None]) -> None:
-        self._report = report
-
-    def report(self, line: str) -> None:
-        self._report(line)
-
-    def begin(self, documents: int) -> None:
-        return None
-
-    def advance(self, documents: int) -> None:
-        return None
-
-    def rate(self, chunks: int, per_second: float) -> None:
-        return None
 
 
 class IngestCounts(NamedTuple):

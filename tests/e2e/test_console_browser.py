@@ -25,11 +25,11 @@ import httpx
 import pytest
 
 from service.cli import DEMO_COLLECTION
-from service.ingest.progress import ReportedLines
 from service.usecases.ingest_files import ingest_demo
 from service.usecases.runtime import Runtime
 from tests.api_helpers import make_key
 from tests.conftest import REPO, need
+from tests.progress_lines import ReportedLines
 from tests.served import server_in_thread
 
 CORPUS = REPO / "corpus_example"

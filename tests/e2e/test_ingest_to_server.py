@@ -15,7 +15,6 @@ import httpx
 import pytest
 
 from service.cli import ProgressBar, main
-from service.ingest.progress import ReportedLines
 from service.ingest.remote_jobs import RemoteJobs
 from service.ingest.to_server import ingest_to_server
 from service.server_client import ServerRefused
@@ -23,6 +22,7 @@ from service.usecases.job_queues import StoreQueue
 from service.usecases.runtime import Runtime
 from service.usecases.workers import work_from_store
 from tests.api_helpers import make_key
+from tests.progress_lines import ReportedLines
 from tests.served import server_in_thread
 
 SCHEMA = {"attributes": {"shop": {"type": "keyword"}}}

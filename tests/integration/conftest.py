@@ -25,12 +25,12 @@ from sqlalchemy import select
 from service.api.app import create_app
 from service.cli import main
 from service.config import Settings
-from service.ingest.progress import ReportedLines
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
 from service.usecases.ingest_files import ingest_demo
 from service.usecases.runtime import Runtime
 from tests.api_helpers import Api, make_key
 from tests.chat_endpoint import FakeEndpoint
+from tests.progress_lines import ReportedLines
 
 DEMO_CORPUS = Path(__file__).resolve().parents[2] / "corpus_example"
 DEMO_COLLECTION = "bikes"

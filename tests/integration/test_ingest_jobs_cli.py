@@ -13,7 +13,6 @@ from pathlib import Path
 import pytest
 
 from service.cli import ProgressBar, main
-from service.ingest.progress import ReportedLines
 from service.store import repository
 from service.usecases import jobs
 from service.usecases.callers import LOCAL_ADMIN
@@ -22,6 +21,7 @@ from service.usecases.job_queues import StoreQueue
 from service.usecases.runtime import Runtime
 from tests.conftest import REPO
 from tests.hashing_embedder import HashingTestEmbedder
+from tests.progress_lines import ReportedLines
 
 SCHEMA = {
     "attributes": {"shop": {"type": "keyword"}},

@@ -553,39 +553,25 @@ def _count(value: float | None, spec: str = "") -> str:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Make the demo collection and key once; later runs re-use the store as it is."""
-    from service.store.db import unit_of_work
-    from service.store.repository import collection_by_name
-    from service.usecases import keys
-    from service.usecases.ingest_files import ingest_demo
+    from service.usecases.demo import set_up_demo
     from service.usecases.job_queues import StoreQueue
 
     runtime = _runtime(args, jobs=StoreQueue())
-    corpus = Path(args.corpus)
+    bar = ProgressBar()
     try:
-        with runtime.transaction() as session:
-            exists = collection_by_name(session, DEMO_COLLECTION) is not None
-        if exists:
-            print(f"demo collection {DEMO_COLLECTION!r} already in the store; not re-ingesting")
-        else:
-            bar = ProgressBar()
-            try:
-                written, failures = ingest_demo(runtime, DEMO_COLLECTION, corpus, bar)
-            finally:
-                bar.close()
-            print(f"ingested {written} demo documents ({failures} failed)")
-        key_file = runtime.settings.data_dir / "demo-key"
-        if not key_file.exists():
-            with unit_of_work(runtime.sessions) as session:
-                secret, _ = keys.create_key(
-                    session, role="admin", groups=[], collections=None, name=f"demo-{os.getpid()}"
-                )
-            key_file.write_text(secret + "\n", encoding="utf-8")
-            key_file.chmod(0o600)
-            print(f"demo admin key written to {key_file}: {secret}")
-        else:
-            print(f"demo admin key in {key_file}")
+        made = set_up_demo(runtime, DEMO_COLLECTION, Path(args.corpus), bar)
     finally:
+        bar.close()
         runtime.close()
+    if made.ingested is None:
+        print(f"demo collection {DEMO_COLLECTION!r} already in the store; not re-ingesting")
+    else:
+        written, failures = made.ingested
+        print(f"ingested {written} demo documents ({failures} failed)")
+    if made.secret is None:
+        print(f"demo admin key in {made.key_file}")
+    else:
+        print(f"demo admin key written to {made.key_file}: {made.secret}")
     return 0
 
 

@@ -1,4 +1,4 @@
-"""``excerpta ingest`` (and ``excerpta demo``) on the store: a folder or a .jsonl file written
+"""``excerpta ingest`` on the store: a folder or a .jsonl file written
 as one job, which this process runs and follows document by document."""
 
 from __future__ import annotations
@@ -15,9 +15,6 @@ from service.usecases import jobs
 from service.usecases.callers import LOCAL_ADMIN
 from service.usecases.collections import CollectionSpec, put_collection
 from service.usecases.runtime import Runtime
-
-# Documents per transaction for the demo corpus: its documents are short.
-DEMO_BATCH = 64
 
 
 def ingest_path(
@@ -69,21 +66,6 @@ def ingest_path(
         raise error_from_body(finished.failure)
     written = sum(1 for result in finished.results if result["status"] != "unchanged")
     return IngestCounts(written, tally.failures)
-
-
-def ingest_demo(
-    runtime: Runtime, collection: str, corpus: Path, view: ProgressView
-) -> IngestCounts:
-    """A demo corpus as ``excerpta demo`` ingests it: its ``documents`` folder, with its
-    ``schema.json``."""
-    return ingest_path(
-        runtime,
-        collection,
-        corpus / "documents",
-        schema_file=corpus / "schema.json",
-        batch_size=DEMO_BATCH,
-        view=view,
-    )
 
 
 def run_pending_rechunk(runtime: Runtime, collection: str, view: ProgressView) -> None:

@@ -25,7 +25,7 @@ import httpx
 import pytest
 
 from service.cli import DEMO_COLLECTION
-from service.usecases.ingest_files import ingest_demo
+from service.usecases.demo import ingest_demo
 from service.usecases.runtime import Runtime
 from tests.api_helpers import make_key
 from tests.conftest import REPO, need

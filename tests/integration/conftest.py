@@ -26,7 +26,7 @@ from service.api.app import create_app
 from service.cli import main
 from service.config import Settings
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
-from service.usecases.ingest_files import ingest_demo
+from service.usecases.demo import ingest_demo
 from service.usecases.runtime import Runtime
 from tests.api_helpers import Api, make_key
 from tests.chat_endpoint import FakeEndpoint

@@ -294,14 +294,12 @@ def _print_keys(rows: Sequence[Any], *, as_json: bool) -> None:
 
 
 def cmd_keys(args: argparse.Namespace) -> int:
-    from service.store.db import session_factory, unit_of_work
     from service.usecases import keys
 
-    engine = _migrated_engine(args)
-    factory = session_factory(engine)
+    runtime = _runtime(args)
     try:
-        with unit_of_work(factory) as session:
-            if args.keys_command == "create":
+        if args.keys_command == "create":
+            with runtime.write_transaction() as session:
                 secret, info = keys.create_key(
                     session,
                     role=args.role,
@@ -309,18 +307,20 @@ def cmd_keys(args: argparse.Namespace) -> int:
                     collections=_split(args.collections),
                     name=args.name,
                 )
-                print(secret)
-                print(
-                    f"created key {info.name!r} ({info.role}); it is shown only once",
-                    file=sys.stderr,
-                )
-            elif args.keys_command == "revoke":
+            print(secret)
+            print(
+                f"created key {info.name!r} ({info.role}); it is shown only once", file=sys.stderr
+            )
+        elif args.keys_command == "revoke":
+            with runtime.write_transaction() as session:
                 keys.revoke_key(session, args.name)
-                print(f"revoked key {args.name!r}")
-            else:
-                _print_keys(keys.list_keys(session), as_json=args.json)
+            print(f"revoked key {args.name!r}")
+        else:
+            with runtime.transaction() as session:
+                found = keys.list_keys(session)
+            _print_keys(found, as_json=args.json)
     finally:
-        engine.dispose()
+        runtime.close()
     return 0
 
 
@@ -503,13 +503,10 @@ def cmd_explain(args: argparse.Namespace) -> int:
 
 
 def cmd_traces(args: argparse.Namespace) -> int:
-    from service.store.db import session_factory
-    from service.store.identity import StoreGuard
-    from service.store.transactions import Transactions
     from service.usecases.callers import LOCAL_ADMIN
     from service.usecases.traces import TraceListing, trace_page
 
-    engine = _migrated_engine(args)
+    runtime = _runtime(args)
     listing = TraceListing(
         collection=args.collection,
         since=args.since,
@@ -519,10 +516,9 @@ def cmd_traces(args: argparse.Namespace) -> int:
         cursor=args.cursor,
     )
     try:
-        transactions = Transactions(session_factory(engine), StoreGuard(engine))
-        page = trace_page(transactions, LOCAL_ADMIN, listing)
+        page = trace_page(runtime.transactions, LOCAL_ADMIN, listing)
     finally:
-        engine.dispose()
+        runtime.close()
     if args.json:
         from service.api.render import trace_page_json
 

@@ -8,7 +8,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from service.ingest.progress import IngestCounts, ProgressView
-from service.store.db import unit_of_work
 from service.store.repository import collection_by_name
 from service.usecases import keys
 from service.usecases.ingest_files import ingest_path
@@ -53,7 +52,7 @@ def set_up_demo(runtime: Runtime, collection: str, corpus: Path, view: ProgressV
     key_file = runtime.settings.data_dir / KEY_FILE
     if key_file.exists():
         return DemoSetup(ingested, key_file, None)
-    with unit_of_work(runtime.sessions) as session:
+    with runtime.write_transaction() as session:
         secret, _ = keys.create_key(
             session, role="admin", groups=[], collections=None, name=f"demo-{os.getpid()}"
         )

@@ -6,7 +6,6 @@ from typing import Any
 
 from fastapi.testclient import TestClient
 
-from service.store.db import unit_of_work
 from service.usecases import keys
 from service.usecases.runtime import Runtime
 
@@ -28,7 +27,9 @@ BIKE_SCHEMA: dict[str, Any] = {
 
 
 def make_key(runtime: Runtime, role: str, **options: Any) -> str:
-    with unit_of_work(runtime.sessions) as session:
+    # A write transaction takes the write lock first, so a worker writing beside it makes it
+    # wait instead of failing (a read turned write mid-transaction gets SQLite's "locked").
+    with runtime.write_transaction() as session:
         secret, _ = keys.create_key(
             session,
             role=role,

@@ -4,7 +4,8 @@ retrieval core take from them.
 
 Each step beyond plain fusion is switched off by its zero: ``lexical_feedback_chunks``,
 ``semantic_feedback_chunks`` and ``second_chunk_weight`` at 0, ``fusion`` ``rrf`` with
-``semantic_weight`` 0.5, ``title_weight`` and ``section_weight`` at 1.
+``semantic_weight`` 0.5, ``title_weight`` and ``section_weight`` at 1, ``feedback_source``
+``own`` (each feedback step from its own first ranking, not from their fusion).
 
 The defaults take the two feedback steps, with the parameters their sources made common (RM3:
 10 feedback chunks, 10 terms, the original query at 0.5; Rocchio: the 5 best chunks at 0.5),
@@ -22,7 +23,9 @@ from service.errors import InvalidRequest
 from service.index.analyzer import Analyzer, english_stopwords
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
 from service.retrieval.ranking_settings import (
+    FEEDBACK_SOURCES,
     FUSION_METHODS,
+    FeedbackSource,
     FusionMethod,
     LexicalFeedback,
     RankingSettings,
@@ -43,6 +46,7 @@ DEFAULT_RETRIEVAL: dict[str, Any] = {
     "lexical_feedback_query_weight": 0.5,
     "semantic_feedback_chunks": 5,
     "semantic_feedback_weight": 0.5,
+    "feedback_source": "own",
     "fusion": "rrf",
     "rrf_k": 60,
     "semantic_weight": 0.5,
@@ -78,6 +82,7 @@ def checked_retrieval(raw: Mapping[str, Any], current: Mapping[str, Any]) -> dic
     _check_choice(merged, "bm25", ("smoothed", "okapi"))
     _check_choice(merged, "metric", ("cosine", "dot", "euclidean"))
     _check_choice(merged, "fusion", FUSION_METHODS)
+    _check_choice(merged, "feedback_source", FEEDBACK_SOURCES)
     for name, (low, high) in _NUMBERS.items():
         value = merged[name]
         if (
@@ -160,5 +165,6 @@ def ranking_settings(retrieval: Mapping[str, Any]) -> RankingSettings:
         semantic_weight=float(settings["semantic_weight"]),
         lexical_feedback=lexical,
         semantic_feedback=semantic,
+        feedback_source=cast(FeedbackSource, settings["feedback_source"]),
         second_chunk_weight=float(settings["second_chunk_weight"]),
     )

@@ -173,21 +173,16 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         rankings["lexical"] = lexical
         stages.append(_stage(snapshot, lexical, started, candidates, query.trace_top))
         if steps.lexical_feedback is not None and not from_fusion:
-            started = time.perf_counter()
-            rankings["lexical"], notes = _lexical_feedback(
-                snapshot, query, mask, lexical, steps.lexical_feedback, source="own"
+            rankings["lexical"], stage = _lexical_feedback(
+                snapshot,
+                query,
+                mask,
+                lexical,
+                steps.lexical_feedback,
+                source="own",
+                candidates=candidates,
             )
-            stages.append(
-                _stage(
-                    snapshot,
-                    rankings["lexical"],
-                    started,
-                    candidates,
-                    query.trace_top,
-                    name="lexical_feedback",
-                    notes=notes,
-                )
-            )
+            stages.append(stage)
     if scan is not None:
         semantic, plan = finish_semantic_ranking(snapshot, scan, mask, query.depth)
         rankings["semantic"] = semantic
@@ -216,18 +211,14 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
             # scan or graph search runs beside the lexical feedback below.
             rescan = begin_semantic_ranking(snapshot, refined, mask, candidates, query.depth)
         if from_fusion and steps.lexical_feedback is not None:
-            started = time.perf_counter()
-            rankings["lexical"], notes = _lexical_feedback(
-                snapshot, query, mask, feedback_set, steps.lexical_feedback, source="fused"
-            )
-            stage = _stage(
+            rankings["lexical"], stage = _lexical_feedback(
                 snapshot,
-                rankings["lexical"],
-                started,
-                candidates,
-                query.trace_top,
-                name="lexical_feedback",
-                notes=notes,
+                query,
+                mask,
+                feedback_set,
+                steps.lexical_feedback,
+                source="fused",
+                candidates=candidates,
             )
             stages.append(stage)
         if rescan is not None and steps.semantic_feedback is not None:
@@ -307,12 +298,14 @@ def _lexical_feedback(
     feedback: LexicalFeedback,
     *,
     source: FeedbackSource,
-) -> tuple[Ranking, dict[str, object]]:
-    """The lexical ranking of the RM3 query built from ``first``: the first lexical ranking,
-    weighted by its scores, or the first fused one, each chunk weighted the same (see
-    ``refinement``)."""
-    weights = first.scores if source == "own" else np.ones(len(first), dtype=np.float64)
-    expansion = rm3_expansion(snapshot, query.tokens, first.rows, weights, feedback)
+    candidates: int,
+) -> tuple[Ranking, StageTrace]:
+    """The lexical ranking of the RM3 query built from ``first`` and its trace stage: from the
+    first lexical ranking, weighted by its scores, or from the first fused one, each chunk
+    weighted the same (see ``refinement``)."""
+    started = time.perf_counter()
+    chunk_weights = first.scores if source == "own" else np.ones(len(first), dtype=np.float64)
+    expansion = rm3_expansion(snapshot, query.tokens, first.rows, chunk_weights, feedback)
     scoring = query.scoring
     match = snapshot.lexical.match_weighted(
         expansion.term_ids,
@@ -336,7 +329,16 @@ def _lexical_feedback(
             for name, weight in zip(names, weights, strict=True)
         ],
     }
-    return ranking, notes
+    stage = _stage(
+        snapshot,
+        ranking,
+        started,
+        candidates,
+        query.trace_top,
+        name="lexical_feedback",
+        notes=notes,
+    )
+    return ranking, stage
 
 
 def _fuse(

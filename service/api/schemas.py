@@ -84,6 +84,11 @@ class RetrievalSettingsIn(Strict):
     semantic_feedback_weight: float | None = Field(
         None, description="Weight of their mean vector (Rocchio), 0 to 4"
     )
+    feedback_source: Literal["own", "fused"] | None = Field(
+        None,
+        description="Hybrid: where both feedback steps take their chunks: each ranking's own "
+        "top, or the top of the two rankings fused",
+    )
     fusion: Literal["rrf", "min_max", "z_score"] | None = Field(
         None, description="Hybrid fusion: reciprocal rank fusion or normalised score fusion"
     )

@@ -25,7 +25,7 @@ from service.evaluation.filter_agreement import (
 from service.evaluation.inputs import FilterSpec, LabeledQuery
 from service.evaluation.measures import measure_names, query_measures, relevant_count
 from service.evaluation.significance import bootstrap_interval, paired_randomization_test
-from service.retrieval.ranking_settings import FUSION_METHODS
+from service.retrieval.ranking_settings import FEEDBACK_SOURCES, FUSION_METHODS
 
 MODES = ("lexical", "semantic", "hybrid")
 
@@ -38,6 +38,7 @@ SETTING_MODES: Mapping[str, tuple[str, ...]] = {
     "lexical_feedback_query_weight": ("hybrid",),
     "semantic_feedback_chunks": ("hybrid",),
     "semantic_feedback_weight": ("hybrid",),
+    "feedback_source": ("hybrid",),
     "fusion": ("hybrid",),
     "semantic_weight": ("hybrid",),
     "second_chunk_weight": ("hybrid",),
@@ -45,7 +46,10 @@ SETTING_MODES: Mapping[str, tuple[str, ...]] = {
 """Per-query settings that ``--set`` may vary, and the modes whose ranking they change (the
 collection's own settings of the same names; field weights change the index and are not here)."""
 
-CHOICE_SETTINGS: Mapping[str, tuple[str, ...]] = {"fusion": FUSION_METHODS}
+CHOICE_SETTINGS: Mapping[str, tuple[str, ...]] = {
+    "fusion": FUSION_METHODS,
+    "feedback_source": FEEDBACK_SOURCES,
+}
 UNIT_SETTINGS = ("b", "lexical_feedback_query_weight", "semantic_weight", "second_chunk_weight")
 """Settings whose values lie between 0 and 1."""
 

@@ -29,7 +29,12 @@ from service.retrieval.ranking import (
     ranked_rows,
     with_document_support,
 )
-from service.retrieval.ranking_settings import PLAIN_FUSION, LexicalFeedback, RankingSettings
+from service.retrieval.ranking_settings import (
+    PLAIN_FUSION,
+    FeedbackSource,
+    LexicalFeedback,
+    RankingSettings,
+)
 from service.retrieval.refinement import rm3_expansion, rocchio_vector
 
 Mode = Literal["hybrid", "lexical", "semantic"]
@@ -153,6 +158,9 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         scan = begin_semantic_ranking(snapshot, query.vector, mask, candidates, query.depth)
     rankings: dict[str, Ranking] = {}
     steps = query.ranking if query.mode == "hybrid" else PLAIN_FUSION
+    from_fusion = steps.feedback_source == "fused" and (
+        steps.lexical_feedback is not None or steps.semantic_feedback is not None
+    )
     if query.mode != "semantic":
         started = time.perf_counter()
         lexical = lexical_ranking(
@@ -164,41 +172,68 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
         )
         rankings["lexical"] = lexical
         stages.append(_stage(snapshot, lexical, started, candidates, query.trace_top))
-        if steps.lexical_feedback is not None:
-            started = time.perf_counter()
-            rankings["lexical"], notes = _lexical_feedback(
-                snapshot, query, mask, lexical, steps.lexical_feedback
+        if steps.lexical_feedback is not None and not from_fusion:
+            rankings["lexical"], stage = _lexical_feedback(
+                snapshot,
+                query,
+                mask,
+                lexical,
+                steps.lexical_feedback,
+                source="own",
+                candidates=candidates,
             )
-            stages.append(
-                _stage(
-                    snapshot,
-                    rankings["lexical"],
-                    started,
-                    candidates,
-                    query.trace_top,
-                    name="lexical_feedback",
-                    notes=notes,
-                )
-            )
+            stages.append(stage)
     if scan is not None:
         semantic, plan = finish_semantic_ranking(snapshot, scan, mask, query.depth)
         rankings["semantic"] = semantic
         stage = _stage(snapshot, semantic, scan.started, candidates, query.trace_top)
         stages.append(replace(stage, plan=plan))
-        if steps.semantic_feedback is not None:
+        feedback_set = semantic
+        if from_fusion:
             started = time.perf_counter()
+            feedback_set, notes = _fuse(rankings, query, steps)
+            stage = _stage(
+                snapshot,
+                feedback_set,
+                started,
+                candidates,
+                query.trace_top,
+                name="feedback_fusion",
+                notes=notes,
+            )
+            stages.append(stage)
+        rescan = None
+        if steps.semantic_feedback is not None:
+            rocchio_started = time.perf_counter()
             feedback = steps.semantic_feedback
-            refined = rocchio_vector(snapshot, scan.query, semantic.rows, feedback)
-            # Planned like the first ranking (gather, scan or graph), with the count known.
+            refined = rocchio_vector(snapshot, scan.query, feedback_set.rows, feedback)
+            # Planned like the first ranking (gather, scan or graph), with the count known; a
+            # scan or graph search runs beside the lexical feedback below.
             rescan = begin_semantic_ranking(snapshot, refined, mask, candidates, query.depth)
+        if from_fusion and steps.lexical_feedback is not None:
+            rankings["lexical"], stage = _lexical_feedback(
+                snapshot,
+                query,
+                mask,
+                feedback_set,
+                steps.lexical_feedback,
+                source="fused",
+                candidates=candidates,
+            )
+            stages.append(stage)
+        if rescan is not None and steps.semantic_feedback is not None:
             rankings["semantic"], refined_plan = finish_semantic_ranking(
                 snapshot, rescan, mask, query.depth
             )
-            notes = {"chunks": min(feedback.chunks, len(semantic)), "weight": feedback.weight}
+            notes = {
+                "chunks": min(steps.semantic_feedback.chunks, len(feedback_set)),
+                "weight": steps.semantic_feedback.weight,
+                "source": "fused" if from_fusion else "own",
+            }
             stage = _stage(
                 snapshot,
                 rankings["semantic"],
-                started,
+                rocchio_started,
                 candidates,
                 query.trace_top,
                 name="semantic_feedback",
@@ -261,9 +296,16 @@ def _lexical_feedback(
     mask: np.ndarray,
     first: Ranking,
     feedback: LexicalFeedback,
-) -> tuple[Ranking, dict[str, object]]:
-    """The lexical ranking of the RM3 query built from ``first`` (see ``refinement``)."""
-    expansion = rm3_expansion(snapshot, query.tokens, first.rows, first.scores, feedback)
+    *,
+    source: FeedbackSource,
+    candidates: int,
+) -> tuple[Ranking, StageTrace]:
+    """The lexical ranking of the RM3 query built from ``first`` and its trace stage: from the
+    first lexical ranking, weighted by its scores, or from the first fused one, each chunk
+    weighted the same (see ``refinement``)."""
+    started = time.perf_counter()
+    chunk_weights = first.scores if source == "own" else np.ones(len(first), dtype=np.float64)
+    expansion = rm3_expansion(snapshot, query.tokens, first.rows, chunk_weights, feedback)
     scoring = query.scoring
     match = snapshot.lexical.match_weighted(
         expansion.term_ids,
@@ -281,12 +323,22 @@ def _lexical_feedback(
     notes: dict[str, object] = {
         "chunks": expansion.feedback_rows,
         "query_weight": feedback.query_weight,
+        "source": source,
         "terms": [
             {"term": name, "weight": round(weight, 6)}
             for name, weight in zip(names, weights, strict=True)
         ],
     }
-    return ranking, notes
+    stage = _stage(
+        snapshot,
+        ranking,
+        started,
+        candidates,
+        query.trace_top,
+        name="lexical_feedback",
+        notes=notes,
+    )
+    return ranking, stage
 
 
 def _fuse(

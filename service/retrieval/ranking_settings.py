@@ -9,6 +9,8 @@ from typing import Literal
 
 FusionMethod = Literal["rrf", "min_max", "z_score"]
 FUSION_METHODS: tuple[FusionMethod, ...] = ("rrf", "min_max", "z_score")
+FeedbackSource = Literal["own", "fused"]
+FEEDBACK_SOURCES: tuple[FeedbackSource, ...] = ("own", "fused")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -43,7 +45,9 @@ class RankingSettings:
 
     ``semantic_weight`` is the semantic ranking's share of the fusion (0.5: both count the
     same; plain reciprocal rank fusion is ``fusion="rrf"`` at 0.5); ``rrf_k`` is the fusion's k
-    where a request names none.
+    where a request names none. ``feedback_source`` says where both feedback steps take their
+    chunks: ``own``, each from its own first ranking; ``fused``, both from the fusion of the two
+    first rankings.
     """
 
     fusion: FusionMethod = "rrf"
@@ -51,11 +55,14 @@ class RankingSettings:
     semantic_weight: float = 0.5
     lexical_feedback: LexicalFeedback | None = None
     semantic_feedback: SemanticFeedback | None = None
+    feedback_source: FeedbackSource = "own"
     second_chunk_weight: float = 0.0
 
     def __post_init__(self) -> None:
         if self.fusion not in FUSION_METHODS:
             raise ValueError(f"unknown fusion {self.fusion!r}")
+        if self.feedback_source not in FEEDBACK_SOURCES:
+            raise ValueError(f"unknown feedback source {self.feedback_source!r}")
         if self.rrf_k < 1:
             raise ValueError("rrf_k must be at least 1")
         if not 0.0 <= self.semantic_weight <= 1.0:

@@ -9,6 +9,10 @@ Each step is a collection setting a user can switch off, and each is a stage of 
   terms, interpolated with the original query's, are ranked again by BM25 with those weights.
 - semantic feedback: Rocchio ("Relevance feedback in information retrieval", 1971) on the query
   vector: ``q' = q + weight * mean(top chunk vectors)``, ranked again.
+- feedback source: both feedback steps take their chunks either from their own first ranking,
+  as each method was published, or from the fusion of the two first rankings, so that each
+  method learns from the chunks the other ranking found as well. The fused scores are ranks, not
+  likelihoods, so there RM3 gives each feedback chunk the same ``P(d)``.
 - fusion: reciprocal rank fusion with a weight per ranking (Cormack, Clarke and Büttcher 2009),
   or a convex combination of each ranking's normalised scores, min-max or z-score (Fox and Shaw,
   "Combination of Multiple Searches", TREC-2 1994; Bruch, Gai and Ingber, "An Analysis of

@@ -4,13 +4,15 @@ retrieval core take from them.
 
 Each step beyond plain fusion is switched off by its zero: ``lexical_feedback_chunks``,
 ``semantic_feedback_chunks`` and ``second_chunk_weight`` at 0, ``fusion`` ``rrf`` with
-``semantic_weight`` 0.5, ``title_weight`` and ``section_weight`` at 1.
+``semantic_weight`` 0.5, ``title_weight`` and ``section_weight`` at 1, ``feedback_source``
+``own`` (each feedback step from its own first ranking, not from their fusion).
 
 The defaults take the two feedback steps, with the parameters their sources made common (RM3:
 10 feedback chunks, 10 terms, the original query at 0.5; Rocchio: the 5 best chunks at 0.5),
 and leave the rest at plain fusion: on the development collections (Cranfield and MED, see
 docs/ranking-quality.md) those two raised nDCG@10 on both, while the other steps helped one
-collection only or changed what the lexical mode's scores mean (field weights).
+collection only or changed what the lexical mode's scores mean (field weights). Taking both
+feedback steps' chunks from the fused first ranking (``feedback_source`` ``fused``) lowered both.
 """
 
 from __future__ import annotations
@@ -22,7 +24,9 @@ from service.errors import InvalidRequest
 from service.index.analyzer import Analyzer, english_stopwords
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, Bm25Variant, LexicalScoring
 from service.retrieval.ranking_settings import (
+    FEEDBACK_SOURCES,
     FUSION_METHODS,
+    FeedbackSource,
     FusionMethod,
     LexicalFeedback,
     RankingSettings,
@@ -43,6 +47,7 @@ DEFAULT_RETRIEVAL: dict[str, Any] = {
     "lexical_feedback_query_weight": 0.5,
     "semantic_feedback_chunks": 5,
     "semantic_feedback_weight": 0.5,
+    "feedback_source": "own",
     "fusion": "rrf",
     "rrf_k": 60,
     "semantic_weight": 0.5,
@@ -78,6 +83,7 @@ def checked_retrieval(raw: Mapping[str, Any], current: Mapping[str, Any]) -> dic
     _check_choice(merged, "bm25", ("smoothed", "okapi"))
     _check_choice(merged, "metric", ("cosine", "dot", "euclidean"))
     _check_choice(merged, "fusion", FUSION_METHODS)
+    _check_choice(merged, "feedback_source", FEEDBACK_SOURCES)
     for name, (low, high) in _NUMBERS.items():
         value = merged[name]
         if (
@@ -160,5 +166,6 @@ def ranking_settings(retrieval: Mapping[str, Any]) -> RankingSettings:
         semantic_weight=float(settings["semantic_weight"]),
         lexical_feedback=lexical,
         semantic_feedback=semantic,
+        feedback_source=cast(FeedbackSource, settings["feedback_source"]),
         second_chunk_weight=float(settings["second_chunk_weight"]),
     )

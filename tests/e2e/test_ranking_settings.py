@@ -31,6 +31,7 @@ EVERY_STEP = {
     "lexical_feedback_query_weight": 0.6,
     "semantic_feedback_chunks": 2,
     "semantic_feedback_weight": 0.4,
+    "feedback_source": "fused",
     "fusion": "z_score",
     "semantic_weight": 0.6,
     "second_chunk_weight": 0.3,
@@ -75,15 +76,31 @@ def test_every_step_is_a_setting_shown_and_a_stage_of_the_trace(stocked: Api) ->
         "filter",
         "query_embedding",
         "lexical",
+        "semantic",
+        "feedback_fusion",
+        "lexical_feedback",
+        "semantic_feedback",
+        "fusion",
+    ]
+    assert stages["feedback_fusion"]["notes"]["method"] == "z_score"
+    feedback = stages["lexical_feedback"]["notes"]
+    assert feedback["chunks"] == 2 and feedback["query_weight"] == 0.6
+    assert feedback["source"] == "fused"
+    assert {"brake", "pad"} <= {term["term"] for term in feedback["terms"]}
+    assert stages["semantic_feedback"]["notes"] == {"chunks": 2, "weight": 0.4, "source": "fused"}
+
+    assert put_retrieval(stocked, {"feedback_source": "own"}).status_code == 200
+    own = stages_of(stocked, {"query": "brake pads"})
+    assert list(own) == [
+        "filter",
+        "query_embedding",
+        "lexical",
         "lexical_feedback",
         "semantic",
         "semantic_feedback",
         "fusion",
     ]
-    feedback = stages["lexical_feedback"]["notes"]
-    assert feedback["chunks"] == 2 and feedback["query_weight"] == 0.6
-    assert {"brake", "pad"} <= {term["term"] for term in feedback["terms"]}
-    assert stages["semantic_feedback"]["notes"] == {"chunks": 2, "weight": 0.4}
+    assert own["semantic_feedback"]["notes"]["source"] == "own"
     assert stages["fusion"]["notes"]["method"] == "z_score"
     assert stages["fusion"]["notes"]["second_chunk_weight"] == 0.3
 
@@ -129,6 +146,7 @@ def test_a_title_weight_reindexes_the_title_terms(stocked: Api) -> None:
         ("semantic_weight", 1.5),
         ("semantic_weight", "half"),
         ("fusion", "average"),
+        ("feedback_source", "both"),
         ("lexical_feedback_chunks", -1),
         ("lexical_feedback_chunks", 2.5),
         ("lexical_feedback_terms", 0),

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -15,9 +16,10 @@ import pytest
 from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord, CollectionIndex
 from service.index.lexical import LexicalIndex, LexicalScoring
-from service.retrieval.query import RetrievalQuery, retrieve
+from service.retrieval.query import RetrievalQuery, RetrievalResult, retrieve
 from service.retrieval.ranking import Ranking, fuse_rrf, fuse_scores, with_document_support
 from service.retrieval.ranking_settings import (
+    FeedbackSource,
     LexicalFeedback,
     RankingSettings,
     SemanticFeedback,
@@ -236,10 +238,65 @@ def test_every_hybrid_step_is_a_stage_of_the_trace_with_its_notes() -> None:
     assert "flutter" in terms
     # The expanded query reaches the chunk without the query's own term.
     assert "d3#0000" in [entry.chunk_id for entry in result.stages[2].top]
-    assert result.stages[4].notes == {"chunks": 2, "weight": 0.5}
+    assert result.stages[4].notes == {"chunks": 2, "weight": 0.5, "source": "own"}
     fusion = result.stages[5].notes
     assert fusion["method"] == "min_max" and fusion["semantic_weight"] == 0.3
     assert fusion["second_chunk_weight"] == 0.2
+
+
+def test_fused_feedback_takes_both_steps_chunks_from_the_first_fusion() -> None:
+    # At depth 2, a leads the lexical ranking only and b the semantic one only; c is second in
+    # both, so it leads their fusion (2/62 against 1/61) and is the one feedback chunk.
+    records = [
+        record("a#0000", ["wing"], [0, 0, 1, 0]),
+        record("b#0000", ["flutter", "speed"], [1, 0, 0, 0]),
+        record("c#0000", ["wing", "lift", "lift"], [0.6, 0.8, 0, 0]),
+    ]
+    snapshot = CollectionIndex.build(records, metric="cosine", dimension=DIMENSION).snapshot()
+    lexical_feedback = LexicalFeedback(chunks=1, terms=2, query_weight=0.5)
+    semantic_feedback = SemanticFeedback(chunks=1, weight=0.5)
+
+    def run(source: FeedbackSource) -> RetrievalResult:
+        steps = RankingSettings(
+            lexical_feedback=lexical_feedback,
+            semantic_feedback=semantic_feedback,
+            feedback_source=source,
+        )
+        query = replace(hybrid_query(steps, ("wing",)), top_k=2, depth=2, keep=2)
+        return retrieve(snapshot, query)
+
+    result = run("fused")
+    stages = {stage.name: stage for stage in result.stages}
+    assert list(stages) == [
+        "filter",
+        "lexical",
+        "semantic",
+        "feedback_fusion",
+        "lexical_feedback",
+        "semantic_feedback",
+        "fusion",
+    ]
+    assert stages["feedback_fusion"].top[0].chunk_id == "c#0000"
+    # RM3 from c alone: P(t|R) is wing 1/3, lift 2/3; interpolated at 0.5 with the query.
+    notes = stages["lexical_feedback"].notes
+    assert notes["source"] == "fused" and notes["chunks"] == 1
+    terms = {entry["term"]: entry["weight"] for entry in notes["terms"]}  # type: ignore[attr-defined]
+    assert terms == pytest.approx({"wing": 0.5 + 0.5 / 3, "lift": 0.5 * 2 / 3}, abs=1e-6)
+    # Rocchio from c: the unit query plus half of c's vector, ranked by cosine.
+    query = np.array([1.0, 0.2, 0.0, 0.0]) / math.hypot(1.0, 0.2)
+    refined = query + 0.5 * np.array([0.6, 0.8, 0.0, 0.0])
+    cosine = {
+        row: float(refined @ vector / (np.linalg.norm(refined) * np.linalg.norm(vector)))
+        for row, vector in ((1, np.array([1.0, 0, 0, 0])), (2, np.array([0.6, 0.8, 0, 0])))
+    }
+    semantic = result.rankings["semantic"]
+    assert semantic.rows.tolist() == [1, 2]
+    assert semantic.scores.tolist() == pytest.approx([cosine[1], cosine[2]], rel=1e-6)
+    assert stages["semantic_feedback"].notes == {"chunks": 1, "weight": 0.5, "source": "fused"}
+
+    own = {stage.name: stage for stage in run("own").stages}
+    assert "feedback_fusion" not in own
+    assert [entry["term"] for entry in own["lexical_feedback"].notes["terms"]] == ["wing"]  # type: ignore[attr-defined]
 
 
 def test_plain_settings_rank_as_plain_fusion_did() -> None:
@@ -263,3 +320,5 @@ def test_settings_out_of_range_are_refused_by_the_core() -> None:
         LexicalFeedback(chunks=0)
     with pytest.raises(ValueError):
         SemanticFeedback(weight=-1.0)
+    with pytest.raises(ValueError):
+        RankingSettings(feedback_source="both")  # type: ignore[arg-type]

@@ -77,3 +77,10 @@ def test_the_grid_reads_names_and_values_in_one_list() -> None:
         candidates_from_grid({"semantic_weight": ["1.5"]})
     with pytest.raises(ValueError):
         candidates_from_grid({"fusion": ["average"]})
+    sources = candidates_from_grid({"feedback_source": ["own", "fused"]})
+    assert [c.settings for c in sources[1:]] == [
+        {"feedback_source": "own"},
+        {"feedback_source": "fused"},
+    ]
+    with pytest.raises(ValueError):
+        candidates_from_grid({"feedback_source": ["both"]})

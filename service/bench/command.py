@@ -19,6 +19,7 @@ from service.bench.references import require_reference_libraries
 from service.bench.report import (
     machine,
     print_answering,
+    print_graph_hybrid,
     print_http,
     print_http_with_ingest,
     print_ingest_throughput,
@@ -29,6 +30,7 @@ from service.bench.report import (
 from service.bench.synthetic import check_parameters, make_queries
 from service.bench.verdicts import (
     answering_targets,
+    graph_hybrid_targets,
     http_targets,
     ingest_targets,
     model_targets,
@@ -99,6 +101,13 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
         "--vector-index",
         action="store_true",
         help="measure the semantic plans (graph, gather, scan) on clustered vectors instead",
+    )
+    parser.add_argument(
+        "--graph-hybrid",
+        action="store_true",
+        help="measure hybrid and semantic queries over the vector index (the default: a graph"
+        " above its threshold) against exact search, fresh and after 10%% of rows are written"
+        " again, on clustered vectors instead",
     )
     parser.add_argument(
         "--graph-links", type=_positive, default=DEFAULT_LINKS, help="graph neighbours per node"
@@ -224,6 +233,9 @@ def run_bench(args: argparse.Namespace) -> dict[str, Any]:
         results["answering"] = answering
     if args.vector_index:
         results["vector_index"] = _run_vector_index(args)
+        return results
+    if args.graph_hybrid:
+        results["graph_hybrid"] = _run_graph_hybrid(args)
         return results
     if args.restart:
         results["restart"] = _run_restart(args)
@@ -366,6 +378,34 @@ def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
             progress=_progress,
         )
         print_vector_index(result, print)
+        sys.stdout.flush()
+        figures.append(result)
+    return figures
+
+
+def _run_graph_hybrid(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.graph_hybrid import run_graph_hybrid
+    from service.bench.vector_index import model_centres
+
+    settings = _graph_settings(args, "auto")
+    _progress("embedding the corpus paragraphs (cluster centres)")
+    centres = model_centres()
+    figures = []
+    for size in args.chunks:
+        check_parameters(size, args.dims)
+        result = run_graph_hybrid(
+            size,
+            dimension=args.dims,
+            queries=args.queries,
+            top_k=args.top_k,
+            depth=args.depth,
+            seed=args.seed,
+            settings=settings,
+            centres=centres,
+            progress=_progress,
+        )
+        result["targets"] = graph_hybrid_targets(result)
+        print_graph_hybrid(result, print)
         sys.stdout.flush()
         figures.append(result)
     return figures

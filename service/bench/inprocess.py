@@ -55,7 +55,7 @@ from service.filters.syntax import Node
 from service.index.collection_index import CollectionIndex, IndexSnapshot
 from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalScoring
 from service.packing.packer import PackCandidate, PackedContext, pack_context
-from service.retrieval.query import Hit, RetrievalQuery, RetrievalResult, retrieve
+from service.retrieval.query import Hit, Mode, RetrievalQuery, RetrievalResult, retrieve
 from service.retrieval.ranking import (
     Ranking,
     fuse_rrf,
@@ -92,7 +92,8 @@ def _mask(snapshot: IndexSnapshot, node: Node) -> np.ndarray:
     return evaluate(node, snapshot.columns) & snapshot.live
 
 
-def _checked(text: str) -> Node:
+def checked_filter(text: str) -> Node:
+    """A filter on the synthetic schema, parsed and checked as a request's is."""
     return check_filter(parse_filter(text), SCHEMA)
 
 
@@ -112,6 +113,35 @@ def pack(
     )
 
 
+def service_query(
+    tokens: Sequence[str],
+    vector: np.ndarray,
+    *,
+    top_k: int,
+    depth: int,
+    keep: int | None = None,
+    ranking: RankingSettings = PLAIN_FUSION,
+    mode: Mode = "hybrid",
+    filter: Node | None = None,
+) -> RetrievalQuery:
+    """A query as the search route hands it to ``retrieve`` (``keep=depth`` asks for the whole
+    fused ranking, as the context route does), with plain fusion unless ``ranking`` names
+    further steps."""
+    return RetrievalQuery(
+        mode=mode,
+        tokens=tuple(tokens),
+        vector=vector,
+        filter=filter,
+        groups=None,
+        top_k=top_k,
+        depth=depth,
+        rrf_k=RRF_K,
+        keep=top_k if keep is None else keep,
+        scoring=LexicalScoring(),
+        ranking=ranking,
+    )
+
+
 def hybrid_query(
     snapshot: IndexSnapshot,
     tokens: list[str],
@@ -122,22 +152,8 @@ def hybrid_query(
     keep: int | None = None,
     ranking: RankingSettings = PLAIN_FUSION,
 ) -> RetrievalResult:
-    """The whole in-process hybrid query over every live row, as the search route runs it
-    (``keep=depth`` returns the whole fused ranking, as the context route asks), with plain
-    fusion unless ``ranking`` names further steps."""
-    query = RetrievalQuery(
-        mode="hybrid",
-        tokens=tuple(tokens),
-        vector=vector,
-        filter=None,
-        groups=None,
-        top_k=top_k,
-        depth=depth,
-        rrf_k=RRF_K,
-        keep=top_k if keep is None else keep,
-        scoring=LexicalScoring(),
-        ranking=ranking,
-    )
+    """The whole in-process hybrid query over every live row, as the search route runs it."""
+    query = service_query(tokens, vector, top_k=top_k, depth=depth, keep=keep, ranking=ranking)
     return retrieve(snapshot, query)
 
 
@@ -241,14 +257,14 @@ def run_size(
     live = snapshot.live.copy()
 
     stages["filter parse+check"], _ = time_each(
-        range(count), lambda _: _checked(THREE_CLAUSE_FILTER)
+        range(count), lambda _: checked_filter(THREE_CLAUSE_FILTER)
     )
-    three_clauses = _checked(THREE_CLAUSE_FILTER)
+    three_clauses = checked_filter(THREE_CLAUSE_FILTER)
     stages["filter mask"], masks = time_each(range(count), lambda _: _mask(snapshot, three_clauses))
     notes["filter"] = {"text": THREE_CLAUSE_FILTER, "selected": int(masks[0].sum())}
     by_type: dict[str, Any] = {}
     for selectivity_filter in selectivity_filters(size, 100):
-        node = _checked(selectivity_filter.text)
+        node = checked_filter(selectivity_filter.text)
         summary, type_masks = time_each(range(count), partial(_mask_of, snapshot, node))
         expected = selected_rows(size, selectivity_filter.per_mille)
         _require_count(selectivity_filter.text, int(type_masks[0].sum()), expected)
@@ -272,7 +288,7 @@ def run_size(
     )
     semantic_all: list[Ranking] = []
     for per_mille in SELECTIVITIES_PER_MILLE:
-        node = _checked(f"position < {selected_rows(size, per_mille)}")
+        node = checked_filter(f"position < {selected_rows(size, per_mille)}")
         mask = _mask(snapshot, node)
         _require_count("semantic mask", int(mask.sum()), selected_rows(size, per_mille))
         stages[semantic_key(per_mille)], found = time_each(

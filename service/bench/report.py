@@ -271,3 +271,79 @@ def print_ingest_throughput(run: dict[str, Any], write: Write) -> None:
             f"(278 chunks/s) needs about {run['cores_for_a_million_chunks_an_hour']} "
             "worker cores at that rate"
         )
+
+
+def print_graph_hybrid(figures: dict[str, Any], write: Write) -> None:
+    memory = figures["memory"]
+    write("")
+    graph = (
+        f"graph over {figures['graph_rows']:,} rows built in "
+        f"{figures['graph_build_seconds']:.1f} s on {figures['graph_build_threads']} threads"
+        if figures["graph_build_seconds"] is not None
+        else "no graph"
+    )
+    write(
+        f"== hybrid and semantic over the vector index: {figures['chunks']:,} chunks, "
+        f"{figures['queries']} queries, top k {figures['top_k']}, depth {figures['depth']}; "
+        f"vectors {figures['settings']}: {graph}; index built in "
+        f"{figures['build_seconds']:.1f} s; load average {figures['load_average_1min']:.2f} "
+        f"before, {figures['load_average_1min_after']:.2f} after =="
+    )
+    steps = figures["ranking_steps"]
+    write(
+        "  retrieve() with the default ranking steps: "
+        f"lexical feedback {steps['lexical_feedback']}, semantic feedback "
+        f"{steps['semantic_feedback']}, fusion {steps['fusion']}; the reference is the same "
+        "query on the snapshot without its graph (exact gather or scan)"
+    )
+    write(
+        f"  memory: vector matrix {_mebibytes(memory['vector_matrix_bytes'])}, graph "
+        f"{_mebibytes(memory['graph_bytes'])} (reads the vectors in place: "
+        f"{memory['graph_views_vectors']}), postings {_mebibytes(memory['postings_bytes'])}; "
+        f"(vectors + graph + postings) / (raw vectors + postings) = "
+        f"{memory['arrays_ratio']:.2f}; resident growth over indexing and the graph "
+        f"{_mebibytes(memory['rss_growth_bytes'])} = {memory['ratio']:.2f}x"
+    )
+    phases = (
+        ("fresh", "fresh"),
+        (
+            "replaced",
+            f"replaced ({figures['replaced_rows']:,} rows written again, no rebuild; "
+            f"{figures['tail_rows']:,} rows in the graph's tail)",
+        ),
+    )
+    for phase, title in phases:
+        write(f"  {title}:")
+        write(
+            f"    {'filter':<20} {'share':>6} {'candidates':>10}  {'mode':<8}  {'plans':<22} "
+            f"{'fallbacks':>9}  {'median ms':>9}  {'p99 ms':>7}  {'plain fusion ms':>15}  "
+            f"{'exact median ms':>15}  {'recall@10 (worst)':>17}  {'recall@100':>10}  "
+            f"{'outside':>7}"
+        )
+        for row in figures[phase]:
+            for mode in ("hybrid", "semantic"):
+                entry = row[mode]
+                plans = ", ".join(f"{name} {count}" for name, count in entry["plans"].items())
+                plain = entry.get("plain_fusion")
+                write(
+                    f"    {row['filter']:<20} {row['selectivity']:>6} {row['candidates']:>10,}  "
+                    f"{mode:<8}  {plans:<22} {entry['fallbacks']:>9}  "
+                    f"{entry['planned']['median_ms']:>9.3f}  {entry['planned']['p99_ms']:>7.2f}  "
+                    f"{'-' if plain is None else format(plain['median_ms'], '.3f'):>15}  "
+                    f"{entry['exact']['median_ms']:>15.3f}  {entry['recall_at_10']:>10.3f} "
+                    f"({entry['worst_recall_at_10']:.2f})  {entry['recall_at_100']:>10.3f}  "
+                    f"{entry['outside_mask']:>7}"
+                )
+        write("    hybrid trace stages, median ms (the semantic ones overlap the lexical ones):")
+        for row in figures[phase]:
+            stages = ", ".join(
+                f"{name} {ms:.2f}" for name, ms in row["hybrid"]["stage_medians_ms"].items()
+            )
+            write(f"      {row['filter']:<20} {stages}")
+    write("  targets:")
+    for target in figures["targets"]:
+        write(_verdict(target))
+
+
+def _mebibytes(value: float) -> str:
+    return f"{value / 2**20:.1f} MiB"

@@ -205,7 +205,11 @@ def row_attributes(places: np.ndarray, rng: np.random.Generator) -> list[dict[st
     return rows
 
 
-def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection:
+def make_collection(
+    size: int, dimension: int, seed: int, vectors: np.ndarray | None = None
+) -> SyntheticCollection:
+    """The collection of the module docstring; ``vectors`` (one row a chunk) replace the
+    random unit vectors where given."""
     rng = np.random.default_rng([seed, size, dimension])
     lengths = rng.integers(CHUNK_TOKENS_MIN, CHUNK_TOKENS_MAX + 1, size)
     offsets = np.zeros(size + 1, dtype=np.int64)
@@ -215,7 +219,10 @@ def make_collection(size: int, dimension: int, seed: int) -> SyntheticCollection
     vocabulary = np.array([term(i) for i in range(VOCABULARY_SIZE)], dtype=object)
     texts = [" ".join(vocabulary[ids[offsets[row] : offsets[row + 1]]]) for row in range(size)]
     del ids
-    vectors = unit_vectors(rng, size, dimension)
+    if vectors is None:
+        vectors = unit_vectors(rng, size, dimension)
+    elif vectors.shape != (size, dimension):
+        raise ValueError(f"the collection needs {size} vectors of {dimension} dimensions")
     places = rng.permutation(size)
     attributes = row_attributes(places, rng)
     analyzer = collection_analyzer()

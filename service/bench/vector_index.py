@@ -160,11 +160,28 @@ def _masks(
     return masks
 
 
-def _recall(found: np.ndarray, exact: np.ndarray, at: int) -> float:
+def recall_at(found: np.ndarray, exact: np.ndarray, at: int) -> float:
+    """The share of the exact ranking's first ``at`` rows among the found ranking's first ``at``."""
     wanted = exact[:at]
     if len(wanted) == 0:
         return 1.0
     return len(np.intersect1d(found[:at], wanted)) / len(wanted)
+
+
+def outside_mask(rows: np.ndarray, mask: np.ndarray) -> int:
+    """How many of ``rows`` the candidate mask does not hold (there must be none)."""
+    return int(np.count_nonzero(~mask[rows]))
+
+
+def replaced_documents(
+    centres: np.ndarray, documents: int, rows_per_document: int, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A ``REPLACED_SHARE`` of ``documents`` chosen to be written again (their numbers in
+    ascending order), and new clustered rows for them, ``rows_per_document`` each in that
+    order, with the centres the rows were drawn around."""
+    chosen = rng.choice(documents, max(1, round(REPLACED_SHARE * documents)), replace=False)
+    rows, row_centres = _near(centres, len(chosen) * rows_per_document, rng)
+    return np.sort(chosen), rows, row_centres
 
 
 def measure(
@@ -193,9 +210,9 @@ def measure(
             started = time.perf_counter_ns()
             exact = exact_semantic_ranking(snapshot, vector, mask, depth)
             entry["exact_ms"].append((time.perf_counter_ns() - started) / 1e6)
-            entry.setdefault("outside", []).append(int(np.count_nonzero(~mask[ranking.rows])))
-            entry["r10"].append(_recall(ranking.rows, exact.rows, 10))
-            entry["r100"].append(_recall(ranking.rows, exact.rows, 100))
+            entry.setdefault("outside", []).append(outside_mask(ranking.rows, mask))
+            entry["r10"].append(recall_at(ranking.rows, exact.rows, 10))
+            entry["r100"].append(recall_at(ranking.rows, exact.rows, 100))
             entry["plans"].append(plan.planned)
             entry["fallbacks"].append(plan.fallback)
             entry.setdefault("work", []).append(plan.actual_work)
@@ -272,10 +289,11 @@ def run_vector_index(
     # Replace 10% of the documents: their rows become tombstones, new rows form the tail.
     rng = np.random.default_rng(seed + 2)
     documents = size // ROWS_PER_DOCUMENT
-    replaced = rng.choice(documents, max(1, round(REPLACED_SHARE * documents)), replace=False)
-    fresh_rows, fresh_centres = _near(centres, len(replaced) * ROWS_PER_DOCUMENT, rng)
+    replaced, fresh_rows, fresh_centres = replaced_documents(
+        centres, documents, ROWS_PER_DOCUMENT, rng
+    )
     batch: dict[str, list[ChunkRecord]] = {}
-    for number, document in enumerate(sorted(replaced.tolist())):
+    for number, document in enumerate(replaced.tolist()):
         first = document * ROWS_PER_DOCUMENT
         vectors = fresh_rows[number * ROWS_PER_DOCUMENT : (number + 1) * ROWS_PER_DOCUMENT]
         batch.update(_records(vectors, first, 1))

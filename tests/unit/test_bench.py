@@ -303,3 +303,68 @@ def test_the_vector_index_bench_measures_every_filter_before_and_after_updates()
             assert 0.0 <= row["worst_recall_at_10"] <= row["recall_at_10"] <= 1.0
         # The graph is planned without a filter, wherever this setting lets it.
         assert rows[0]["plans"].get("graph", 0) == 6
+
+
+def test_the_graph_hybrid_bench_holds_each_filter_to_exact_search_before_and_after_updates() -> (
+    None
+):
+    from service.bench.graph_hybrid import run_graph_hybrid
+    from service.bench.report import print_graph_hybrid
+    from service.bench.verdicts import graph_hybrid_targets
+    from service.index.graph import GraphSettings, VectorIndexSettings
+
+    rng = np.random.default_rng(5)
+    centres = rng.standard_normal((40, 16)).astype(np.float32)
+    centres /= np.linalg.norm(centres, axis=1, keepdims=True)
+    settings = VectorIndexSettings(
+        index="graph", graph=GraphSettings(links=8, build_breadth=32, search_breadth=32)
+    )
+    figures = run_graph_hybrid(
+        3000,
+        dimension=16,
+        queries=6,
+        top_k=10,
+        depth=20,
+        seed=1,
+        settings=settings,
+        centres=centres,
+        progress=lambda line: None,
+    )
+    assert figures["graph_rows"] == 3000 and figures["memory"]["graph_views_vectors"]
+    assert figures["replaced_rows"] == figures["tail_rows"] == 300
+    for phase in ("fresh", "replaced"):
+        rows = figures[phase]
+        assert [row["selectivity"] for row in rows] == ["100%", "50%", "10%", "1%", "0.1%"]
+        # Rows written again keep their attributes, so each filter keeps its share.
+        assert [row["candidates"] for row in rows] == [3000, 1500, 300, 30, 3]
+        for row in rows:
+            for mode in ("hybrid", "semantic"):
+                entry = row[mode]
+                assert sum(entry["plans"].values()) == 6
+                assert entry["outside_mask"] == 0
+                assert 0.0 <= entry["worst_recall_at_10"] <= entry["recall_at_10"] <= 1.0
+                if set(entry["plans"]) != {"graph"} and entry["fallbacks"] == 0:
+                    # Exact plans rank as the reference does.
+                    assert entry["recall_at_10"] == entry["recall_at_100"] == 1.0
+        assert rows[0]["semantic"]["plans"] == {"graph": 6}
+
+    targets = {target["target"]: target for target in graph_hybrid_targets(figures)}
+    slowest = max(row["hybrid"]["planned"]["median_ms"] for row in figures["fresh"])
+    median = targets["hybrid median at most 5 ms under every filter"]
+    assert (median["value"], median["met"]) == (slowest, slowest <= 5.0)
+    lowest = min(row["hybrid"]["recall_at_100"] for row in figures["replaced"])
+    recall = targets[
+        "replaced: hybrid recall@100 at least 0.95 under every filter (mean over the queries)"
+    ]
+    assert (recall["value"], recall["met"]) == (lowest, lowest >= 0.95)
+    assert targets["fresh: no row outside the mask"]["met"] is True
+    memory = figures["memory"]
+    assert memory["ratio"] == memory["rss_growth_bytes"] / (
+        memory["raw_vector_bytes"] + memory["postings_bytes"]
+    )
+    figures["targets"] = list(targets.values())
+    printed: list[str] = []
+    print_graph_hybrid(figures, printed.append)
+    # Per phase, a row for each mode and a line of the hybrid's stage times.
+    assert sum(line.lstrip().startswith("position < 3000 ") for line in printed) == 6
+    assert all(any(name in line for line in printed) for name in targets)

@@ -10,9 +10,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 from threadpoolctl import threadpool_limits
 
 from service.bench.references import require_reference_libraries
@@ -359,15 +361,32 @@ def _run_restart(args: argparse.Namespace) -> list[dict[str, Any]]:
     return figures
 
 
-def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
-    from service.bench.vector_index import model_centres, print_vector_index, run_vector_index
+def _on_clustered_vectors(
+    args: argparse.Namespace,
+    run: Callable[[int, VectorIndexSettings, np.ndarray], dict[str, Any]],
+    show: Callable[[dict[str, Any]], None],
+) -> list[dict[str, Any]]:
+    """``run`` for each size over vectors clustered around the model's embeddings, with the
+    graph settings of the arguments; ``show`` prints each size's figures as they come."""
+    from service.bench.vector_index import model_centres
 
     settings = _graph_settings(args, "auto")
     _progress("embedding the corpus paragraphs (cluster centres)")
     centres = model_centres()
     figures = []
     for size in args.chunks:
-        result = run_vector_index(
+        result = run(size, settings, centres)
+        show(result)
+        sys.stdout.flush()
+        figures.append(result)
+    return figures
+
+
+def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
+    from service.bench.vector_index import print_vector_index, run_vector_index
+
+    def run(size: int, settings: VectorIndexSettings, centres: np.ndarray) -> dict[str, Any]:
+        return run_vector_index(
             size,
             dimension=args.dims,
             queries=args.queries,
@@ -377,21 +396,14 @@ def _run_vector_index(args: argparse.Namespace) -> list[dict[str, Any]]:
             centres=centres,
             progress=_progress,
         )
-        print_vector_index(result, print)
-        sys.stdout.flush()
-        figures.append(result)
-    return figures
+
+    return _on_clustered_vectors(args, run, lambda result: print_vector_index(result, print))
 
 
 def _run_graph_hybrid(args: argparse.Namespace) -> list[dict[str, Any]]:
     from service.bench.graph_hybrid import run_graph_hybrid
-    from service.bench.vector_index import model_centres
 
-    settings = _graph_settings(args, "auto")
-    _progress("embedding the corpus paragraphs (cluster centres)")
-    centres = model_centres()
-    figures = []
-    for size in args.chunks:
+    def run(size: int, settings: VectorIndexSettings, centres: np.ndarray) -> dict[str, Any]:
         check_parameters(size, args.dims)
         result = run_graph_hybrid(
             size,
@@ -405,10 +417,9 @@ def _run_graph_hybrid(args: argparse.Namespace) -> list[dict[str, Any]]:
             progress=_progress,
         )
         result["targets"] = graph_hybrid_targets(result)
-        print_graph_hybrid(result, print)
-        sys.stdout.flush()
-        figures.append(result)
-    return figures
+        return result
+
+    return _on_clustered_vectors(args, run, lambda result: print_graph_hybrid(result, print))
 
 
 def run_bench_command(args: argparse.Namespace) -> int:

@@ -36,10 +36,9 @@ from typing import Any
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from service.bench.inprocess import checked_filter, service_query
+from service.bench.inprocess import build_index, checked_filter, service_query
 from service.bench.synthetic import (
     CHUNKS_PER_DOCUMENT,
-    SCHEMA,
     SELECTIVITIES_PER_MILLE,
     QuerySet,
     SyntheticCollection,
@@ -215,13 +214,7 @@ def run_graph_hybrid(
     query_set = QuerySet(make_queries(queries, dimension, seed).token_lists, data.queries)
     progress(f"{size:,} chunks: generated in {time.perf_counter() - started:.1f} s; indexing")
 
-    gc.collect()
-    before = resident_bytes()
-    started = time.perf_counter()
-    index = CollectionIndex.build(
-        collection.records, metric="cosine", dimension=dimension, schema=SCHEMA
-    )
-    build_seconds = time.perf_counter() - started
+    index, build_seconds, before = build_index(collection, dimension)
     graph_seconds = None
     graph_threads = None
     if settings.wants_graph(index.snapshot().live_rows):

@@ -39,6 +39,7 @@ from service.bench.synthetic import (
     SELECTIVITIES_PER_MILLE,
     THREE_CLAUSE_FILTER,
     QuerySet,
+    SyntheticCollection,
     make_collection,
     model_token_counter,
     selected_rows,
@@ -219,6 +220,20 @@ def _memory(snapshot: IndexSnapshot, size: int, dimension: int, rss_delta: int) 
     }
 
 
+def build_index(
+    collection: SyntheticCollection, dimension: int
+) -> tuple[CollectionIndex, float, int]:
+    """The collection's index, the seconds its build took, and the process's resident bytes
+    just before it (after a collection, so the growth is the index's)."""
+    gc.collect()
+    before = resident_bytes()
+    started = time.perf_counter()
+    index = CollectionIndex.build(
+        collection.records, metric="cosine", dimension=dimension, schema=SCHEMA
+    )
+    return index, time.perf_counter() - started, before
+
+
 def run_size(
     size: int,
     *,
@@ -236,13 +251,7 @@ def run_size(
     generated = time.perf_counter() - started
     progress(f"{size:,} chunks: generated in {generated:.1f} s; building the index")
 
-    gc.collect()
-    before = resident_bytes()
-    started = time.perf_counter()
-    index = CollectionIndex.build(
-        collection.records, metric="cosine", dimension=dimension, schema=SCHEMA
-    )
-    build_seconds = time.perf_counter() - started
+    index, build_seconds, before = build_index(collection, dimension)
     gc.collect()
     snapshot = index.snapshot()
     memory = _memory(snapshot, size, dimension, resident_bytes() - before)

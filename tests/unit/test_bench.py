@@ -36,6 +36,7 @@ from service.filters.columns import AttributeColumns
 from service.filters.evaluate import evaluate
 from service.filters.parse import parse_filter
 from service.index.collection_index import CollectionIndex
+from service.index.graph import GraphSettings, VectorIndexSettings
 
 
 def _parse(argv: list[str]) -> argparse.Namespace:
@@ -268,16 +269,19 @@ def test_without_a_reference_library_the_bench_names_the_extra_and_exits_1(
     assert captured.out == ""
 
 
-def test_the_vector_index_bench_measures_every_filter_before_and_after_updates() -> None:
-    from service.bench.vector_index import run_vector_index
-    from service.index.graph import GraphSettings, VectorIndexSettings
-
-    rng = np.random.default_rng(3)
+def _small_graph_setup(seed: int) -> tuple[np.ndarray, VectorIndexSettings]:
+    """40 random unit centres in 16 dimensions, and a small graph built at any size."""
+    rng = np.random.default_rng(seed)
     centres = rng.standard_normal((40, 16)).astype(np.float32)
     centres /= np.linalg.norm(centres, axis=1, keepdims=True)
-    settings = VectorIndexSettings(
-        index="graph", graph=GraphSettings(links=8, build_breadth=32, search_breadth=32)
-    )
+    graph = GraphSettings(links=8, build_breadth=32, search_breadth=32)
+    return centres, VectorIndexSettings(index="graph", graph=graph)
+
+
+def test_the_vector_index_bench_measures_every_filter_before_and_after_updates() -> None:
+    from service.bench.vector_index import run_vector_index
+
+    centres, settings = _small_graph_setup(3)
     figures = run_vector_index(
         3000,
         dimension=16,
@@ -311,14 +315,8 @@ def test_the_graph_hybrid_bench_holds_each_filter_to_exact_search_before_and_aft
     from service.bench.graph_hybrid import run_graph_hybrid
     from service.bench.report import print_graph_hybrid
     from service.bench.verdicts import graph_hybrid_targets
-    from service.index.graph import GraphSettings, VectorIndexSettings
 
-    rng = np.random.default_rng(5)
-    centres = rng.standard_normal((40, 16)).astype(np.float32)
-    centres /= np.linalg.norm(centres, axis=1, keepdims=True)
-    settings = VectorIndexSettings(
-        index="graph", graph=GraphSettings(links=8, build_breadth=32, search_breadth=32)
-    )
+    centres, settings = _small_graph_setup(5)
     figures = run_graph_hybrid(
         3000,
         dimension=16,

@@ -229,14 +229,50 @@ class VectorMatrix:
         if count == 0:
             return rows, np.zeros(0, dtype=np.float32)
         if not self.scans_every_row(count):
-            padded = np.full(round_up(count, ROW_BLOCK), rows[0], dtype=np.int64)
-            padded[:count] = rows
-            products = (np.take(self._buffer, padded, axis=0) @ query)[:count]
+            products = self._gathered_products(query, rows)
         else:
             products = self._full_products(query) if full_scan is None else full_scan.result()
             if count < n:
                 products = products[rows]
         return rows, self._finish(products, rows, query)
+
+    def scans_from(self, first: int, candidates: int) -> bool:
+        """Whether ``score_from(first, ...)`` multiplies every row from ``first`` on for this
+        many candidates among them."""
+        return candidates >= GATHER_BELOW_FRACTION * (self._n_rows - first)
+
+    def score_from(
+        self, query: np.ndarray, first: int, candidate_mask: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``score`` over the rows from ``first`` on (``candidate_mask`` has one entry for each
+        of them): the rows (numbered from 0) and their scores, equal to the bit to ``score``'s.
+
+        Those rows lie together at the end of the matrix (a graph's tail), so where the
+        candidates are not few among them they are multiplied in one product over the span,
+        at a scan's cost a row, instead of being gathered one by one.
+        """
+        n = self._n_rows
+        if not 0 <= first <= n or candidate_mask.shape != (n - first,):
+            raise ValueError(f"the candidate mask must cover rows {first} to {n}")
+        if candidate_mask.dtype != np.bool_:
+            raise ValueError("the candidate mask must be boolean")
+        picked = np.flatnonzero(candidate_mask)
+        rows = picked + first
+        if len(picked) == 0:
+            return rows, np.zeros(0, dtype=np.float32)
+        if not self.scans_from(first, len(picked)):
+            return rows, self._finish(self._gathered_products(query, rows), rows, query)
+        # The span starts on a block boundary and ends on the padding's, so every row is
+        # computed in a whole block, as in every other product here.
+        start = first - first % ROW_BLOCK
+        products = (self._buffer[start : round_up(n, ROW_BLOCK)] @ query)[first - start :]
+        return rows, self._finish(products[picked], rows, query)
+
+    def _gathered_products(self, query: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        count = len(rows)
+        padded = np.full(round_up(count, ROW_BLOCK), rows[0], dtype=np.int64)
+        padded[:count] = rows
+        return (np.take(self._buffer, padded, axis=0) @ query)[:count]
 
     def _full_products(self, query: np.ndarray) -> np.ndarray:
         n = self._n_rows

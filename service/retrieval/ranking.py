@@ -184,13 +184,20 @@ def finish_semantic_ranking(
         elif len(hits.rows) < wanted:
             fallback = "short"
         if fallback is None:
+            vectors = snapshot.vectors
             chosen = np.zeros_like(candidate_mask)
             chosen[hits.rows] = True
-            chosen[covered:] = candidate_mask[covered:]
-            rows, scores = snapshot.vectors.score(scan.query, chosen)
+            found_rows, found_scores = vectors.score(scan.query, chosen)
+            tail_rows, tail_scores = vectors.score_from(
+                scan.query, covered, candidate_mask[covered:]
+            )
+            rows = np.concatenate([found_rows, tail_rows])
+            scores = np.concatenate([found_scores, tail_scores])
             ranking = ranked_rows("semantic", snapshot, rows, scores, depth)
             ranking = replace(ranking, matched=candidates)
-            work = hits.work + plan.tail_candidates
+            tail_scanned = vectors.scans_from(covered, plan.tail_candidates)
+            tail_work = vectors.n_rows - covered if tail_scanned else plan.tail_candidates
+            work = hits.work + tail_work
             trace = PlanTrace("graph", "graph", plan.estimated_work, work, plan.breadth, None)
             return ranking, trace
         rows, scores = snapshot.vectors.score(scan.query, candidate_mask)

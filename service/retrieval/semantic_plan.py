@@ -7,8 +7,9 @@ speeds, so each is weighed by its cost per vector, in units of one gathered row:
 - scan: every row of the matrix in one product, the candidates' scores kept (cheaper per row,
   ``GATHER_BELOW_FRACTION`` of a gathered row, which is where ``VectorMatrix`` switches);
 - graph: about ``breadth * links`` distances (``GraphSettings.expected_work``), each a row read
-  at random (``GRAPH_DISTANCE_COST``), plus a gather of the candidates added since the graph was
-  built.
+  at random (``GRAPH_DISTANCE_COST``), plus the exact plan of the rows added since the graph was
+  built (its tail, which lies together at the end of the matrix: its candidates gathered, or
+  the whole tail multiplied where they are many, ``VectorMatrix.score_from``).
 
 A filter that keeps few rows makes gathering cheap and the graph's needed breadth large, so
 the graph is chosen only where its weighed work is the smallest and its breadth within the
@@ -82,11 +83,13 @@ def semantic_plan(
     if breadth > settings.max_search_breadth:
         return exact
     distances = settings.expected_work(breadth)
-    if not graph.always and distances * GRAPH_DISTANCE_COST + tail >= exact_cost(exact):
+    tail_plan = exact_plan(snapshot.vectors.n_rows - covered, tail)
+    graph_cost = distances * GRAPH_DISTANCE_COST + exact_cost(tail_plan)
+    if not graph.always and graph_cost >= exact_cost(exact):
         return exact
     return SemanticPlan(
         "graph",
-        distances + tail,
+        distances + tail_plan.estimated_work,
         breadth=breadth,
         tail_candidates=tail,
         work_bound=math.ceil(WORK_BOUND_FACTOR * distances),

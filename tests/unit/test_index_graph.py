@@ -212,6 +212,26 @@ def test_rows_written_after_the_graph_are_scored_exactly_as_its_tail() -> None:
     assert ranking.rows[0] == 520
 
 
+def test_a_tail_dense_with_candidates_is_weighed_and_scored_as_one_product() -> None:
+    index = graph_index(1000, 8)
+    extra = records(300, 9, first=1000, generation=1)
+    index.replace_documents({r.document_id: [r] for r in extra})
+    snapshot = index.snapshot()
+    query = snapshot.vectors.rows[1100].copy()
+    for tail_candidates, tail_work in ((20, 20), (100, 300)):
+        mask = np.zeros(snapshot.n_rows, dtype=bool)
+        mask[:1000:2] = True
+        mask[1100 : 1100 + tail_candidates] = True
+        plan = semantic_plan(snapshot, mask, int(mask.sum()), 10)
+        assert plan.method == "graph" and plan.tail_candidates == tail_candidates
+        # Few tail candidates are gathered; many, the whole tail is multiplied at once.
+        assert plan.estimated_work == SMALL_GRAPH.expected_work(plan.breadth) + tail_work
+        ranking, trace = rank(index, query, mask, 10)
+        assert trace.method == "graph" and ranking.rows[0] == 1100
+        graph_work = trace.actual_work - tail_work
+        assert 0 < graph_work <= plan.work_bound
+
+
 def test_compaction_with_a_new_graph_is_published_whole() -> None:
     index = graph_index(700, 8)
     index.replace_documents({f"d{row:05d}": [] for row in range(0, 700, 3)})

@@ -128,3 +128,24 @@ def test_bad_query_vectors_are_refused_by_the_core_with_its_own_error() -> None:
         matrix.prepare_query([1.0, 2.0])
     with pytest.raises(ValueError, match="all zeros"):
         matrix.prepare_query([0.0] * 4)
+
+
+@pytest.mark.parametrize("metric", ["cosine", "dot", "euclidean"])
+@pytest.mark.parametrize("first", [0, 5, 64, 1000, 4090])
+@pytest.mark.parametrize("fraction", [0.01, 0.2, 1.0])
+def test_scoring_the_rows_from_one_on_equals_scoring_them_anywhere(
+    metric: str, first: int, fraction: float
+) -> None:
+    count = 4099
+    rng = np.random.default_rng(first)
+    matrix = VectorMatrix.build(random_rows(count, 48), metric=metric, dimension=48)  # type: ignore[arg-type]
+    query = matrix.prepare_query(rng.standard_normal(48))
+    tail = rng.random(count - first) < fraction
+    tail[0] = True
+    mask = np.zeros(count, dtype=bool)
+    mask[first:] = tail
+    rows, scores = matrix.score_from(query, first, tail)
+    want_rows, want = matrix.score(query, mask)
+    assert rows.tolist() == want_rows.tolist()
+    assert np.array_equal(scores, want)
+    assert matrix.scans_from(first, int(tail.sum())) is bool(tail.sum() >= 0.15 * (count - first))

@@ -386,12 +386,18 @@ def _worst(
 
 
 def _timing_target(
-    rows: Sequence[dict[str, Any]], mode: str, key: str, limit: float, stated_for: str
+    rows: Sequence[dict[str, Any]],
+    mode: str,
+    key: str,
+    limit: float,
+    stated_for: str,
+    timing: str = "planned",
 ) -> dict[str, Any]:
-    value, row = _worst(rows, mode, f"planned/{key}", highest=True)
+    value, row = _worst(rows, mode, f"{timing}/{key}", highest=True)
     what = "median" if key == "median_ms" else "p99"
+    label = "hybrid with plain fusion" if timing == "plain_fusion" else mode
     return _target(
-        f"{mode} {what} at most {limit:g} ms under every filter",
+        f"{label} {what} at most {limit:g} ms under every filter",
         stated_for,
         value <= limit,
         f"{value:.3f} ms at its slowest, {row['filter']} ({row['selectivity']})",
@@ -401,7 +407,8 @@ def _timing_target(
 
 
 def graph_hybrid_targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
-    """Times on the fresh index, recall and the mask on both phases, and memory."""
+    """Times on the fresh index (the hybrid's with the default ranking steps, and with plain
+    fusion, which shows what the steps add), recall and the mask on both phases, and memory."""
     size = int(figures["chunks"])
     both = f"{TARGET_SIZE:,} chunks and {LARGE_SIZE:,} chunks"
     fresh = figures["fresh"]
@@ -410,6 +417,9 @@ def graph_hybrid_targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
     found = [
         _timing_target(fresh, "hybrid", "median_ms", median_limit, f"{both} ({stated})"),
         _timing_target(fresh, "hybrid", "p99_ms", GRAPH_HYBRID_P99_MS, both),
+        _timing_target(
+            fresh, "hybrid", "median_ms", median_limit, f"{both} ({stated})", "plain_fusion"
+        ),
         _timing_target(fresh, "semantic", "median_ms", GRAPH_SEMANTIC_MEDIAN_MS, both),
     ]
     for phase in ("fresh", "replaced"):

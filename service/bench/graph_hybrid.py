@@ -33,6 +33,7 @@ from dataclasses import asdict, replace
 from functools import partial
 from typing import Any
 
+import faiss
 import numpy as np
 from threadpoolctl import threadpool_limits
 
@@ -220,8 +221,6 @@ def run_graph_hybrid(
     if settings.wants_graph(index.snapshot().live_rows):
         progress(f"{size:,} chunks: index built in {build_seconds:.1f} s; building the graph")
         with threadpool_limits(limits=os.cpu_count(), user_api="openmp"):
-            import faiss
-
             graph_threads = faiss.omp_get_max_threads()
             started = time.perf_counter()
             if not index.build_graph(settings, compact=False):

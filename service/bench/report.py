@@ -276,8 +276,9 @@ def print_ingest_throughput(run: dict[str, Any], write: Write) -> None:
 def print_graph_hybrid(figures: dict[str, Any], write: Write) -> None:
     memory = figures["memory"]
     write("")
+    graph_rows = figures["graph_rows"]
     graph = (
-        f"graph over {figures['graph_rows']:,} rows built in "
+        f"graph over {graph_rows:,} rows built in "
         f"{figures['graph_build_seconds']:.1f} s on {figures['graph_build_threads']} threads"
         if figures["graph_build_seconds"] is not None
         else "no graph"
@@ -308,8 +309,8 @@ def print_graph_hybrid(figures: dict[str, Any], write: Write) -> None:
         ("fresh", "fresh"),
         (
             "replaced",
-            f"replaced ({figures['replaced_rows']:,} rows written again, no rebuild; "
-            f"{figures['tail_rows']:,} rows in the graph's tail)",
+            f"replaced ({figures['replaced_rows']:,} rows written again, no rebuild"
+            + (f"; {figures['tail_rows']:,} rows in the graph's tail)" if graph_rows else ")"),
         ),
     )
     for phase, title in phases:

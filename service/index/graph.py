@@ -38,6 +38,9 @@ DEFAULT_MAX_SEARCH_BREADTH = 4096
 LINKS_RANGE = (4, 128)
 BREADTH_RANGE = (16, 65536)
 
+# The search breadth is at least this many times the results wanted.
+BREADTH_PER_RESULT = 2
+
 IndexMode = Literal["auto", "exact", "graph"]
 INDEX_MODES: tuple[IndexMode, ...] = ("auto", "exact", "graph")
 # ``auto`` builds a graph from this many live rows on. The planner's weights put the graph
@@ -72,8 +75,11 @@ class GraphSettings:
             raise ValueError("search_breadth must not exceed max_search_breadth")
 
     def breadth_for(self, depth: int, candidates: int, rows: int) -> int:
-        """Search breadth for ``depth`` results when ``candidates`` of ``rows`` are eligible."""
-        base = max(self.search_breadth, depth)
+        """Search breadth for ``depth`` results when ``candidates`` of ``rows`` are eligible:
+        at least ``BREADTH_PER_RESULT`` times the depth, since a search kept to about as many
+        candidates as it returns loses its last ones (at 1,000,000 rows, breadth 128 found
+        0.95 of the exact first 100)."""
+        base = max(self.search_breadth, BREADTH_PER_RESULT * depth)
         if candidates <= 0 or rows <= 0:
             return base
         return max(base, math.ceil(base * rows / candidates))

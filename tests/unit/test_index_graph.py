@@ -155,12 +155,12 @@ def test_the_plan_gathers_few_candidates_scans_many_and_searches_the_graph_in_be
     assert semantic_plan(snapshot, one_percent, 10, 10).method == "gather"
 
 
-def test_breadth_grows_with_one_over_selectivity_from_at_least_the_depth() -> None:
+def test_breadth_grows_with_one_over_selectivity_from_at_least_twice_the_depth() -> None:
     graph = GraphSettings(search_breadth=64, max_search_breadth=4096)
     assert graph.breadth_for(10, 1000, 1000) == 64
-    assert graph.breadth_for(100, 1000, 1000) == 100
+    assert graph.breadth_for(100, 1000, 1000) == 200
     assert graph.breadth_for(10, 100, 1000) == 640
-    assert graph.breadth_for(100, 10, 1000) == 10_000
+    assert graph.breadth_for(100, 10, 1000) == 20_000
 
 
 def test_a_short_graph_result_falls_back_to_the_exact_ranking(

@@ -2,7 +2,10 @@
 
 Replicas may start together against one store, so migrations run one process at a time: on
 SQLite the transaction takes the write lock as it begins, on PostgreSQL it takes an advisory
-lock first; the processes that follow then find nothing left to do.
+lock first; the processes that follow then find nothing left to do. Every revision runs in that
+one transaction (``transactional_ddl``, which SQLite's DDL allows): with a commit after each, as
+alembic does by default on SQLite, another process took the lock between two revisions and ran
+the next one twice.
 """
 
 from alembic import context
@@ -19,6 +22,7 @@ with engine.connect() as connection:
         connection=connection,
         target_metadata=Base.metadata,
         render_as_batch=connection.dialect.name == "sqlite",
+        transactional_ddl=True,
     )
     with context.begin_transaction():
         if connection.dialect.name == "postgresql":

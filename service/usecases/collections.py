@@ -5,7 +5,7 @@ from __future__ import annotations
 import datetime as dt
 import re
 import uuid
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, fields
 from typing import Any
 
 from sqlalchemy.orm import Session
@@ -50,6 +50,12 @@ class CollectionSpec:
     retrieval: dict[str, Any] | None = None
     vectors: dict[str, Any] | None = None
     extra: dict[str, Any] = field(default_factory=dict)
+
+    @classmethod
+    def from_file(cls, raw: dict[str, Any]) -> CollectionSpec:
+        """The spec a schema file's JSON object gives; keys that name no field are ignored."""
+        given: dict[str, Any] = {f.name: raw.get(f.name) for f in fields(cls) if f.name != "extra"}
+        return cls(**given)
 
 
 def check_collection_name(name: str) -> None:

@@ -35,16 +35,7 @@ def ingest_path(
     """
     if schema_file is not None:
         raw = json.loads(schema_file.read_text(encoding="utf-8"))
-        spec = CollectionSpec(
-            description=raw.get("description"),
-            attributes=raw.get("attributes"),
-            remove_attributes=raw.get("remove_attributes"),
-            chunking=raw.get("chunking"),
-            cite_attributes=raw.get("cite_attributes"),
-            answer_caution=raw.get("answer_caution"),
-            retrieval=raw.get("retrieval"),
-            vectors=raw.get("vectors"),
-        )
+        spec = CollectionSpec.from_file(raw)
         put_collection(runtime, LOCAL_ADMIN, collection, spec)
         run_pending_rechunk(runtime, collection, view)
 

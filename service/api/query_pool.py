@@ -1,10 +1,10 @@
 """The worker threads the retrieval routes run their use cases on.
 
 A query is CPU work that must not hold up the event loop, so it runs on a worker thread. The
-framework's own hand-off for synchronous routes costs about 0.7 ms more per request than
-``run_in_executor`` on a plain thread pool (measured with one client on the 2-core development
-machine, 20,000 chunks: 7.2 vs 6.5 ms per search), which is a fifth of what the service adds
-to a query over HTTP, so the hot routes are asynchronous and hand their work to this pool.
+framework's own hand-off for synchronous routes costs measurably more per request than
+``run_in_executor`` on a plain thread pool (one client, timed against each other), a sizeable
+share of what the service adds to a query over HTTP, so the hot routes are asynchronous and hand
+their work to this pool.
 """
 
 from __future__ import annotations

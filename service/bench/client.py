@@ -1,10 +1,10 @@
 """The HTTP bench's client: one keep-alive HTTP/1.1 connection sending requests built in advance.
 
 The one-client latency is the server's time plus the client's own. A general client library
-spends a third to half a millisecond of CPU per request on the 2-core development machine
-(``http.client``: 0.33 ms user and 0.08 ms system time per search), which the figures would
-charge to the server; this client builds each request's bytes once, before the clock starts,
-and reads a response with a few buffer searches, as dedicated load generators do.
+spends a noticeable share of a millisecond of CPU per request parsing and building messages,
+which the figures would charge to the server; this client builds each request's bytes once,
+before the clock starts, and reads a response with a few buffer searches, as dedicated load
+generators do.
 """
 
 from __future__ import annotations

@@ -7,9 +7,9 @@ precomputed squared row norms as sqrt(|x|^2 - 2 x.q + |q|^2), so larger is close
 Two ways to score a candidate set: multiply the whole matrix and keep the candidates' scores,
 or gather the candidate rows and multiply only those. Gathering copies rows scattered over
 memory, so it only wins when few rows are wanted; ``GATHER_BELOW_FRACTION`` is the cut-over,
-measured on the 2-core development machine at 100,000 x 384 (medians, scan vs gather: 10% of
-the rows 7.8 vs 1.8 ms, 15% 7.9 vs 6.3 ms, 20% 8.0 vs 7.3 ms, 25% 8.0 vs 15.7 ms; gathering
-slows sharply once the gathered rows outgrow the cache).
+timed against a full scan at 100,000 x 384: gathering wins clearly at a tenth of the rows,
+barely at a fifth, and loses at a quarter, slowing sharply once the gathered rows outgrow the
+cache.
 
 Both ways must give a row the same score, bit for bit, so that filtering never changes a score
 or breaks a tie differently. The BLAS matrix-vector kernel computes rows in blocks and treats a

@@ -1,11 +1,10 @@
 """A one-row SELECT compiled once per engine and run on the database driver's own cursor.
 
 Every query checks its API key by one indexed row. Through a Core connection and transaction
-that lookup cost 46 µs warm on the 2-core development machine, and three to six times as much
-inside the server, where each vector scan leaves the caches cold; on the driver's cursor of a
-pooled connection it costs 13 µs warm. The statement is compiled by the engine's own dialect
-and each column's value goes through its type's own result processor, so the values are those
-a Core ``execute`` returns, on SQLite and PostgreSQL alike.
+that lookup costs several times what it costs on the driver's cursor of a pooled connection, and
+more again inside the server, where each vector scan leaves the caches cold. The statement is
+compiled by the engine's own dialect and each column's value goes through its type's own result
+processor, so the values are those a Core ``execute`` returns, on SQLite and PostgreSQL alike.
 """
 
 from __future__ import annotations

@@ -1,8 +1,8 @@
 """Writing traces in batches a moment after their responses, off the request's path.
 
-A trace written inside its request cost that request a transaction of its own, about 0.9 ms on
-the 2-core development machine (some fifteen page writes to the write-ahead log per commit),
-close to a third of what the service may add to a query over HTTP. ``TraceWriter`` holds each
+A trace written inside its request cost that request a transaction of its own (a commit with
+its page writes to the write-ahead log), a large share of what the service may add to a query
+over HTTP. ``TraceWriter`` holds each
 trace until its batch is written, at most ``BATCH_SECONDS`` later, and a read in the same
 process is answered from what it holds (``service.usecases.traces``), so a trace is readable as
 soon as its response has been sent. Another replica on a shared store sees it once the batch is

@@ -33,6 +33,14 @@ BATCH_SECONDS = 0.05
 PRUNE_EVERY = 200
 # Traces held while the store refuses writes; beyond this the oldest are dropped, with a warning.
 MAX_HELD = 10_000
+# A refused batch is tried again after a wait that doubles with each refusal, up to this.
+MAX_RETRY_SECONDS = 5.0
+# After a refused batch each trace is tried alone; this many refusals before the first write
+# says the store itself refuses, and the rest are not tried this round.
+REFUSALS_BEFORE_ANY_WRITE = 3
+# A trace the store refuses alone while it takes others, this many rounds, is dropped: it would
+# otherwise be retried, and hold the traces after it back, for as long as the process runs.
+REFUSALS_TO_DROP = 2
 
 TraceRow = dict[str, Any]
 """``id``, ``key_id``, ``collection``, ``route``, ``created_at``, ``body`` and the summary
@@ -45,6 +53,8 @@ class TraceWriter:
 
     ``write`` stores a batch (raising leaves the batch held for the next try); ``prune`` drops
     traces past their retention and is called after every ``prune_every`` written traces.
+    A refused batch is tried trace by trace, so that one trace the store cannot take does not
+    keep every later one from being written.
     """
 
     def __init__(
@@ -67,6 +77,8 @@ class TraceWriter:
         self._stopping = False
         self._written = 0
         self._dropped = 0
+        self._refused_rounds = 0
+        self._refused_alone: dict[str, int] = {}
 
     def submit(self, row: TraceRow) -> None:
         with self._condition:
@@ -125,12 +137,17 @@ class TraceWriter:
                 while not self._held and not self._stopping:
                     self._condition.wait()
                 # The batch gathers what arrives until its deadline; only stop() cuts it short.
-                deadline = time.monotonic() + self._batch_seconds
+                deadline = time.monotonic() + self._next_wait()
                 while not self._stopping and (left := deadline - time.monotonic()) > 0:
                     self._condition.wait(left)
                 if self._stopping:
                     return
             self._write_held()
+
+    def _next_wait(self) -> float:
+        if not self._refused_rounds:
+            return self._batch_seconds
+        return min(self._batch_seconds * 2**self._refused_rounds, MAX_RETRY_SECONDS)
 
     def _write_held(self) -> None:
         with self._condition:
@@ -140,21 +157,63 @@ class TraceWriter:
         try:
             self._write(batch)
         except Exception:
-            # Kept: the writer's loop tries again after its next batch wait.
-            log.exception(
-                "%d traces could not be written; they are kept for the next try", len(batch)
-            )
-            return
+            written = self._write_each(batch) if len(batch) > 1 else []
+            if not written:
+                self._refused_rounds += 1
+                log.exception(
+                    "%d traces could not be written; they are kept for the next try", len(batch)
+                )
+                return
+        else:
+            written = batch
+        self._refused_rounds = 0
         with self._condition:
-            for row in batch:
+            for row in written:
                 self._held.pop(row["id"], None)
         before = self._written
-        self._written += len(batch)
+        self._written += len(written)
         if before // self._prune_every != self._written // self._prune_every:
             try:
                 self._prune()
             except Exception:
                 log.exception("old traces could not be pruned; the next prune tries again")
+
+    def _write_each(self, batch: list[TraceRow]) -> list[TraceRow]:
+        """The traces of a refused batch, each written alone; those written are returned.
+
+        When the store takes none, it is the store that fails: every trace is kept. When it takes
+        some, the ones it refuses are kept for one more round and then dropped."""
+        written: list[TraceRow] = []
+        refused: list[TraceRow] = []
+        for row in batch:
+            if not written and len(refused) >= REFUSALS_BEFORE_ANY_WRITE:
+                break
+            try:
+                self._write([row])
+            except Exception:
+                refused.append(row)
+            else:
+                written.append(row)
+        if not written:
+            return []
+        for row in refused:
+            rounds = self._refused_alone.get(row["id"], 0) + 1
+            self._refused_alone[row["id"]] = rounds
+            if rounds < REFUSALS_TO_DROP:
+                log.warning(
+                    "trace %s was refused while others were written; it is tried once more",
+                    row["id"],
+                )
+                continue
+            del self._refused_alone[row["id"]]
+            with self._condition:
+                if self._held.pop(row["id"], None) is not None:
+                    self._dropped += 1
+            log.error("trace %s dropped: the store takes other traces but refuses it", row["id"])
+        with self._condition:
+            still_held = set(self._held)
+        self._refused_alone = {k: n for k, n in self._refused_alone.items() if k in still_held}
+        return written
 
 
 def write_traces(engine: Engine, guard: StoreGuard, rows: list[TraceRow]) -> None:

@@ -142,3 +142,70 @@ def test_past_the_held_limit_the_oldest_trace_is_dropped_with_a_warning(
     writer.stop()
     assert store.batches == [["b", "c"]]
     assert (writer.waiting(), writer.dropped()) == (0, 1)
+
+
+class PickyStore:
+    """Takes every trace except those named in ``refused``, and refuses every write at all while
+    ``down`` is set; records each write it was asked for."""
+
+    def __init__(self, refused: frozenset[str] = frozenset(), *, down: bool = False) -> None:
+        self.refused = set(refused)
+        self.down = threading.Event()
+        if down:
+            self.down.set()
+        self.attempts: list[list[str]] = []
+        self.stored: list[str] = []
+
+    def write(self, rows: list[dict[str, Any]]) -> None:
+        ids = [row["id"] for row in rows]
+        self.attempts.append(ids)
+        if self.down.is_set() or self.refused.intersection(ids):
+            raise OSError("refused")
+        self.stored += ids
+
+    def prune(self) -> None:
+        pass
+
+
+def test_a_trace_the_store_refuses_is_dropped_and_holds_no_other_back(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    store = PickyStore(refused=frozenset({"bad"}))
+    writer = TraceWriter(store.write, store.prune, batch_seconds=60.0)
+    writer.stop()  # each submit now writes at once, so the rounds are the test's own
+    with caplog.at_level(logging.WARNING, logger="excerpta.traces"):
+        for name in ("a", "bad", "b"):
+            writer.submit(trace(name))
+        # The first round wrote "a" alone; "bad" and "b" went together, were refused, then
+        # each alone: "b" was written and "bad" is kept for one more round.
+        assert store.stored == ["a", "b"]
+        assert writer.held("bad") is not None
+        assert "trace bad was refused while others were written" in caplog.text
+        writer.submit(trace("c"))
+    assert store.stored == ["a", "b", "c"]
+    assert writer.held("bad") is None
+    assert (writer.waiting(), writer.dropped()) == (0, 1)
+    assert "trace bad dropped: the store takes other traces but refuses it" in caplog.text
+
+
+def test_while_the_store_refuses_every_write_all_traces_are_kept_and_retries_slow_down(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    store = PickyStore(down=True)
+    writer = TraceWriter(store.write, store.prune, batch_seconds=0.01, max_held=100)
+    with caplog.at_level(logging.ERROR, logger="excerpta.traces"):
+        for number in range(10):
+            writer.submit(trace(f"t{number}"))
+        time.sleep(0.6)
+        store.down.clear()
+        wait_for(lambda: writer.waiting() == 0)
+    writer.stop()
+    assert sorted(store.stored) == sorted(f"t{n}" for n in range(10))
+    assert writer.dropped() == 0
+    # A refused batch is tried alone for at most three traces before the round gives up.
+    batches = [ids for ids in store.attempts if len(ids) > 1]
+    assert len(store.attempts) <= 4 * len(batches) + 1  # + 1: a first round of one trace
+    # Waits double from 0.01 s (0.02, 0.04, ... 0.32 s): a handful of rounds in 0.6 s, where a
+    # fixed 0.01 s wait would have made dozens.
+    assert len(batches) <= 8
+    assert "traces could not be written; they are kept for the next try" in caplog.text

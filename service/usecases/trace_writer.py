@@ -2,11 +2,10 @@
 
 A trace written inside its request cost that request a transaction of its own (a commit with
 its page writes to the write-ahead log), a large share of what the service may add to a query
-over HTTP. ``TraceWriter`` holds each
-trace until its batch is written, at most ``BATCH_SECONDS`` later, and a read in the same
-process is answered from what it holds (``service.usecases.traces``), so a trace is readable as
-soon as its response has been sent. Another replica on a shared store sees it once the batch is
-written.
+over HTTP. ``TraceWriter`` holds each trace until its batch is written, at most
+``BATCH_SECONDS`` later, and a read in the same process is answered from what it holds
+(``service.usecases.traces``), so a trace is readable as soon as its response has been sent.
+Another replica on a shared store sees it once the batch is written.
 
 The writer knows nothing of the store: it is handed the two store operations it runs
 (``write_traces`` and ``prune_traces`` below, bound by the runtime), so it can be tested alone.
@@ -38,9 +37,6 @@ MAX_RETRY_SECONDS = 5.0
 # After a refused batch each trace is tried alone; this many refusals before the first write
 # says the store itself refuses, and the rest are not tried this round.
 REFUSALS_BEFORE_ANY_WRITE = 3
-# A trace the store refuses alone while it takes others, this many rounds, is dropped: it would
-# otherwise be retried, and hold the traces after it back, for as long as the process runs.
-REFUSALS_TO_DROP = 2
 
 TraceRow = dict[str, Any]
 """``id``, ``key_id``, ``collection``, ``route``, ``created_at``, ``body`` and the summary
@@ -78,7 +74,9 @@ class TraceWriter:
         self._written = 0
         self._dropped = 0
         self._refused_rounds = 0
-        self._refused_alone: dict[str, int] = {}
+        # Traces refused alone once while others were written: a second such refusal drops
+        # them, or they would be retried, holding later ones back, as long as the process runs.
+        self._refused_once: set[str] = set()
 
     def submit(self, row: TraceRow) -> None:
         with self._condition:
@@ -197,22 +195,20 @@ class TraceWriter:
         if not written:
             return []
         for row in refused:
-            rounds = self._refused_alone.get(row["id"], 0) + 1
-            self._refused_alone[row["id"]] = rounds
-            if rounds < REFUSALS_TO_DROP:
+            trace_id = row["id"]
+            if trace_id not in self._refused_once:
+                self._refused_once.add(trace_id)
                 log.warning(
                     "trace %s was refused while others were written; it is tried once more",
-                    row["id"],
+                    trace_id,
                 )
                 continue
-            del self._refused_alone[row["id"]]
             with self._condition:
-                if self._held.pop(row["id"], None) is not None:
+                if self._held.pop(trace_id, None) is not None:
                     self._dropped += 1
-            log.error("trace %s dropped: the store takes other traces but refuses it", row["id"])
+            log.error("trace %s dropped: the store takes other traces but refuses it", trace_id)
         with self._condition:
-            still_held = set(self._held)
-        self._refused_alone = {k: n for k, n in self._refused_alone.items() if k in still_held}
+            self._refused_once.intersection_update(self._held)
         return written
 
 

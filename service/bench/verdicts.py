@@ -238,6 +238,12 @@ def targets(figures: dict[str, Any]) -> list[dict[str, Any]]:
     return found
 
 
+# What the served route may add to the in-process hybrid query with one client: the ordinary
+# framework path (dependencies, validation, the hop to the query pool) and the request's own
+# bookkeeping (key check, trace, metrics).
+HTTP_ADDED_MS = 4.0
+
+
 def http_targets(http: dict[str, Any]) -> list[dict[str, Any]]:
     levels = {level["clients"]: level for level in http["levels"]}
     in_process = float(http["in_process_hybrid"]["median_ms"])
@@ -246,12 +252,13 @@ def http_targets(http: dict[str, Any]) -> list[dict[str, Any]]:
         p50 = levels[1]["p50_ms"]
         found.append(
             _target(
-                "HTTP p50 with 1 client at most in-process hybrid + 3 ms",
+                f"HTTP p50 with 1 client at most in-process hybrid + {HTTP_ADDED_MS:g} ms",
                 f"{http['chunks']:,} chunks (this run)",
-                p50 <= in_process + 3.0,
-                f"{p50:.2f} ms vs limit {in_process + 3.0:.2f} ms (in process {in_process:.2f} ms)",
+                p50 <= in_process + HTTP_ADDED_MS,
+                f"{p50:.2f} ms vs limit {in_process + HTTP_ADDED_MS:.2f} ms"
+                f" (in process {in_process:.2f} ms)",
                 value=p50,
-                limit=in_process + 3.0,
+                limit=in_process + HTTP_ADDED_MS,
             )
         )
     if 4 in levels:

@@ -63,7 +63,8 @@ def test_http_bench_serves_every_level_without_errors_and_stops_the_server(
         assert level["requests_per_second"] == pytest.approx(level["requests"] / level["seconds"])
         assert level["p50_ms"] <= level["p95_ms"] <= level["p99_ms"]
     one_client = next(t for t in http["targets"] if "1 client" in t["target"])
-    assert one_client["limit"] == pytest.approx(http["in_process_hybrid"]["median_ms"] + 3.0)
+    # The stated limit: the service adds at most 4 ms to the in-process query (a target).
+    assert one_client["limit"] == pytest.approx(http["in_process_hybrid"]["median_ms"] + 4.0)
     assert one_client["met"] is (http["levels"][0]["p50_ms"] <= one_client["limit"])
     assert "over HTTP: 300 chunks" in printed.getvalue()
     with pytest.raises(httpx.ConnectError):

@@ -78,6 +78,11 @@ class RetrievalSettingsIn(Strict):
     lexical_feedback_query_weight: float | None = Field(
         None, description="The original query's share of the expanded query (RM3), 0 to 1"
     )
+    lexical_feedback_max_share: float | None = Field(
+        None,
+        description="Expansion terms in more than this share of the live chunks are skipped "
+        "(RM3), 0 to 1; 1: none",
+    )
     semantic_feedback_chunks: int | None = Field(
         None, description="Hybrid: top semantic chunks added to the query vector (Rocchio); 0: off"
     )

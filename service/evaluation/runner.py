@@ -36,6 +36,7 @@ SETTING_MODES: Mapping[str, tuple[str, ...]] = {
     "lexical_feedback_chunks": ("hybrid",),
     "lexical_feedback_terms": ("hybrid",),
     "lexical_feedback_query_weight": ("hybrid",),
+    "lexical_feedback_max_share": ("hybrid",),
     "semantic_feedback_chunks": ("hybrid",),
     "semantic_feedback_weight": ("hybrid",),
     "feedback_source": ("hybrid",),
@@ -50,7 +51,13 @@ CHOICE_SETTINGS: Mapping[str, tuple[str, ...]] = {
     "fusion": FUSION_METHODS,
     "feedback_source": FEEDBACK_SOURCES,
 }
-UNIT_SETTINGS = ("b", "lexical_feedback_query_weight", "semantic_weight", "second_chunk_weight")
+UNIT_SETTINGS = (
+    "b",
+    "lexical_feedback_query_weight",
+    "lexical_feedback_max_share",
+    "semantic_weight",
+    "second_chunk_weight",
+)
 """Settings whose values lie between 0 and 1."""
 
 SettingValue = int | float | str

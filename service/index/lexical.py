@@ -534,6 +534,10 @@ class LexicalIndex:
         np.add.at(weights, inverse, share * self._row_counts[positions])
         return term_ids.astype(np.int64), weights
 
+    def in_at_most(self, term_ids: np.ndarray, share: float) -> np.ndarray:
+        """Whether each term is in at most ``share`` of the live rows."""
+        return self._df[term_ids] <= share * self._live_rows
+
     def term_names(self, term_ids: Sequence[int]) -> list[str]:
         """The terms of ``term_ids`` as text (for traces)."""
         if self._term_names is None or len(self._term_names) < self._vocabulary_size:

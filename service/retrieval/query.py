@@ -323,6 +323,7 @@ def _lexical_feedback(
     notes: dict[str, object] = {
         "chunks": expansion.feedback_rows,
         "query_weight": feedback.query_weight,
+        "max_share": feedback.max_share,
         "source": source,
         "terms": [
             {"term": name, "weight": round(weight, 6)}

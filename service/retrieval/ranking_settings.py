@@ -16,15 +16,24 @@ FEEDBACK_SOURCES: tuple[FeedbackSource, ...] = ("own", "fused")
 @dataclass(frozen=True, kw_only=True)
 class LexicalFeedback:
     """RM3: ``chunks`` feedback chunks, ``terms`` expansion terms, and the original query's
-    share ``query_weight`` of the interpolated query."""
+    share ``query_weight`` of the interpolated query. An expansion term in more than
+    ``max_share`` of the live chunks is not taken (1 takes every term)."""
 
     chunks: int = 10
     terms: int = 10
     query_weight: float = 0.5
+    max_share: float = 1.0
 
     def __post_init__(self) -> None:
-        if self.chunks < 1 or self.terms < 1 or not 0.0 <= self.query_weight <= 1.0:
-            raise ValueError("lexical feedback needs chunks, terms >= 1 and 0 <= weight <= 1")
+        if (
+            self.chunks < 1
+            or self.terms < 1
+            or not 0.0 <= self.query_weight <= 1.0
+            or not 0.0 <= self.max_share <= 1.0
+        ):
+            raise ValueError(
+                "lexical feedback needs chunks, terms >= 1 and its weight and share from 0 to 1"
+            )
 
 
 @dataclass(frozen=True, kw_only=True)

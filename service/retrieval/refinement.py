@@ -7,6 +7,9 @@ Each step is a collection setting a user can switch off, and each is a stage of 
   first lexical ranking's top chunks give a relevance model ``P(t | R) = sum_d P(t | d) P(d)``
   with ``P(d)`` the chunk's share of the top BM25 scores and ``P(t | d) = tf / len``; its best
   terms, interpolated with the original query's, are ranked again by BM25 with those weights.
+  An expansion term found in more than ``max_share`` of the live chunks may be skipped: such a
+  term says little about relevance and has the longest posting list (leaving out the most
+  common candidate terms is common practice in choosing expansion terms).
 - semantic feedback: Rocchio ("Relevance feedback in information retrieval", 1971) on the query
   vector: ``q' = q + weight * mean(top chunk vectors)``, ranked again.
 - feedback source: both feedback steps take their chunks either from their own first ranking,
@@ -63,6 +66,11 @@ def rm3_expansion(
     if len(query_ids) == 0 or len(rows) == 0 or scores.sum() <= 0:
         return Expansion(query_ids, counts, 0)
     model_ids, model = lexical.relevance_model(rows, scores / scores.sum())
+    if feedback.max_share < 1.0:
+        kept = lexical.in_at_most(model_ids, feedback.max_share)
+        model_ids, model = model_ids[kept], model[kept]
+    if len(model_ids) == 0:
+        return Expansion(query_ids, counts, len(rows))
     best = np.lexsort((model_ids, -model))[: feedback.terms]
     model_ids, model = model_ids[best], model[best] / model[best].sum()
     ids = np.concatenate([query_ids, model_ids])

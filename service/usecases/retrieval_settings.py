@@ -13,6 +13,9 @@ and leave the rest at plain fusion: on the development collections (Cranfield an
 docs/ranking-quality.md) those two raised nDCG@10 on both, while the other steps helped one
 collection only or changed what the lexical mode's scores mean (field weights). Taking both
 feedback steps' chunks from the fused first ranking (``feedback_source`` ``fused``) lowered both.
+RM3 takes no expansion term found in more than a tenth of the live chunks
+(``lexical_feedback_max_share``; 1 takes every term): such terms carry little evidence and cost
+the longest posting lists, and leaving them out raised nDCG@10 a little on both collections.
 """
 
 from __future__ import annotations
@@ -45,6 +48,7 @@ DEFAULT_RETRIEVAL: dict[str, Any] = {
     "lexical_feedback_chunks": 10,
     "lexical_feedback_terms": 10,
     "lexical_feedback_query_weight": 0.5,
+    "lexical_feedback_max_share": 0.1,
     "semantic_feedback_chunks": 5,
     "semantic_feedback_weight": 0.5,
     "feedback_source": "own",
@@ -59,6 +63,7 @@ _NUMBERS: dict[str, tuple[float, float]] = {
     "k1": (0.0, 10.0),
     "b": (0.0, 1.0),
     "lexical_feedback_query_weight": (0.0, 1.0),
+    "lexical_feedback_max_share": (0.0, 1.0),
     "semantic_feedback_weight": (0.0, 4.0),
     "semantic_weight": (0.0, 1.0),
     "second_chunk_weight": (0.0, 1.0),
@@ -153,6 +158,7 @@ def ranking_settings(retrieval: Mapping[str, Any]) -> RankingSettings:
             chunks=int(settings["lexical_feedback_chunks"]),
             terms=int(settings["lexical_feedback_terms"]),
             query_weight=float(settings["lexical_feedback_query_weight"]),
+            max_share=float(settings["lexical_feedback_max_share"]),
         )
     semantic = None
     if settings["semantic_feedback_chunks"] > 0:

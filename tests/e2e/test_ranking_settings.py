@@ -29,6 +29,8 @@ EVERY_STEP = {
     "lexical_feedback_chunks": 2,
     "lexical_feedback_terms": 5,
     "lexical_feedback_query_weight": 0.6,
+    # Four chunks: every term is in a quarter of them, so only no cap lets RM3 expand.
+    "lexical_feedback_max_share": 1.0,
     "semantic_feedback_chunks": 2,
     "semantic_feedback_weight": 0.4,
     "feedback_source": "fused",
@@ -85,6 +87,7 @@ def test_every_step_is_a_setting_shown_and_a_stage_of_the_trace(stocked: Api) ->
     assert stages["feedback_fusion"]["notes"]["method"] == "z_score"
     feedback = stages["lexical_feedback"]["notes"]
     assert feedback["chunks"] == 2 and feedback["query_weight"] == 0.6
+    assert feedback["max_share"] == 1.0
     assert feedback["source"] == "fused"
     assert {"brake", "pad"} <= {term["term"] for term in feedback["terms"]}
     assert stages["semantic_feedback"]["notes"] == {"chunks": 2, "weight": 0.4, "source": "fused"}
@@ -151,6 +154,7 @@ def test_a_title_weight_reindexes_the_title_terms(stocked: Api) -> None:
         ("lexical_feedback_chunks", 2.5),
         ("lexical_feedback_terms", 0),
         ("lexical_feedback_query_weight", 2),
+        ("lexical_feedback_max_share", 1.5),
         ("semantic_feedback_weight", -0.1),
         ("second_chunk_weight", 1.1),
         ("title_weight", 0),

@@ -26,8 +26,8 @@ pytestmark = [pytest.mark.model, pytest.mark.med]
 MODES = ["lexical", "semantic", "hybrid"]
 REFERENCE = {"lexical": 0.699, "semantic": 0.788, "hybrid": 0.796}
 WITHIN = 0.03
-HYBRID_AT_LEAST = 0.80
-"""The default hybrid's floor on MED: it measured 0.8043 (plain fusion 0.7936)."""
+HYBRID_AT_LEAST = 0.81
+"""The goal for the default hybrid on MED (plain fusion measures 0.7936)."""
 
 
 @pytest.fixture(scope="module")

@@ -150,6 +150,41 @@ def test_rm3_interpolates_the_query_with_the_feedback_terms_by_hand() -> None:
     assert expansion.feedback_rows == 2
 
 
+def test_rm3_skips_expansion_terms_in_more_than_the_share_of_chunks() -> None:
+    """The same feedback as above over four chunks: "wing" is in three of them (0.75), so a
+    share of 0.5 keeps it as a query term but never as an expansion term."""
+    records = [
+        record("d1#0000", ["wing", "flutter", "flutter"], [1, 0, 0, 0]),
+        record("d2#0000", ["wing", "lift"], [0, 1, 0, 0]),
+        record("d3#0000", ["boundary", "layer"], [0, 0, 1, 0]),
+        record("d4#0000", ["wing", "tip"], [0, 0, 0, 1]),
+    ]
+    snapshot = CollectionIndex.build(records, metric="cosine", dimension=DIMENSION).snapshot()
+    rows = np.array([0, 1])
+    scores = np.array([3.0, 1.0])
+    capped = LexicalFeedback(chunks=2, terms=2, query_weight=0.4, max_share=0.5)
+    expansion = rm3_expansion(snapshot, ("wing",), rows, scores, capped)
+    names = snapshot.lexical.term_names(expansion.term_ids.tolist())
+    got = dict(zip(names, expansion.weights.tolist(), strict=True))
+    # Without "wing", the best two of P(t|R) are flutter 0.5 and lift 0.125, renormalised.
+    expected = {"wing": 0.4 * 1.0, "flutter": 0.6 * 0.5 / 0.625, "lift": 0.6 * 0.125 / 0.625}
+    assert got == pytest.approx(expected)
+    uncapped = rm3_expansion(snapshot, ("wing",), rows, scores, replace(capped, max_share=1.0))
+    assert "lift" not in snapshot.lexical.term_names(uncapped.term_ids.tolist())
+
+
+def test_rm3_with_every_feedback_term_too_common_keeps_the_original_query() -> None:
+    records = [
+        record("d1#0000", ["wing", "lift"], [1, 0, 0, 0]),
+        record("d2#0000", ["wing", "lift"], [0, 1, 0, 0]),
+    ]
+    snapshot = CollectionIndex.build(records, metric="cosine", dimension=DIMENSION).snapshot()
+    feedback = LexicalFeedback(chunks=2, terms=2, query_weight=0.4, max_share=0.5)
+    expansion = rm3_expansion(snapshot, ("wing",), np.array([0, 1]), np.ones(2), feedback)
+    assert snapshot.lexical.term_names(expansion.term_ids.tolist()) == ["wing"]
+    assert expansion.feedback_rows == 2
+
+
 def test_rocchio_adds_the_weighted_mean_of_the_top_vectors() -> None:
     records = [
         record("d1#0000", ["a"], [1, 0, 0, 0]),

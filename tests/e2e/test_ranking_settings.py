@@ -29,7 +29,7 @@ EVERY_STEP = {
     "lexical_feedback_chunks": 2,
     "lexical_feedback_terms": 5,
     "lexical_feedback_query_weight": 0.6,
-    # Four chunks: every term is in a quarter of them, so only no cap lets RM3 expand.
+    # Four chunks: every term is in at least a quarter of them, so only no cap lets RM3 expand.
     "lexical_feedback_max_share": 1.0,
     "semantic_feedback_chunks": 2,
     "semantic_feedback_weight": 0.4,

@@ -66,9 +66,8 @@ def rm3_expansion(
     if len(query_ids) == 0 or len(rows) == 0 or scores.sum() <= 0:
         return Expansion(query_ids, counts, 0)
     model_ids, model = lexical.relevance_model(rows, scores / scores.sum())
-    if feedback.max_share < 1.0:
-        kept = lexical.in_at_most(model_ids, feedback.max_share)
-        model_ids, model = model_ids[kept], model[kept]
+    kept = lexical.in_at_most(model_ids, feedback.max_share)
+    model_ids, model = model_ids[kept], model[kept]
     if len(model_ids) == 0:
         return Expansion(query_ids, counts, len(rows))
     best = np.lexsort((model_ids, -model))[: feedback.terms]

@@ -22,7 +22,10 @@ first row.
 A full scan can be begun ahead of its use (``begin_full_scan``): it runs on a scan thread, and
 the matrix product releases the interpreter lock, so the scan proceeds beside the Python work of
 its query. The products are computed by the same expression either way, so they are equal bit
-for bit.
+for bit. A gather can be begun the same way (``gather`` on a scan thread: copying rows releases
+the lock too), and its copy kept to score a second query over the same candidates
+(``GatheredRows``), as a query refined from its own first results is: the copy, not the
+product, is most of a gather's cost.
 
 The matrix only grows by appending, into a buffer whose capacity doubles; see ``buffers``.
 """
@@ -32,6 +35,7 @@ from __future__ import annotations
 import os
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
 from typing import Literal, TypeVar
 
 import numpy as np
@@ -66,6 +70,15 @@ os.register_at_fork(after_in_child=_fresh_scan_pool_after_fork)
 def on_scan_thread(call: Callable[[], T]) -> Future[T]:
     """Run ``call`` on a scan thread (for work that releases the interpreter lock)."""
     return _scans.submit(call)
+
+
+@dataclass(frozen=True, eq=False)
+class GatheredRows:
+    """Candidate rows (ascending) and a copy of them, padded to whole blocks with copies of the
+    first, that any number of queries can be scored over (``VectorMatrix.score_gathered``)."""
+
+    rows: np.ndarray
+    block: np.ndarray
 
 
 class VectorMatrix:
@@ -229,11 +242,10 @@ class VectorMatrix:
         if count == 0:
             return rows, np.zeros(0, dtype=np.float32)
         if not self.scans_every_row(count):
-            products = self._gathered_products(query, rows)
-        else:
-            products = self._full_products(query) if full_scan is None else full_scan.result()
-            if count < n:
-                products = products[rows]
+            return self.score_gathered(query, self._gather(rows))
+        products = self._full_products(query) if full_scan is None else full_scan.result()
+        if count < n:
+            products = products[rows]
         return rows, self._finish(products, rows, query)
 
     def scans_from(self, first: int, candidates: int) -> bool:
@@ -261,18 +273,37 @@ class VectorMatrix:
         if len(picked) == 0:
             return rows, np.zeros(0, dtype=np.float32)
         if not self.scans_from(first, len(picked)):
-            return rows, self._finish(self._gathered_products(query, rows), rows, query)
+            return self.score_gathered(query, self._gather(rows))
         # The span starts on a block boundary and ends on the padding's, so every row is
         # computed in a whole block, as in every other product here.
         start = first - first % ROW_BLOCK
         products = (self._buffer[start : round_up(n, ROW_BLOCK)] @ query)[first - start :]
         return rows, self._finish(products[picked], rows, query)
 
-    def _gathered_products(self, query: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    def gather(self, candidate_mask: np.ndarray) -> GatheredRows:
+        """The rows where ``candidate_mask`` is true, copied out for ``score_gathered``."""
+        n = self._n_rows
+        if candidate_mask.shape != (n,) or candidate_mask.dtype != np.bool_:
+            raise ValueError(f"the candidate mask must be a boolean array of length {n}")
+        return self._gather(np.flatnonzero(candidate_mask))
+
+    def score_gathered(
+        self, query: np.ndarray, gathered: GatheredRows
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``score`` over the gathered rows, equal to it bit for bit (the same padded product)."""
+        rows = gathered.rows
+        if len(rows) == 0:
+            return rows, np.zeros(0, dtype=np.float32)
+        products = (gathered.block @ query)[: len(rows)]
+        return rows, self._finish(products, rows, query)
+
+    def _gather(self, rows: np.ndarray) -> GatheredRows:
         count = len(rows)
+        if count == 0:
+            return GatheredRows(rows, np.zeros((0, self.dimension), dtype=np.float32))
         padded = np.full(round_up(count, ROW_BLOCK), rows[0], dtype=np.int64)
         padded[:count] = rows
-        return (np.take(self._buffer, padded, axis=0) @ query)[:count]
+        return GatheredRows(rows, np.take(self._buffer, padded, axis=0))
 
     def _full_products(self, query: np.ndarray) -> np.ndarray:
         n = self._n_rows

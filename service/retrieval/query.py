@@ -207,9 +207,12 @@ def retrieve(snapshot: IndexSnapshot, query: RetrievalQuery) -> RetrievalResult:
             rocchio_started = time.perf_counter()
             feedback = steps.semantic_feedback
             refined = rocchio_vector(snapshot, scan.query, feedback_set.rows, feedback)
-            # Planned like the first ranking (gather, scan or graph), with the count known; a
-            # scan or graph search runs beside the lexical feedback below.
-            rescan = begin_semantic_ranking(snapshot, refined, mask, candidates, query.depth)
+            # Planned like the first ranking (gather, scan or graph), with the count known; its
+            # work runs beside the lexical feedback below, over the first ranking's gathered
+            # rows where it gathers.
+            rescan = begin_semantic_ranking(
+                snapshot, refined, mask, candidates, query.depth, same_candidates_as=scan
+            )
         if from_fusion and steps.lexical_feedback is not None:
             rankings["lexical"], stage = _lexical_feedback(
                 snapshot,

@@ -18,7 +18,7 @@ import numpy as np
 from service.index.collection_index import IndexSnapshot
 from service.index.graph import GraphHits
 from service.index.lexical import LexicalScoring
-from service.index.vectors import on_scan_thread
+from service.index.vectors import GatheredRows, on_scan_thread
 from service.retrieval.semantic_plan import PlanMethod, SemanticPlan, semantic_plan
 
 DEFAULT_SCORING = LexicalScoring()
@@ -113,14 +113,15 @@ class PlanTrace:
 
 @dataclass(frozen=True, eq=False)
 class SemanticScan:
-    """A semantic ranking's prepared query, its plan and, for a scan or a graph search, that
-    search under way on a scan thread."""
+    """A semantic ranking's prepared query, its plan and that plan's work under way on a scan
+    thread: a scan of every row, a graph search, or the candidates' rows being gathered."""
 
     query: np.ndarray
     plan: SemanticPlan
     full_scan: Future[np.ndarray] | None
     started: float
     graph_search: Future[GraphHits] | None = None
+    gathered: Future[GatheredRows] | None = None
 
 
 def begin_semantic_ranking(
@@ -129,20 +130,32 @@ def begin_semantic_ranking(
     candidate_mask: np.ndarray,
     candidates: int,
     depth: int,
+    *,
+    same_candidates_as: SemanticScan | None = None,
 ) -> SemanticScan:
-    """Check and prepare the query and plan it; a scan of every row or a graph search begins
-    on a scan thread, so in hybrid mode it runs beside the lexical ranking."""
+    """Check and prepare the query and plan it; its work begins on a scan thread, so in hybrid
+    mode it runs beside the lexical ranking.
+
+    ``same_candidates_as`` is an earlier scan over the same mask: where both gather, its rows
+    are scored again rather than copied out again.
+    """
     started = time.perf_counter()
     vectors = snapshot.vectors
     query = vectors.prepare_query(np.asarray(query_vector))
     plan = semantic_plan(snapshot, candidate_mask, candidates, depth)
     full_scan = vectors.begin_full_scan(query) if plan.method == "scan" else None
     graph_search = None
+    gathered = None
     graph = snapshot.graph
     if plan.method == "graph" and graph is not None:
         covered = candidate_mask[: graph.rows]
         graph_search = on_scan_thread(lambda: graph.search(query, covered, depth, plan.breadth))
-    return SemanticScan(query, plan, full_scan, started, graph_search)
+    elif plan.method == "gather":
+        if same_candidates_as is not None and same_candidates_as.gathered is not None:
+            gathered = same_candidates_as.gathered
+        else:
+            gathered = on_scan_thread(lambda: vectors.gather(candidate_mask))
+    return SemanticScan(query, plan, full_scan, started, graph_search, gathered)
 
 
 def semantic_ranking(
@@ -211,7 +224,10 @@ def finish_semantic_ranking(
             fallback,
         )
         return ranked_rows("semantic", snapshot, rows, scores, depth), trace
-    rows, scores = snapshot.vectors.score(scan.query, candidate_mask, scan.full_scan)
+    if scan.gathered is not None:
+        rows, scores = snapshot.vectors.score_gathered(scan.query, scan.gathered.result())
+    else:
+        rows, scores = snapshot.vectors.score(scan.query, candidate_mask, scan.full_scan)
     method: PlanMethod = "scan" if plan.method == "scan" else "gather"
     work = snapshot.vectors.n_rows if method == "scan" else len(rows)
     trace = PlanTrace(method, method, plan.estimated_work, work, 0, None)

@@ -71,6 +71,31 @@ def test_a_scan_begun_on_a_scan_thread_gives_bit_identical_scores(
     assert threads[0].startswith("excerpta-scan") and threads[1] == threading.current_thread().name
 
 
+@pytest.mark.parametrize("metric", ["cosine", "dot", "euclidean"])
+@pytest.mark.parametrize("fraction", [0.0, 0.01, 0.1, 0.5])
+def test_rows_gathered_once_score_any_query_as_scanning_does_bit_for_bit(
+    metric: str, fraction: float
+) -> None:
+    count = 4099
+    rng = np.random.default_rng(11)
+    matrix = VectorMatrix.build(random_rows(count, 48), metric=metric, dimension=48)  # type: ignore[arg-type]
+    mask = rng.random(count) < fraction
+    gathered = matrix.gather(mask)
+    assert gathered.rows.tolist() == np.flatnonzero(mask).tolist()
+    for _ in range(3):
+        query = matrix.prepare_query(rng.standard_normal(48))
+        rows, scores = matrix.score_gathered(query, gathered)
+        _, full = matrix.score(query, np.ones(count, dtype=bool))
+        assert rows.tolist() == gathered.rows.tolist()
+        assert np.array_equal(scores, full[rows])
+
+
+def test_a_gather_refuses_a_mask_of_another_length() -> None:
+    matrix = VectorMatrix.build(random_rows(100, 8), metric="dot", dimension=8)
+    with pytest.raises(ValueError, match="length 100"):
+        matrix.gather(np.ones(99, dtype=bool))
+
+
 def test_a_forked_child_can_still_begin_a_scan() -> None:
     matrix = VectorMatrix.build(random_rows(300, 8), metric="dot", dimension=8)
     query = matrix.prepare_query(np.ones(8))

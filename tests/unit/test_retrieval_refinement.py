@@ -16,8 +16,15 @@ import pytest
 from service.index.analyzer import Analyzer
 from service.index.collection_index import ChunkRecord, CollectionIndex
 from service.index.lexical import LexicalIndex, LexicalScoring
+from service.index.vectors import GatheredRows, VectorMatrix
 from service.retrieval.query import RetrievalQuery, RetrievalResult, retrieve
-from service.retrieval.ranking import Ranking, fuse_rrf, fuse_scores, with_document_support
+from service.retrieval.ranking import (
+    Ranking,
+    exact_semantic_ranking,
+    fuse_rrf,
+    fuse_scores,
+    with_document_support,
+)
 from service.retrieval.ranking_settings import (
     FeedbackSource,
     LexicalFeedback,
@@ -332,6 +339,50 @@ def test_fused_feedback_takes_both_steps_chunks_from_the_first_fusion() -> None:
     own = {stage.name: stage for stage in run("own").stages}
     assert "feedback_fusion" not in own
     assert [entry["term"] for entry in own["lexical_feedback"].notes["terms"]] == ["wing"]  # type: ignore[attr-defined]
+
+
+def test_the_refined_ranking_scores_the_first_rankings_gathered_rows_without_a_second_copy(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    rng = np.random.default_rng(5)
+    vectors = rng.standard_normal((300, DIMENSION))
+    # A tenth of the rows visible to the asker: few enough that both rankings gather them.
+    records = [
+        replace(
+            record(f"d{i}#0000", ["wing"] if i % 2 else ["lift"], vectors[i].tolist()),
+            access=("crew",) if i % 10 == 0 else ("office",),
+        )
+        for i in range(300)
+    ]
+    snapshot = CollectionIndex.build(records, metric="cosine", dimension=DIMENSION).snapshot()
+    feedback = SemanticFeedback(chunks=3, weight=0.5)
+    query = replace(
+        hybrid_query(RankingSettings(semantic_feedback=feedback), ("wing",)),
+        groups=frozenset({"crew"}),
+    )
+    gathers: list[int] = []
+    gather = VectorMatrix.gather
+
+    def counting(self: VectorMatrix, mask: np.ndarray) -> GatheredRows:
+        gathers.append(int(mask.sum()))
+        return gather(self, mask)
+
+    monkeypatch.setattr(VectorMatrix, "gather", counting)
+    result = retrieve(snapshot, query)
+    stages = {stage.name: stage for stage in result.stages}
+    assert stages["semantic"].plan is not None and stages["semantic"].plan.method == "gather"
+    assert stages["semantic_feedback"].plan is not None
+    assert stages["semantic_feedback"].plan.method == "gather"
+    assert gathers == [30]
+    # The same ranking as exact search for the refined vector over the visible rows.
+    visible = np.array([i % 10 == 0 for i in range(300)])
+    first = exact_semantic_ranking(snapshot, query.vector, visible, query.depth)
+    prepared = snapshot.vectors.prepare_query(query.vector)
+    refined = rocchio_vector(snapshot, prepared, first.rows, feedback)
+    want = exact_semantic_ranking(snapshot, refined, visible, query.depth)
+    got = result.rankings["semantic"]
+    assert got.rows.tolist() == want.rows.tolist()
+    assert got.scores.tolist() == want.scores.tolist()
 
 
 def test_plain_settings_rank_as_plain_fusion_did() -> None:

@@ -17,7 +17,7 @@ from __future__ import annotations
 import operator
 import threading
 from bisect import bisect_right
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any, SupportsIndex, TypeVar, overload
 
@@ -32,6 +32,9 @@ from service.index.lexical import DEFAULT_B, DEFAULT_K1, LexicalIndex
 from service.index.vectors import Metric, VectorMatrix
 
 T = TypeVar("T")
+# Rows ``CollectionIndex.build`` writes at a time: each write re-weighs every posting, and its
+# records are all that is held beside the index.
+BUILD_ROWS_PER_WRITE = 100_000
 
 
 @dataclass(frozen=True)
@@ -365,7 +368,7 @@ class CollectionIndex:
     @classmethod
     def build(
         cls,
-        records: Sequence[ChunkRecord],
+        records: Iterable[ChunkRecord],
         *,
         metric: Metric,
         dimension: int,
@@ -373,14 +376,32 @@ class CollectionIndex:
         revision: int = 0,
         bm25_k1: float = DEFAULT_K1,
         bm25_b: float = DEFAULT_B,
+        rows_per_write: int = BUILD_ROWS_PER_WRITE,
     ) -> CollectionIndex:
+        """An index of ``records``, whose chunks of one document must come together; they are
+        taken about ``rows_per_write`` at a time (whole documents), so a stream of them is
+        never held whole beside the index it builds."""
         index = cls(
             metric=metric, dimension=dimension, schema=schema, bm25_k1=bm25_k1, bm25_b=bm25_b
         )
-        by_document: dict[str, list[ChunkRecord]] = {}
+        batch: dict[str, list[ChunkRecord]] = {}
+        rows = 0
+        written: set[str] = set()
+        current = None
         for record in records:
-            by_document.setdefault(record.document_id, []).append(record)
-        index.replace_documents(by_document, revision=revision)
+            document_id = record.document_id
+            if document_id != current:
+                if document_id in batch or document_id in written:
+                    raise ValueError(f"the chunks of document {document_id!r} are not together")
+                if rows >= rows_per_write:
+                    index.replace_documents(batch, revision=revision)
+                    written.update(batch)
+                    batch, rows = {}, 0
+                batch[document_id] = []
+                current = document_id
+            batch[document_id].append(record)
+            rows += 1
+        index.replace_documents(batch, revision=revision)
         return index
 
     @classmethod

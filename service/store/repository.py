@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import logging
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
@@ -353,15 +353,21 @@ def drop_generations_except(session: Session, collection_id: int, generation: in
     )
 
 
+# Rows fetched at a time while an index is read from the store.
+INDEX_ROWS_PER_FETCH = 2_000
+
+
 def index_rows(
     session: Session, collection_id: int, generation: int, external_ids: Sequence[str] | None
-) -> list[tuple[DocumentRow, ChunkRow, bytes]]:
+) -> Iterator[tuple[DocumentRow, ChunkRow, bytes]]:
     """Every chunk of the generation with its document and vector, for building an index;
     ``external_ids`` narrows it to those documents.
 
     One statement, so each document and its chunks come from one snapshot even under
     PostgreSQL's READ COMMITTED; and documents are re-read even when the session already holds
-    them, since an object from an earlier statement may be of an older version.
+    them, since an object from an earlier statement may be of an older version. The rows are
+    fetched a slice at a time as they are consumed, so a large collection is never held whole
+    as rows; the session must stay open until they are.
     """
     query = (
         select(DocumentRow, ChunkRow, EmbeddingRow.vector)
@@ -376,11 +382,12 @@ def index_rows(
         )
         .where(DocumentRow.collection_id == collection_id, ChunkRow.generation == generation)
         .order_by(DocumentRow.id, ChunkRow.ordinal)
-        .execution_options(populate_existing=True)
+        .execution_options(populate_existing=True, yield_per=INDEX_ROWS_PER_FETCH)
     )
     if external_ids is not None:
         query = query.where(DocumentRow.external_id.in_(list(external_ids)))
-    return [(row[0], row[1], row[2]) for row in session.execute(query)]
+    for row in session.execute(query):
+        yield row[0], row[1], row[2]
 
 
 # Embeddings -------------------------------------------------------------------------------------

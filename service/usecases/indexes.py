@@ -29,7 +29,7 @@ import sys
 import threading
 import time
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any, Protocol, cast
 
@@ -78,7 +78,8 @@ class CollectionHeader:
 
 @dataclass(frozen=True)
 class LoadedCollection:
-    """A collection as the store holds it, analysed and ready to index."""
+    """A collection as the store holds it, analysed and ready to index; ``records`` come by
+    document, read from the store as they are consumed."""
 
     facts: CollectionFacts
     generation: int
@@ -86,7 +87,7 @@ class LoadedCollection:
     scoring: LexicalScoring
     metric: Metric
     analyzer: Analyzer
-    records: list[ChunkRecord]
+    records: Iterable[ChunkRecord]
     vectors: VectorIndexSettings = field(default_factory=VectorIndexSettings)
 
     @property
@@ -122,8 +123,9 @@ class CollectionUpdate:
 class IndexSource(Protocol):
     """Where the registry reads collections from: the store (``StoreIndexSource``)."""
 
-    def load(self, name: str) -> LoadedCollection:
-        """The named collection whole; raises ``CollectionNotFound``."""
+    def load(self, name: str) -> contextlib.AbstractContextManager[LoadedCollection]:
+        """The named collection, its records read as they are consumed, inside the context;
+        raises ``CollectionNotFound``."""
         ...
 
     def describe(self, name: str) -> CollectionHeader:
@@ -359,16 +361,16 @@ class IndexRegistry:
         return entry
 
     def _build(self, name: str) -> _Entry:
-        loaded = self._source.load(name)
-        index = CollectionIndex.build(
-            loaded.records,
-            schema=loaded.facts.schema,
-            metric=loaded.metric,
-            dimension=self._dimensions,
-            revision=loaded.revision,
-            bm25_k1=loaded.scoring.k1,
-            bm25_b=loaded.scoring.b,
-        )
+        with self._source.load(name) as loaded:
+            index = CollectionIndex.build(
+                loaded.records,
+                schema=loaded.facts.schema,
+                metric=loaded.metric,
+                dimension=self._dimensions,
+                revision=loaded.revision,
+                bm25_k1=loaded.scoring.k1,
+                bm25_b=loaded.scoring.b,
+            )
         return _Entry(
             facts=loaded.facts,
             generation=loaded.generation,
@@ -668,14 +670,15 @@ class StoreIndexSource:
     def __init__(self, transactions: Transactions) -> None:
         self._transactions = transactions
 
-    def load(self, name: str) -> LoadedCollection:
+    @contextlib.contextmanager
+    def load(self, name: str) -> Iterator[LoadedCollection]:
         with self._transactions.read() as session:
             row = repository.collection_by_name(session, name)
             if row is None:
                 raise CollectionNotFound(f"Collection {name!r} does not exist.")
             header = _header(row)
             rows = repository.index_rows(session, row.id, row.chunk_generation, None)
-            return LoadedCollection(
+            yield LoadedCollection(
                 facts=header.facts,
                 generation=header.generation,
                 revision=header.revision,
@@ -782,37 +785,34 @@ def _rows_made_by(schema: Schema, analyzer: Analyzer) -> str:
 
 
 def _stored_records(
-    analyzer: Analyzer, schema: Schema, rows: Sequence[tuple[DocumentRow, ChunkRow, bytes]]
-) -> list[ChunkRecord]:
-    """Index rows from stored chunks, which ``index_rows`` gives by document, in ordinal order.
+    analyzer: Analyzer, schema: Schema, rows: Iterable[tuple[DocumentRow, ChunkRow, bytes]]
+) -> Iterator[ChunkRecord]:
+    """Index rows from stored chunks, which ``index_rows`` gives by document, in ordinal order,
+    made one document at a time as ``rows`` are read.
 
-    The analyzer makes a new string for every token; all records are held until the index is
-    built, so each token is replaced by one shared copy of its term (at a million chunks the
-    copies alone would take gigabytes).
+    The analyzer makes a new string for every token; records are held until their part of the
+    index is built, so each token is replaced by one shared copy of its term (at a million
+    chunks the copies alone would take gigabytes).
     """
-    records: list[ChunkRecord] = []
     for _, group in itertools.groupby(rows, key=lambda r: r[0].id):
         chunks = list(group)
         document = chunks[0][0]
         attributes = _attributes_from_json(schema, document.attributes)
         spans = [(chunk.char_start, chunk.char_end) for _, chunk, _ in chunks]
         for (_, chunk, vector), gap in zip(chunks, gaps_between(document.text, spans), strict=True):
-            records.append(
-                chunk_record(
-                    analyzer,
-                    document_id=document.external_id,
-                    title=document.title,
-                    attributes=attributes,
-                    access=tuple(document.access),
-                    source_url=document.source_url,
-                    chunk=chunk,
-                    gap_after=gap,
-                    vector=np.frombuffer(vector, dtype=np.float32),
-                )
+            record = chunk_record(
+                analyzer,
+                document_id=document.external_id,
+                title=document.title,
+                attributes=attributes,
+                access=tuple(document.access),
+                source_url=document.source_url,
+                chunk=chunk,
+                gap_after=gap,
+                vector=np.frombuffer(vector, dtype=np.float32),
             )
-            tokens = records[-1].lexical_tokens
-            tokens[:] = map(sys.intern, tokens)
-    return records
+            record.lexical_tokens[:] = map(sys.intern, record.lexical_tokens)
+            yield record
 
 
 def _records_from_material(

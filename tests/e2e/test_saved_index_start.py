@@ -4,6 +4,7 @@ reading the chunks, and answers as the one that saved it. The CLI's index-status
 
 from __future__ import annotations
 
+import contextlib
 import json
 import threading
 import time
@@ -45,7 +46,9 @@ class HeldLoads:
         self.release = threading.Event()
         original = StoreIndexSource.load
 
-        def held(source: StoreIndexSource, name: str) -> LoadedCollection:
+        def held(
+            source: StoreIndexSource, name: str
+        ) -> contextlib.AbstractContextManager[LoadedCollection]:
             self.loads += 1
             self.loading.set()
             assert self.release.wait(30), "the held load was never released"

@@ -9,6 +9,7 @@ from the store, the reference a saved index must reproduce.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import threading
 from collections.abc import Iterator
@@ -55,7 +56,7 @@ class CountingSource:
         self.loading = threading.Event()
         self.release = release
 
-    def load(self, name: str) -> LoadedCollection:
+    def load(self, name: str) -> contextlib.AbstractContextManager[LoadedCollection]:
         self.loads += 1
         self.loading.set()
         if self.release is not None:

@@ -55,6 +55,37 @@ def test_replacing_a_document_swaps_its_chunks_and_deleting_removes_them() -> No
     assert snapshot.rows_of("b").tolist() == [2]
 
 
+def test_an_index_built_a_few_rows_at_a_time_equals_one_built_at_once() -> None:
+    words = ["wing", "flutter", "lift", "drag", "panel", "rivet"]
+    records = [
+        chunk(f"d{d}", ordinal, " ".join(words[(d + ordinal) % 6 :][:3]))
+        for d in range(7)
+        for ordinal in range(d % 3 + 1)
+    ]
+    whole = CollectionIndex.build(records, metric="cosine", dimension=DIMENSION, revision=4)
+    parts = CollectionIndex.build(
+        iter(records), metric="cosine", dimension=DIMENSION, revision=4, rows_per_write=2
+    )
+    assert parts.snapshot().lexical.segment_count > 1
+    one, other = whole.snapshot(), parts.snapshot()
+    assert other.revision == 4
+    assert list(other.chunk_ids) == list(one.chunk_ids)
+    assert other.sort_keys.tolist() == one.sort_keys.tolist()
+    assert np.array_equal(other.vectors.rows, one.vectors.rows)
+    mask = np.ones(one.n_rows, dtype=bool)
+    for query in (["wing"], ["rivet", "lift"]):
+        a = lexical_ranking(one, query, mask, 10)
+        b = lexical_ranking(other, query, mask, 10)
+        assert b.rows.tolist() == a.rows.tolist()
+        np.testing.assert_allclose(b.scores, a.scores, rtol=1e-6)
+
+
+def test_a_build_refuses_a_documents_chunks_apart() -> None:
+    records = [chunk("a", 0, "x"), chunk("b", 0, "y"), chunk("a", 1, "z")]
+    with pytest.raises(ValueError, match="'a' are not together"):
+        CollectionIndex.build(records, metric="cosine", dimension=DIMENSION)
+
+
 def test_sort_keys_follow_code_point_order_of_chunk_ids_across_writes_and_compaction() -> None:
     rng = np.random.default_rng(5)
     names = ["Z", "a", "é", "b-2", "b_1", "B", "ä", "a.b", "0"]

@@ -7,8 +7,10 @@ forgetting deleted collections and compacting in the background.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import time
+from collections.abc import Iterator
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -64,11 +66,12 @@ class FakeSource:
             records=records,
         )
 
-    def load(self, name: str) -> LoadedCollection:
+    @contextlib.contextmanager
+    def load(self, name: str) -> Iterator[LoadedCollection]:
         self.loads += 1
         if name not in self.collections:
             raise CollectionNotFound(f"Collection {name!r} does not exist.")
-        return self.collections[name]
+        yield self.collections[name]
 
     def describe(self, name: str) -> CollectionHeader:
         if name not in self.collections:

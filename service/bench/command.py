@@ -125,12 +125,6 @@ def add_bench_arguments(parser: argparse.ArgumentParser) -> None:
         help="time a start from a saved index against one that builds the index from the store",
     )
     parser.add_argument(
-        "--read-back-only",
-        action="store_true",
-        help="with --restart: index in this process instead (no store, no graph) and time only"
-        " the saved index's read-back, for sizes whose build from the store does not fit",
-    )
-    parser.add_argument(
         "--http",
         action="store_true",
         help="drive the real server over HTTP instead of the in-process run",
@@ -339,15 +333,10 @@ def _graph_settings(args: argparse.Namespace, index: IndexMode) -> VectorIndexSe
 
 
 def _run_restart(args: argparse.Namespace) -> list[dict[str, Any]]:
-    from service.bench.restart import print_read_back, print_restart, run_read_back, run_restart
+    from service.bench.restart import print_restart, run_restart
 
     figures = []
     for size in args.chunks:
-        if args.read_back_only:
-            read_back = run_read_back(size, dimension=args.dims, seed=args.seed, progress=_progress)
-            print_read_back(read_back, print)
-            figures.append(read_back)
-            continue
         result = run_restart(
             size,
             dimension=args.dims,

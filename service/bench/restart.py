@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import hashlib
 import os
-import sys
 import tempfile
 import time
 from collections.abc import Callable, Iterator
@@ -42,18 +41,14 @@ from service.bench.synthetic import (
     CHUNKS_PER_DOCUMENT,
     VOCABULARY_SIZE,
     ZIPF_EXPONENT,
-    collection_analyzer,
     document_id_of,
     term,
     unit_vectors,
     zipf_probabilities,
 )
 from service.config import Settings
-from service.index.collection_index import ChunkRecord, CollectionIndex
 from service.index.graph import VectorIndexSettings
-from service.index.records import chunk_record
-from service.index.saved import IndexDirectory, SavedIdentity
-from service.ingest.chunking import ChunkSpan
+from service.index.saved import IndexDirectory
 from service.retrieval.ranking import exact_semantic_ranking
 from service.store import repository
 from service.store.tables import ChunkRow, CollectionRow, DocumentRow, EmbeddingRow
@@ -276,82 +271,6 @@ def run_restart(
         finally:
             runtime.close()
     return figures
-
-
-def run_read_back(
-    size: int, *, dimension: int, seed: int, progress: Callable[[str], None]
-) -> dict[str, Any]:
-    """The read-back alone, for sizes whose build from the store does not fit in memory: the
-    same rows indexed in this process a slice at a time (no store, no graph), saved, and read
-    back as a start reads them (manifest, identity, every checksum, the arrays)."""
-    analyzer = collection_analyzer()
-    index = CollectionIndex(metric="cosine", dimension=dimension, schema={})
-    started = time.perf_counter()
-    for first, texts, lengths, vectors in _slices(size, dimension, seed):
-        batch: dict[str, list[ChunkRecord]] = {}
-        offset = 0
-        for position, text in enumerate(texts):
-            row = first + position
-            document, ordinal = divmod(row, CHUNKS_PER_DOCUMENT)
-            offset = 0 if ordinal == 0 else offset
-            record = chunk_record(
-                analyzer,
-                document_id=document_id_of(document),
-                title=f"Document {document}",
-                attributes={},
-                access=(),
-                chunk=ChunkSpan(ordinal, offset, offset + len(text), text, lengths[position], ""),
-                vector=vectors[position],
-                gap_after=" " if ordinal < CHUNKS_PER_DOCUMENT - 1 else "",
-            )
-            record.lexical_tokens[:] = map(sys.intern, record.lexical_tokens)
-            batch.setdefault(record.document_id, []).append(record)
-            offset += len(text) + 1
-        index.replace_documents(batch, revision=1)
-    figures: dict[str, Any] = {"chunks": size, "build_seconds": time.perf_counter() - started}
-    identity = SavedIdentity(
-        store_id="bench",
-        collection_id=1,
-        generation=0,
-        embedder="bench",
-        dimension=dimension,
-        metric="cosine",
-        rows_made_by="bench",
-    )
-    progress(f"{size:,} chunks indexed in {figures['build_seconds']:.1f} s; saving")
-    with tempfile.TemporaryDirectory(prefix="excerpta-bench-read-back-") as scratch:
-        directory = IndexDirectory(Path(scratch))
-        started = time.perf_counter()
-        info = directory.save(COLLECTION, index.snapshot(), identity)
-        figures["save_seconds"] = time.perf_counter() - started
-        figures["saved_bytes"] = info.bytes
-        live = index.snapshot().live_rows
-        del index
-        started = time.perf_counter()
-        read = directory.load(
-            COLLECTION,
-            identity,
-            schema={},
-            vectors=VectorIndexSettings(index="exact"),
-            bm25_k1=1.2,
-            bm25_b=0.75,
-        )
-        figures["read_back_seconds"] = time.perf_counter() - started
-        figures["load_average"] = os.getloadavg()[0]
-        if read.index.snapshot().live_rows != live:
-            raise RuntimeError("the index read back does not hold the rows saved")
-    return figures
-
-
-def print_read_back(figures: dict[str, Any], emit: Callable[[str], None]) -> None:
-    emit("")
-    emit(
-        f"read-back at {figures['chunks']:,} chunks (indexed in this process, no store, no "
-        f"graph): saved {figures['saved_bytes'] / 2**20:.0f} MiB in {figures['save_seconds']:.1f} s"
-        f" (indexing took {figures['build_seconds']:.1f} s); read back in "
-        f"{figures['read_back_seconds']:.2f} s (load average {figures['load_average']:.2f}; "
-        "files in the page cache)"
-    )
 
 
 def print_restart(figures: dict[str, Any], emit: Callable[[str], None]) -> None:

@@ -3,7 +3,7 @@
 
 from __future__ import annotations
 
-from service.bench.restart import print_read_back, print_restart, run_read_back, run_restart
+from service.bench.restart import print_restart, run_restart
 from service.index.graph import GraphSettings, VectorIndexSettings
 
 
@@ -20,12 +20,3 @@ def test_the_restart_bench_reads_back_and_catches_up_what_it_saved() -> None:
     print_restart(figures, lines.append)
     assert "ready from the saved index" in lines[3]
     assert "1 documents caught up" in lines[4]
-
-
-def test_the_read_back_bench_reads_back_every_row_it_saved() -> None:
-    figures = run_read_back(2_000, dimension=16, seed=1, progress=lambda _line: None)
-    assert figures["chunks"] == 2_000
-    assert figures["saved_bytes"] > 2_000 * 16 * 4
-    lines: list[str] = []
-    print_read_back(figures, lines.append)
-    assert "read back in" in lines[1]

@@ -112,16 +112,24 @@ class PlanTrace:
 
 
 @dataclass(frozen=True, eq=False)
+class ScoredGather:
+    """The candidates' rows gathered and their scores for one query."""
+
+    gathered: GatheredRows
+    scores: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
 class SemanticScan:
     """A semantic ranking's prepared query, its plan and that plan's work under way on a scan
-    thread: a scan of every row, a graph search, or the candidates' rows being gathered."""
+    thread: a scan of every row, a graph search, or the candidates' rows gathered and scored."""
 
     query: np.ndarray
     plan: SemanticPlan
     full_scan: Future[np.ndarray] | None
     started: float
     graph_search: Future[GraphHits] | None = None
-    gathered: Future[GatheredRows] | None = None
+    gathered: Future[ScoredGather] | None = None
 
 
 def begin_semantic_ranking(
@@ -151,10 +159,14 @@ def begin_semantic_ranking(
         covered = candidate_mask[: graph.rows]
         graph_search = on_scan_thread(lambda: graph.search(query, covered, depth, plan.breadth))
     elif plan.method == "gather":
-        if same_candidates_as is not None and same_candidates_as.gathered is not None:
-            gathered = same_candidates_as.gathered
-        else:
-            gathered = on_scan_thread(lambda: vectors.gather(candidate_mask))
+        earlier = None if same_candidates_as is None else same_candidates_as.gathered
+
+        def gather_and_score() -> ScoredGather:
+            # Scored where the rows were just copied, while they are still in the cache.
+            rows = vectors.gather(candidate_mask) if earlier is None else earlier.result().gathered
+            return ScoredGather(rows, vectors.score_gathered(query, rows)[1])
+
+        gathered = on_scan_thread(gather_and_score)
     return SemanticScan(query, plan, full_scan, started, graph_search, gathered)
 
 
@@ -225,7 +237,8 @@ def finish_semantic_ranking(
         )
         return ranked_rows("semantic", snapshot, rows, scores, depth), trace
     if scan.gathered is not None:
-        rows, scores = snapshot.vectors.score_gathered(scan.query, scan.gathered.result())
+        scored = scan.gathered.result()
+        rows, scores = scored.gathered.rows, scored.scores
     else:
         rows, scores = snapshot.vectors.score(scan.query, candidate_mask, scan.full_scan)
     method: PlanMethod = "scan" if plan.method == "scan" else "gather"

@@ -162,7 +162,7 @@ def begin_semantic_ranking(
         earlier = None if same_candidates_as is None else same_candidates_as.gathered
 
         def gather_and_score() -> ScoredGather:
-            # Scored where the rows were just copied, while they are still in the cache.
+            # Scored here, beside the caller's lexical work; fresh rows while still cached.
             rows = vectors.gather(candidate_mask) if earlier is None else earlier.result().gathered
             return ScoredGather(rows, vectors.score_gathered(query, rows)[1])
 

@@ -386,17 +386,17 @@ class CollectionIndex:
         )
         batch: dict[str, list[ChunkRecord]] = {}
         rows = 0
-        written: set[str] = set()
+        seen: set[str] = set()
         current = None
         for record in records:
             document_id = record.document_id
             if document_id != current:
-                if document_id in batch or document_id in written:
+                if document_id in seen:
                     raise ValueError(f"the chunks of document {document_id!r} are not together")
                 if rows >= rows_per_write:
                     index.replace_documents(batch, revision=revision)
-                    written.update(batch)
                     batch, rows = {}, 0
+                seen.add(document_id)
                 batch[document_id] = []
                 current = document_id
             batch[document_id].append(record)

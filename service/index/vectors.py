@@ -234,17 +234,14 @@ class VectorMatrix:
         ``query`` is what ``prepare_query`` returned; ``full_scan``, when given, is
         ``begin_full_scan(query)`` and is used where every row is scanned.
         """
-        n = self._n_rows
-        if candidate_mask.shape != (n,) or candidate_mask.dtype != np.bool_:
-            raise ValueError(f"the candidate mask must be a boolean array of length {n}")
-        rows = np.flatnonzero(candidate_mask)
+        rows = self._candidate_rows(candidate_mask)
         count = len(rows)
         if count == 0:
             return rows, np.zeros(0, dtype=np.float32)
         if not self.scans_every_row(count):
             return self.score_gathered(query, self._gather(rows))
         products = self._full_products(query) if full_scan is None else full_scan.result()
-        if count < n:
+        if count < self._n_rows:
             products = products[rows]
         return rows, self._finish(products, rows, query)
 
@@ -282,10 +279,7 @@ class VectorMatrix:
 
     def gather(self, candidate_mask: np.ndarray) -> GatheredRows:
         """The rows where ``candidate_mask`` is true, copied out for ``score_gathered``."""
-        n = self._n_rows
-        if candidate_mask.shape != (n,) or candidate_mask.dtype != np.bool_:
-            raise ValueError(f"the candidate mask must be a boolean array of length {n}")
-        return self._gather(np.flatnonzero(candidate_mask))
+        return self._gather(self._candidate_rows(candidate_mask))
 
     def score_gathered(
         self, query: np.ndarray, gathered: GatheredRows
@@ -296,6 +290,12 @@ class VectorMatrix:
             return rows, np.zeros(0, dtype=np.float32)
         products = (gathered.block @ query)[: len(rows)]
         return rows, self._finish(products, rows, query)
+
+    def _candidate_rows(self, candidate_mask: np.ndarray) -> np.ndarray:
+        n = self._n_rows
+        if candidate_mask.shape != (n,) or candidate_mask.dtype != np.bool_:
+            raise ValueError(f"the candidate mask must be a boolean array of length {n}")
+        return np.flatnonzero(candidate_mask)
 
     def _gather(self, rows: np.ndarray) -> GatheredRows:
         count = len(rows)
